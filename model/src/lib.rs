@@ -1,0 +1,1 @@
+//! vigil-model: pure computation for crossed random-effects models (work in progress).

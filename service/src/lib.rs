@@ -1,0 +1,1 @@
+//! vigil-service (work in progress).
