@@ -295,7 +295,7 @@ def apply_defects(files, obs):
     spoil(2021, "Grindstone Lake", 1, "secchi_m", "1e999", "rejected",
           "rejected: value is not a finite number (overflows to infinity)")
 
-    # --- a row without a lake: the name was lost in transcription.
+    # --- a row without a lake: the name was lost when the field sheet was keyed in.
     rows = files[2023]
     i = find(rows, "Pickerel Lake", 1)
     row = rows[i]
