@@ -1,1 +1,32 @@
-//! vigil-model: pure computation for crossed random-effects models (work in progress).
+//! # vigil-model
+//!
+//! Pure computation for the crossed random-effects model of a monitoring network
+//! (DESIGN §3): `y = x'beta + a_site + b_year + c_group + e`, Gaussian on the model scale.
+//! No I/O, no async, no global state; deterministic for a given seed.
+//!
+//! ```
+//! use vigil_model::{DataBuilder, fit_point, Method};
+//! let mut b = DataBuilder::new(vec![], vec![]);
+//! for s in 0..6 {
+//!     for t in 0..5 {
+//!         let y = 1.0 + 0.3 * s as f64 + 0.2 * ((t * 7 + s) % 5) as f64 + 0.1 * (t as f64).sin();
+//!         b.push(&format!("lake-{s}"), 2010 + t, &[], &[], y).unwrap();
+//!     }
+//! }
+//! let data = b.build().unwrap();
+//! let fit = fit_point(&data, Method::Reml).unwrap();
+//! assert_eq!(fit.sd.len(), 3); // residual, site, year
+//! ```
+
+mod data;
+mod error;
+mod marginal;
+mod optimize;
+mod priors;
+mod reml;
+mod stats;
+
+pub use data::{Data, DataBuilder, FEW_LEVELS};
+pub use error::ModelError;
+pub use priors::{NormalPrior, Priors, ResolvedPriors, SdPrior};
+pub use reml::{fit_point, CoefEstimate, Method, PointFit};
