@@ -30,3 +30,19 @@ pub use data::{Data, DataBuilder, FEW_LEVELS};
 pub use error::ModelError;
 pub use priors::{NormalPrior, Priors, ResolvedPriors, SdPrior};
 pub use reml::{fit_point, CoefEstimate, Method, PointFit};
+
+mod diagnostics;
+mod posterior;
+mod sampler;
+
+pub use diagnostics::{diagnose, Diagnostic};
+pub use posterior::{
+    location_conditional, sample, EffectDraws, FitDiagnostics, LocationConditional, Posterior,
+    Summary, SummaryKind,
+};
+pub use sampler::{Controls, Progress, SamplerSettings, WarmStart};
+mod forecast;
+pub mod simulate;
+pub use forecast::{
+    forecast, forecast_baseline, mixture_quantile, ForecastRow, ForecastTarget, Scenario, Transform,
+};

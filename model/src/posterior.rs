@@ -1,0 +1,650 @@
+//! Entry point of the Bayesian fit: start values (a Laplace fit of the marginal posterior
+//! of the log standard deviations, or the previous version's posterior), the chains, and
+//! the assembled posterior with its summaries and diagnostics.
+
+use crate::data::Data;
+use crate::diagnostics::{diagnose_with, quantile_sorted, ZTable};
+use crate::error::ModelError;
+use crate::marginal::BetaPrior;
+use crate::optimize::{hessian, minimise};
+use crate::priors::{Priors, ResolvedPriors};
+use crate::reml::{point_from_stats, Method};
+use crate::sampler::{
+    run_chain, ChainOutput, ChainStart, Controls, Fit, SamplerSettings, Target, WarmStart,
+};
+use crate::stats::SuffStats;
+use nalgebra::{DMatrix, DVector};
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+use rayon::prelude::*;
+use serde::{Deserialize, Serialize};
+
+/// Which family a summary row belongs to (the `kind` column of `posterior_summary`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum SummaryKind {
+    Sd,
+    Share,
+    Coef,
+    Effect,
+}
+
+impl SummaryKind {
+    pub fn as_str(&self) -> &'static str {
+        match self {
+            SummaryKind::Sd => "sd",
+            SummaryKind::Share => "share",
+            SummaryKind::Coef => "coef",
+            SummaryKind::Effect => "effect",
+        }
+    }
+}
+
+/// Posterior summary of one scalar quantity.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Summary {
+    pub kind: SummaryKind,
+    pub term: String,
+    pub level: Option<String>,
+    pub mean: f64,
+    pub sd: f64,
+    pub q05: f64,
+    pub q25: f64,
+    pub q50: f64,
+    pub q75: f64,
+    pub q95: f64,
+    pub rhat: f64,
+    pub ess_bulk: f64,
+    pub ess_tail: f64,
+}
+
+/// Convergence and cost figures of a fit.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct FitDiagnostics {
+    /// Maximum R-hat over standard deviations, shares and coefficients (the gate).
+    pub max_rhat: f64,
+    pub min_ess_bulk: f64,
+    pub min_ess_tail: f64,
+    /// Maximum R-hat over the (thinned) random-effect draws, reported, not gated.
+    pub max_rhat_effects: f64,
+    pub acceptance_rate: f64,
+    pub warmup: usize,
+    pub warm_started: bool,
+    pub steps_per_draw: usize,
+}
+
+/// Thinned draws of the random effects and what forecasts need alongside them.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct EffectDraws {
+    /// Number of effect draws (all chains).
+    pub n: usize,
+    pub per_chain: usize,
+    /// `n x n_sites`, row-major.
+    pub site: Vec<f64>,
+    /// `n x n_years`.
+    pub year: Vec<f64>,
+    /// Per further factor: `n x n_levels`.
+    pub groups: Vec<Vec<f64>>,
+    /// Standard deviations at each effect draw: `n x m`.
+    pub sd: Vec<f64>,
+    /// Coefficients (original units) at each effect draw: `n x p`.
+    pub coef: Vec<f64>,
+    /// Model-scale mean at the network's average covariates, per effect draw.
+    pub mean_at_covariate_means: Vec<f64>,
+}
+
+/// A fitted posterior.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Posterior {
+    pub sd_names: Vec<String>,
+    /// `intercept`, then covariates.
+    pub coef_names: Vec<String>,
+    pub site_labels: Vec<String>,
+    pub year_labels: Vec<i32>,
+    pub group_names: Vec<String>,
+    pub group_labels: Vec<Vec<String>>,
+    pub covariate_means: Vec<f64>,
+    /// Latest observed year of each site.
+    pub site_last_year: Vec<i32>,
+    pub n_obs: usize,
+    pub chains: usize,
+    /// Saved draws per chain.
+    pub draws: usize,
+    /// `chains x draws x m`, chain-major.
+    pub sd_draws: Vec<f64>,
+    /// `chains x draws x p`, original units.
+    pub coef_draws: Vec<f64>,
+    pub effects: EffectDraws,
+    pub summaries: Vec<Summary>,
+    pub diagnostics: FitDiagnostics,
+    pub priors: ResolvedPriors,
+    pub warm_start: WarmStart,
+    pub warnings: Vec<String>,
+}
+
+impl Posterior {
+    /// Draws of standard deviation `k`, one vector per chain.
+    pub fn sd_chains(&self, k: usize) -> Vec<Vec<f64>> {
+        let m = self.sd_names.len();
+        (0..self.chains)
+            .map(|c| {
+                (0..self.draws)
+                    .map(|d| self.sd_draws[(c * self.draws + d) * m + k])
+                    .collect()
+            })
+            .collect()
+    }
+
+    /// Draws of coefficient `j`, one vector per chain.
+    pub fn coef_chains(&self, j: usize) -> Vec<Vec<f64>> {
+        let p = self.coef_names.len();
+        (0..self.chains)
+            .map(|c| {
+                (0..self.draws)
+                    .map(|d| self.coef_draws[(c * self.draws + d) * p + j])
+                    .collect()
+            })
+            .collect()
+    }
+
+    /// The summary row of a kind and term (level `None` for non-effects).
+    pub fn summary(&self, kind: SummaryKind, term: &str, level: Option<&str>) -> Option<&Summary> {
+        self.summaries
+            .iter()
+            .find(|s| s.kind == kind && s.term == term && s.level.as_deref() == level)
+    }
+
+    /// Latest observed year.
+    pub fn data_through_year(&self) -> i32 {
+        self.year_labels.last().copied().unwrap_or(0)
+    }
+}
+
+/// Fit the Bayesian model: draws from the exact posterior of every parameter.
+///
+/// `warm`, when given and naming the same variance components, supplies the start points
+/// and the proposal, and the shorter `warm_warmup` is used.
+pub fn sample(
+    data: &Data,
+    priors: &Priors,
+    settings: &SamplerSettings,
+    warm: Option<&WarmStart>,
+    controls: Controls,
+) -> Result<Posterior, ModelError> {
+    settings.validate()?;
+    let stats = SuffStats::new(data);
+    let sd_names = data.sd_names();
+    let m = sd_names.len();
+    let resolved = priors.resolve(&sd_names, &data.covariate_names, stats.y_mean, stats.y_sd)?;
+    let mut beta_prior = BetaPrior {
+        mean: vec![resolved.intercept.mean - stats.y_mean],
+        prec: vec![1.0 / resolved.intercept.sd.powi(2)],
+    };
+    for (_, p) in &resolved.coefficients {
+        beta_prior.mean.push(p.mean);
+        beta_prior.prec.push(1.0 / p.sd.powi(2));
+    }
+    let target = Target {
+        stats: &stats,
+        sd_priors: resolved.sd.iter().map(|(_, p)| *p).collect(),
+        beta_prior,
+    };
+
+    let warm = warm.filter(|w| {
+        w.sd_names == sd_names
+            && w.log_sd_mean.len() == m
+            && w.log_sd_cov.len() == m * m
+            && !w.chain_ends.is_empty()
+    });
+    let mut warnings = data.warnings.clone();
+    let starts: Vec<ChainStart> = match warm {
+        Some(w) => {
+            let cov = DMatrix::from_row_slice(m, m, &w.log_sd_cov);
+            let fit =
+                Fit::from_cov(DVector::from_vec(w.log_sd_mean.clone()), &cov).ok_or_else(|| {
+                    ModelError::Numerical("warm-start covariance is not positive definite".into())
+                })?;
+            (0..settings.chains)
+                .map(|c| ChainStart {
+                    eta: w.chain_ends[c % w.chain_ends.len()].clone(),
+                    fit: fit.clone(),
+                    warmup: settings.warm_warmup,
+                })
+                .collect()
+        }
+        None => {
+            let fit = laplace(&target, data, &stats, &mut warnings)?;
+            // Over-dispersed start points, drawn from their own stream so that they do not
+            // depend on how chains are scheduled.
+            let mut rng = ChaCha8Rng::seed_from_u64(settings.seed);
+            rng.set_stream(0);
+            let wide = Fit {
+                mean: fit.mean.clone(),
+                chol: &fit.chol * 1.5,
+            };
+            (0..settings.chains)
+                .map(|_| {
+                    let z = DVector::from_fn(m, |_, _| {
+                        rand::Rng::sample::<f64, _>(&mut rng, rand_distr::StandardNormal)
+                    });
+                    let eta = &wide.mean + &wide.chol * z;
+                    ChainStart {
+                        eta: eta.iter().copied().collect(),
+                        fit: fit.clone(),
+                        warmup: settings.warmup,
+                    }
+                })
+                .collect()
+        }
+    };
+
+    let threads = if settings.threads == 0 {
+        std::thread::available_parallelism().map_or(1, |n| n.get())
+    } else {
+        settings.threads
+    };
+    let pool = rayon::ThreadPoolBuilder::new()
+        .num_threads(threads.min(settings.chains).max(1))
+        .build()
+        .map_err(|e| ModelError::Numerical(format!("cannot start worker threads: {e}")))?;
+    let outputs: Vec<ChainOutput> = pool.install(|| {
+        starts
+            .par_iter()
+            .enumerate()
+            .map(|(c, start)| run_chain(&target, settings, c, start, controls))
+            .collect::<Result<Vec<_>, _>>()
+    })?;
+
+    let warmup = starts[0].warmup;
+    Ok(assemble(
+        data,
+        &stats,
+        settings,
+        resolved,
+        outputs,
+        warmup,
+        warm.is_some(),
+        warnings,
+        &pool,
+    ))
+}
+
+/// Mode and curvature of the log posterior of the log standard deviations.
+fn laplace(
+    target: &Target,
+    data: &Data,
+    stats: &SuffStats,
+    warnings: &mut Vec<String>,
+) -> Result<Fit, ModelError> {
+    let m = target.sd_priors.len();
+    let scale = stats.y_sd;
+    let start: Vec<f64> = match point_from_stats(data, stats, Method::Reml) {
+        Ok(fit) => fit
+            .sd
+            .iter()
+            .map(|(_, s)| s.max(scale * 1e-2).ln())
+            .collect(),
+        Err(_) => vec![(scale * 0.5).ln(); m],
+    };
+    let neg = |eta: &[f64]| -target.log_density(eta);
+    let lower = vec![(scale * 1e-8).ln(); m];
+    let upper = vec![(scale * 1e4).ln(); m];
+    let mode = minimise(&neg, &start, &lower, &upper, 1e-6, 400);
+    if !mode.value.is_finite() {
+        return Err(ModelError::Numerical(
+            "the posterior cannot be evaluated near its mode".into(),
+        ));
+    }
+    let h = hessian(&neg, &mode.x, 1e-3);
+    let cov = nalgebra::Cholesky::new(h.clone())
+        .map(|c| c.inverse())
+        .filter(|c| (0..m).all(|i| c[(i, i)] > 0.0 && c[(i, i)].is_finite()));
+    let cov = cov.unwrap_or_else(|| {
+        warnings.push("the posterior curvature at its mode is not positive definite; starting from a diffuse proposal".into());
+        DMatrix::from_diagonal_element(m, m, 0.25)
+    });
+    Fit::from_cov(DVector::from_vec(mode.x), &cov)
+        .ok_or_else(|| ModelError::Numerical("Laplace covariance not positive definite".into()))
+}
+
+fn summarise(
+    kind: SummaryKind,
+    term: &str,
+    level: Option<String>,
+    chains: &[Vec<f64>],
+    table: &ZTable,
+) -> Summary {
+    let refs: Vec<&[f64]> = chains.iter().map(|c| c.as_slice()).collect();
+    let d = diagnose_with(&refs, table);
+    let mut all: Vec<f64> = chains.iter().flatten().copied().collect();
+    let n = all.len() as f64;
+    let mean = all.iter().sum::<f64>() / n;
+    let sd = (all.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt();
+    all.sort_by(f64::total_cmp);
+    Summary {
+        kind,
+        term: term.to_string(),
+        level,
+        mean,
+        sd,
+        q05: quantile_sorted(&all, 0.05),
+        q25: quantile_sorted(&all, 0.25),
+        q50: quantile_sorted(&all, 0.5),
+        q75: quantile_sorted(&all, 0.75),
+        q95: quantile_sorted(&all, 0.95),
+        rhat: d.rhat,
+        ess_bulk: d.ess_bulk,
+        ess_tail: d.ess_tail,
+    }
+}
+
+#[allow(clippy::too_many_arguments)]
+fn assemble(
+    data: &Data,
+    stats: &SuffStats,
+    settings: &SamplerSettings,
+    priors: ResolvedPriors,
+    outputs: Vec<ChainOutput>,
+    warmup: usize,
+    warm_started: bool,
+    warnings: Vec<String>,
+    pool: &rayon::ThreadPool,
+) -> Posterior {
+    let sd_names = data.sd_names();
+    let m = sd_names.len();
+    let lay = &stats.layout;
+    let p = lay.p;
+    let chains = outputs.len();
+    let draws = settings.draws;
+    let mut coef_names = vec!["intercept".to_string()];
+    coef_names.extend(data.covariate_names.iter().cloned());
+
+    let mut sd_draws = Vec::with_capacity(chains * draws * m);
+    let mut coef_draws = Vec::with_capacity(chains * draws * p);
+    for out in &outputs {
+        sd_draws.extend_from_slice(&out.sd);
+        for d in 0..draws {
+            coef_draws.extend(stats.coef_to_original(&out.beta_std[d * p..(d + 1) * p]));
+        }
+    }
+
+    // Effect draws, chain after chain.
+    let per_chain = outputs[0].effect_index.len();
+    let n_eff = per_chain * chains;
+    let n_sites = stats.n_sites;
+    let mut effects = EffectDraws {
+        n: n_eff,
+        per_chain,
+        site: Vec::with_capacity(n_eff * n_sites),
+        year: Vec::with_capacity(n_eff * lay.n_years),
+        groups: vec![Vec::new(); lay.group_sizes.len()],
+        sd: Vec::with_capacity(n_eff * m),
+        coef: Vec::with_capacity(n_eff * p),
+        mean_at_covariate_means: Vec::with_capacity(n_eff),
+    };
+    for (c, out) in outputs.iter().enumerate() {
+        for (e, &d) in out.effect_index.iter().enumerate() {
+            let u = &out.u_effects[e * lay.q..(e + 1) * lay.q];
+            effects
+                .site
+                .extend_from_slice(&out.site_effects[e * n_sites..(e + 1) * n_sites]);
+            effects.year.extend_from_slice(&u[..lay.n_years]);
+            for (k, (&off, &size)) in lay.group_offsets.iter().zip(&lay.group_sizes).enumerate() {
+                effects.groups[k].extend_from_slice(&u[off..off + size]);
+            }
+            effects.sd.extend_from_slice(&out.sd[d * m..(d + 1) * m]);
+            let base = (c * draws + d) * p;
+            effects.coef.extend_from_slice(&coef_draws[base..base + p]);
+            effects
+                .mean_at_covariate_means
+                .push(u[lay.fixed_offset] + stats.y_mean);
+        }
+    }
+
+    // Per-chain series of every saved quantity, then summaries in parallel.
+    enum Source {
+        Sd(usize),
+        Share(usize),
+        Coef(usize),
+        Site(usize),
+        Year(usize),
+        Group(usize, usize),
+    }
+    let mut jobs: Vec<(SummaryKind, String, Option<String>, Source)> = Vec::new();
+    for (k, name) in sd_names.iter().enumerate() {
+        jobs.push((SummaryKind::Sd, name.clone(), None, Source::Sd(k)));
+    }
+    for (k, name) in sd_names.iter().enumerate() {
+        jobs.push((SummaryKind::Share, name.clone(), None, Source::Share(k)));
+    }
+    for (j, name) in coef_names.iter().enumerate() {
+        jobs.push((SummaryKind::Coef, name.clone(), None, Source::Coef(j)));
+    }
+    for (s, label) in data.site_labels.iter().enumerate() {
+        jobs.push((
+            SummaryKind::Effect,
+            "site".into(),
+            Some(label.clone()),
+            Source::Site(s),
+        ));
+    }
+    for (t, label) in data.year_labels.iter().enumerate() {
+        jobs.push((
+            SummaryKind::Effect,
+            "year".into(),
+            Some(label.to_string()),
+            Source::Year(t),
+        ));
+    }
+    for (k, name) in data.group_names.iter().enumerate() {
+        for (l, label) in data.group_labels[k].iter().enumerate() {
+            jobs.push((
+                SummaryKind::Effect,
+                name.clone(),
+                Some(label.clone()),
+                Source::Group(k, l),
+            ));
+        }
+    }
+    let n_years = lay.n_years;
+    let group_sizes = &lay.group_sizes;
+    let series = |source: &Source| -> Vec<Vec<f64>> {
+        match *source {
+            Source::Sd(k) => (0..chains)
+                .map(|c| {
+                    (0..draws)
+                        .map(|d| sd_draws[(c * draws + d) * m + k])
+                        .collect()
+                })
+                .collect(),
+            Source::Share(k) => (0..chains)
+                .map(|c| {
+                    (0..draws)
+                        .map(|d| {
+                            let row = &sd_draws[(c * draws + d) * m..(c * draws + d + 1) * m];
+                            row[k] * row[k] / row.iter().map(|s| s * s).sum::<f64>()
+                        })
+                        .collect()
+                })
+                .collect(),
+            Source::Coef(j) => (0..chains)
+                .map(|c| {
+                    (0..draws)
+                        .map(|d| coef_draws[(c * draws + d) * p + j])
+                        .collect()
+                })
+                .collect(),
+            Source::Site(s) => (0..chains)
+                .map(|c| {
+                    (0..per_chain)
+                        .map(|e| effects.site[(c * per_chain + e) * n_sites + s])
+                        .collect()
+                })
+                .collect(),
+            Source::Year(t) => (0..chains)
+                .map(|c| {
+                    (0..per_chain)
+                        .map(|e| effects.year[(c * per_chain + e) * n_years + t])
+                        .collect()
+                })
+                .collect(),
+            Source::Group(k, l) => (0..chains)
+                .map(|c| {
+                    (0..per_chain)
+                        .map(|e| effects.groups[k][(c * per_chain + e) * group_sizes[k] + l])
+                        .collect()
+                })
+                .collect(),
+        }
+    };
+    let draws_table = ZTable::new(2 * (draws / 2) * chains);
+    let effects_table = ZTable::new(2 * (per_chain / 2) * chains);
+    let summaries: Vec<Summary> = pool.install(|| {
+        jobs.par_iter()
+            .map(|(kind, term, level, source)| {
+                let table = if *kind == SummaryKind::Effect {
+                    &effects_table
+                } else {
+                    &draws_table
+                };
+                summarise(*kind, term, level.clone(), &series(source), table)
+            })
+            .collect()
+    });
+
+    let gated = summaries.iter().filter(|s| s.kind != SummaryKind::Effect);
+    let worst = |f: fn(&Summary) -> f64, max: bool| {
+        let vals = gated.clone().map(f).map(|v| {
+            if v.is_nan() {
+                if max {
+                    f64::INFINITY
+                } else {
+                    0.0
+                }
+            } else {
+                v
+            }
+        });
+        if max {
+            vals.fold(f64::NEG_INFINITY, f64::max)
+        } else {
+            vals.fold(f64::INFINITY, f64::min)
+        }
+    };
+    let max_rhat_effects = summaries
+        .iter()
+        .filter(|s| s.kind == SummaryKind::Effect)
+        .map(|s| s.rhat)
+        .filter(|r| r.is_finite())
+        .fold(1.0, f64::max);
+    let (accepted, proposed) = outputs
+        .iter()
+        .fold((0, 0), |(a, p), o| (a + o.accepted, p + o.proposed));
+    let diagnostics = FitDiagnostics {
+        max_rhat: worst(|s| s.rhat, true),
+        min_ess_bulk: worst(|s| s.ess_bulk, false),
+        min_ess_tail: worst(|s| s.ess_tail, false),
+        max_rhat_effects,
+        acceptance_rate: accepted as f64 / proposed.max(1) as f64,
+        warmup,
+        warm_started,
+        steps_per_draw: settings.steps_per_draw,
+    };
+
+    // Warm-start state: moments of the log sds over all chains, plus the chain ends.
+    let log_draws: Vec<Vec<f64>> = sd_draws
+        .chunks(m)
+        .map(|r| r.iter().map(|s| s.ln()).collect())
+        .collect();
+    let fit = Fit::from_draws(&log_draws);
+    let (log_sd_mean, log_sd_cov) = match fit {
+        Some(f) => (
+            f.mean.iter().copied().collect(),
+            f.cov().transpose().iter().copied().collect(),
+        ),
+        None => (
+            vec![0.0; m],
+            DMatrix::<f64>::identity(m, m).iter().copied().collect(),
+        ),
+    };
+    let warm_start = WarmStart {
+        sd_names: sd_names.clone(),
+        log_sd_mean,
+        log_sd_cov,
+        chain_ends: outputs.iter().map(|o| o.end.clone()).collect(),
+    };
+
+    Posterior {
+        sd_names,
+        coef_names,
+        site_labels: data.site_labels.clone(),
+        year_labels: data.year_labels.clone(),
+        group_names: data.group_names.clone(),
+        group_labels: data.group_labels.clone(),
+        covariate_means: data.covariate_means(),
+        site_last_year: data.site_last_year(),
+        n_obs: data.n_obs(),
+        chains,
+        draws,
+        sd_draws,
+        coef_draws,
+        effects,
+        summaries,
+        diagnostics,
+        priors,
+        warm_start,
+        warnings,
+    }
+}
+
+/// The exact Gaussian conditional of all location parameters given the standard
+/// deviations: mean and dense covariance. Order: site effects, year effects, group
+/// effects, intercept, covariate coefficients (original units). Dense: for checks and
+/// small problems only.
+#[derive(Debug, Clone)]
+pub struct LocationConditional {
+    pub mean: Vec<f64>,
+    pub cov: DMatrix<f64>,
+}
+
+/// See [`LocationConditional`]. `sds` are residual, site, year, then groups.
+pub fn location_conditional(
+    data: &Data,
+    priors: &Priors,
+    sds: &[f64],
+) -> Result<LocationConditional, ModelError> {
+    let stats = SuffStats::new(data);
+    let sd_names = data.sd_names();
+    if sds.len() != sd_names.len() || sds.iter().any(|s| !(*s > 0.0)) {
+        return Err(ModelError::InvalidSettings(format!(
+            "expected {} positive standard deviations",
+            sd_names.len()
+        )));
+    }
+    let resolved = priors.resolve(&sd_names, &data.covariate_names, stats.y_mean, stats.y_sd)?;
+    let mut beta_prior = BetaPrior {
+        mean: vec![resolved.intercept.mean - stats.y_mean],
+        prec: vec![1.0 / resolved.intercept.sd.powi(2)],
+    };
+    for (_, p) in &resolved.coefficients {
+        beta_prior.mean.push(p.mean);
+        beta_prior.prec.push(1.0 / p.sd.powi(2));
+    }
+    let fac =
+        crate::marginal::Factorised::new(&stats, sds, Some(&beta_prior)).ok_or_else(|| {
+            ModelError::Numerical("conditional precision not positive definite".into())
+        })?;
+    let lay = &stats.layout;
+    let s_n = stats.n_sites;
+    let dim = s_n + lay.q;
+    let mut mean = fac.site_means(&stats, fac.mean_u.as_slice());
+    mean.extend(fac.mean_u.iter());
+    let beta_at = s_n + lay.fixed_offset;
+    let beta_orig = stats.coef_to_original(&mean[beta_at..]);
+    mean[beta_at..].copy_from_slice(&beta_orig);
+    let mut a = DMatrix::identity(dim, dim);
+    a.view_mut((beta_at, beta_at), (lay.p, lay.p))
+        .copy_from(&stats.coef_transform());
+    let cov = &a * fac.dense_covariance(&stats) * a.transpose();
+    Ok(LocationConditional { mean, cov })
+}
