@@ -19,16 +19,35 @@ fn project(x: &mut [f64], lower: &[f64], upper: &[f64]) {
     }
 }
 
-pub(crate) fn gradient(f: &dyn Fn(&[f64]) -> f64, x: &[f64], h: f64) -> Vec<f64> {
+/// Central differences, one-sided where a step would leave the box.
+pub(crate) fn gradient(
+    f: &dyn Fn(&[f64]) -> f64,
+    x: &[f64],
+    h: f64,
+    lower: &[f64],
+    upper: &[f64],
+) -> Vec<f64> {
     let mut g = vec![0.0; x.len()];
     let mut xp = x.to_vec();
+    let f0 = f(x);
     for i in 0..x.len() {
-        xp[i] = x[i] + h;
-        let fp = f(&xp);
-        xp[i] = x[i] - h;
-        let fm = f(&xp);
+        let up = x[i] + h <= upper[i];
+        let down = x[i] - h >= lower[i];
+        let fp = if up {
+            xp[i] = x[i] + h;
+            f(&xp)
+        } else {
+            f0
+        };
+        let fm = if down {
+            xp[i] = x[i] - h;
+            f(&xp)
+        } else {
+            f0
+        };
         xp[i] = x[i];
-        g[i] = (fp - fm) / (2.0 * h);
+        let width = if up && down { 2.0 * h } else { h };
+        g[i] = (fp - fm) / width;
     }
     g
 }
@@ -79,7 +98,7 @@ pub(crate) fn minimise(
     let mut x = x0.to_vec();
     project(&mut x, lower, upper);
     let mut fx = f(&x);
-    let mut g = gradient(f, &x, h);
+    let mut g = gradient(f, &x, h, lower, upper);
     let mut hinv = nalgebra::DMatrix::<f64>::identity(n, n);
     let mut converged = false;
     let mut iterations = 0;
@@ -127,7 +146,7 @@ pub(crate) fn minimise(
             converged = gnorm < tol * 1e3;
             break;
         };
-        let gn = gradient(f, &xn, h);
+        let gn = gradient(f, &xn, h, lower, upper);
         let s = nalgebra::DVector::from_fn(n, |i, _| xn[i] - x[i]);
         let yv = nalgebra::DVector::from_fn(n, |i, _| gn[i] - g[i]);
         let sy = s.dot(&yv);

@@ -68,10 +68,19 @@ pub(crate) fn point_from_stats(
 ) -> Result<PointFit, ModelError> {
     let names = data.sd_names();
     let m = names.len();
-    let scale = stats.y_sd;
-    let objective = |eta: &[f64]| -> f64 {
-        let sds: Vec<f64> = eta.iter().map(|e| e.exp()).collect();
-        match Factorised::new(stats, &sds, None) {
+    // Parameters: log residual variance, then each component's variance as a ratio to
+    // the residual variance, bounded below by (practically) zero. On this scale the
+    // criterion keeps a non-zero slope at the boundary, so an optimiser cannot stall at
+    // a tiny variance the way it can on the log-sd scale, where every slope vanishes as
+    // the sd goes to zero.
+    let to_sds = |x: &[f64]| -> Vec<f64> {
+        let sd_resid = (0.5 * x[0]).exp();
+        std::iter::once(sd_resid)
+            .chain(x[1..].iter().map(|r| r.max(0.0).sqrt() * sd_resid))
+            .collect()
+    };
+    let objective = |x: &[f64]| -> f64 {
+        match Factorised::new(stats, &to_sds(x), None) {
             Some(f) => match method {
                 Method::Reml => f.reml_criterion_std(stats),
                 Method::Ml => f.ml_criterion(stats),
@@ -79,14 +88,17 @@ pub(crate) fn point_from_stats(
             None => f64::INFINITY,
         }
     };
-    // The bounds are generous: an sd below 1e-7 of the response's sd is zero for every
-    // practical purpose, and pinning it there keeps the factorisation well conditioned.
-    let lower = vec![(scale * 1e-7).ln(); m];
-    let upper = vec![(scale * 1e3).ln(); m];
+    let log_var = (stats.y_sd * stats.y_sd).ln();
+    let ratio_floor = 1e-12;
+    let mut lower = vec![log_var - 40.0];
+    let mut upper = vec![log_var + 15.0];
+    lower.extend(std::iter::repeat_n(ratio_floor, m - 1));
+    upper.extend(std::iter::repeat_n(1e8, m - 1));
     let mut best: Option<crate::optimize::Minimum> = None;
-    for start in [0.5, 0.15] {
-        let x0 = vec![(scale * start).ln(); m];
-        let found = minimise(&objective, &x0, &lower, &upper, 1e-7, 500);
+    for (resid_share, ratio) in [(0.5, 1.0), (0.2, 4.0), (0.8, 0.1), (0.5, 0.01)] {
+        let mut x0 = vec![log_var + f64::ln(resid_share)];
+        x0.extend(std::iter::repeat_n(ratio, m - 1));
+        let found = minimise(&objective, &x0, &lower, &upper, 1e-8, 1000);
         if best.as_ref().is_none_or(|b| found.value < b.value) {
             best = Some(found);
         }
@@ -97,7 +109,7 @@ pub(crate) fn point_from_stats(
             "the likelihood could not be evaluated at any start value".into(),
         ));
     }
-    let sds: Vec<f64> = best.x.iter().map(|e| e.exp()).collect();
+    let sds = to_sds(&best.x);
     let fac = Factorised::new(stats, &sds, None).ok_or_else(|| {
         ModelError::Numerical("Schur complement not positive definite at the estimate".into())
     })?;
@@ -130,8 +142,8 @@ pub(crate) fn point_from_stats(
         Method::Ml => fac.ml_criterion(stats),
     };
     let mut warnings = data.warnings.clone();
-    for (name, eta) in names.iter().zip(&best.x) {
-        if *eta <= lower[0] + 1e-9 {
+    for (name, ratio) in names.iter().skip(1).zip(&best.x[1..]) {
+        if *ratio <= ratio_floor * 10.0 {
             warnings.push(format!(
                 "the {name} sd is estimated at zero (boundary of the parameter space)"
             ));
