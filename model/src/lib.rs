@@ -46,3 +46,4 @@ pub mod simulate;
 pub use forecast::{
     forecast, forecast_baseline, mixture_quantile, ForecastRow, ForecastTarget, Scenario, Transform,
 };
+pub mod sbc;

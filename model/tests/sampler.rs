@@ -1,0 +1,184 @@
+//! Properties of the sampler that hold exactly: reproducibility whatever the thread
+//! count, warm starts, cancellation, and forecast structure.
+
+use std::sync::atomic::AtomicBool;
+use vigil_model::simulate::{simulate, NetworkSpec};
+use vigil_model::*;
+
+fn network() -> Data {
+    simulate(&NetworkSpec {
+        sites: 40,
+        years: 10,
+        visits: 2,
+        seed: 5,
+        ..Default::default()
+    })
+    .0
+}
+
+fn settings(threads: usize) -> SamplerSettings {
+    SamplerSettings {
+        draws: 300,
+        warmup: 200,
+        effect_draws: 30,
+        threads,
+        seed: 99,
+        ..Default::default()
+    }
+}
+
+#[test]
+fn draws_are_identical_for_a_seed_whatever_the_thread_count() {
+    let data = network();
+    let one = sample(
+        &data,
+        &Priors::default(),
+        &settings(1),
+        None,
+        Controls::default(),
+    )
+    .unwrap();
+    let four = sample(
+        &data,
+        &Priors::default(),
+        &settings(4),
+        None,
+        Controls::default(),
+    )
+    .unwrap();
+    assert_eq!(one.sd_draws, four.sd_draws);
+    assert_eq!(one.coef_draws, four.coef_draws);
+    assert_eq!(one.effects.site, four.effects.site);
+    let other_seed = sample(
+        &data,
+        &Priors::default(),
+        &SamplerSettings {
+            seed: 100,
+            ..settings(1)
+        },
+        None,
+        Controls::default(),
+    )
+    .unwrap();
+    assert_ne!(one.sd_draws, other_seed.sd_draws);
+}
+
+#[test]
+fn a_warm_start_uses_the_short_warmup_and_agrees_with_a_cold_fit() {
+    let data = network();
+    let cold = sample(
+        &data,
+        &Priors::default(),
+        &settings(0),
+        None,
+        Controls::default(),
+    )
+    .unwrap();
+    let warm = sample(
+        &data,
+        &Priors::default(),
+        &settings(0),
+        Some(&cold.warm_start),
+        Controls::default(),
+    )
+    .unwrap();
+    assert!(!cold.diagnostics.warm_started && warm.diagnostics.warm_started);
+    assert_eq!(warm.diagnostics.warmup, settings(0).warm_warmup);
+    assert!(warm.diagnostics.max_rhat < 1.02, "{:?}", warm.diagnostics);
+    for name in ["residual", "site", "year"] {
+        let c = cold.summary(SummaryKind::Sd, name, None).unwrap();
+        let w = warm.summary(SummaryKind::Sd, name, None).unwrap();
+        let mcse = (c.sd / c.ess_bulk.sqrt()).hypot(w.sd / w.ess_bulk.sqrt());
+        assert!(
+            (c.mean - w.mean).abs() < 5.0 * mcse,
+            "{name}: {} vs {}",
+            c.mean,
+            w.mean
+        );
+    }
+    // A warm state for other components (a new grouping factor) is ignored, not misused.
+    let mut foreign = cold.warm_start.clone();
+    foreign.sd_names.push("crew".into());
+    let fallback = sample(
+        &data,
+        &Priors::default(),
+        &settings(0),
+        Some(&foreign),
+        Controls::default(),
+    )
+    .unwrap();
+    assert!(!fallback.diagnostics.warm_started);
+}
+
+#[test]
+fn a_raised_cancel_flag_stops_the_fit() {
+    let data = network();
+    let cancel = AtomicBool::new(true);
+    let controls = Controls {
+        cancel: Some(&cancel),
+        progress: None,
+    };
+    let err = sample(&data, &Priors::default(), &settings(0), None, controls).unwrap_err();
+    assert_eq!(err, ModelError::Cancelled);
+}
+
+#[test]
+fn forecasts_cover_the_four_targets_with_ordered_intervals_and_shares_summing_to_one() {
+    let data = network();
+    let post = sample(
+        &data,
+        &Priors::default(),
+        &settings(0),
+        None,
+        Controls::default(),
+    )
+    .unwrap();
+    for transform in [Transform::None, Transform::Log] {
+        let rows = forecast_baseline(&post, transform);
+        let count = |t: ForecastTarget| rows.iter().filter(|r| r.target == t).count();
+        assert_eq!(count(ForecastTarget::KnownSiteNewYear), data.n_sites());
+        assert_eq!(count(ForecastTarget::KnownSiteKnownYear), data.n_sites());
+        assert_eq!(count(ForecastTarget::NewSiteKnownYear), data.n_years());
+        assert_eq!(count(ForecastTarget::NewSiteNewYear), 1);
+        for r in &rows {
+            let ordered = [r.lo95, r.lo80, r.lo50, r.q50, r.hi50, r.hi80, r.hi95];
+            assert!(ordered.windows(2).all(|w| w[0] <= w[1]), "{r:?}");
+            let total = r.share_site
+                + r.share_year
+                + r.share_groups
+                + r.share_residual
+                + r.share_estimation;
+            assert!((total - 1.0).abs() < 1e-12, "{r:?}");
+            assert_eq!(
+                r.site.is_none(),
+                matches!(
+                    r.target,
+                    ForecastTarget::NewSiteKnownYear | ForecastTarget::NewSiteNewYear
+                )
+            );
+            if transform == Transform::Log {
+                assert!(r.lo95 > 0.0);
+            }
+        }
+        // A new site next year is the least certain target.
+        let width = |t: ForecastTarget| {
+            let v: Vec<f64> = rows
+                .iter()
+                .filter(|r| r.target == t)
+                .map(|r| r.hi80 - r.lo80)
+                .collect();
+            v.iter().sum::<f64>() / v.len() as f64
+        };
+        if transform == Transform::None {
+            assert!(
+                width(ForecastTarget::NewSiteNewYear) > width(ForecastTarget::KnownSiteNewYear)
+            );
+            assert!(
+                width(ForecastTarget::NewSiteNewYear) > width(ForecastTarget::NewSiteKnownYear)
+            );
+            assert!(
+                width(ForecastTarget::KnownSiteKnownYear) < width(ForecastTarget::KnownSiteNewYear)
+            );
+        }
+    }
+}

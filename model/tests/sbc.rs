@@ -1,0 +1,66 @@
+//! Simulation-based calibration (Talts et al. 2018): the ranks of prior-drawn true values
+//! among posterior draws are uniform when the sampler is exact. The default suite runs a
+//! fast subset; the full study (>= 500 replicates) runs on request:
+//! `cargo test -p vigil-model --release --test sbc -- --ignored --nocapture`
+//! and writes its rank histograms to `target/sbc/` (or `$VIGIL_REPORT_DIR`).
+
+use rayon::prelude::*;
+use vigil_model::sbc::{rank_uniformity, sbc_replicate, SbcSpec, SBC_QUANTITIES};
+
+fn study(replicates: usize, first_seed: u64) -> Vec<Vec<usize>> {
+    let spec = SbcSpec::default();
+    (0..replicates as u64)
+        .into_par_iter()
+        .map(|r| sbc_replicate(&spec, first_seed + r).expect("replicate fits"))
+        .collect()
+}
+
+fn report(all: &[Vec<usize>], kept: usize, bins: usize) -> (String, f64) {
+    let mut text = String::new();
+    let mut min_p = 1.0f64;
+    for (q, name) in SBC_QUANTITIES.iter().enumerate() {
+        let ranks: Vec<usize> = all.iter().map(|r| r[q]).collect();
+        let (counts, stat, p) = rank_uniformity(&ranks, kept, bins);
+        min_p = min_p.min(p);
+        text.push_str(&format!(
+            "{name:<12} chi2 = {stat:7.2} (df {}), p = {p:.4}\n",
+            bins - 1
+        ));
+        let max = *counts.iter().max().unwrap_or(&1) as f64;
+        for (b, c) in counts.iter().enumerate() {
+            let bar = "#".repeat((40.0 * *c as f64 / max).round() as usize);
+            text.push_str(&format!("  bin {b:2} {c:5} {bar}\n"));
+        }
+    }
+    (text, min_p)
+}
+
+#[test]
+fn sbc_fast_subset_ranks_are_uniform() {
+    let all = study(100, 1);
+    let (text, min_p) = report(&all, SbcSpec::default().kept, 5);
+    // Five tests on fixed seeds: a p-value below 0.001 would flag a miscalibrated sampler.
+    assert!(min_p > 0.001, "{text}");
+}
+
+#[test]
+#[ignore = "full SBC study: run on request"]
+fn sbc_full_study() {
+    let replicates = std::env::var("VIGIL_SBC_REPLICATES")
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .unwrap_or(500);
+    let all = study(replicates, 10_000);
+    let (text, min_p) = report(&all, SbcSpec::default().kept, 20);
+    let dir = std::env::var("VIGIL_REPORT_DIR")
+        .unwrap_or_else(|_| format!("{}/../target/sbc", env!("CARGO_MANIFEST_DIR")));
+    std::fs::create_dir_all(&dir).unwrap();
+    let path = format!("{dir}/sbc_ranks.txt");
+    std::fs::write(
+        &path,
+        format!("SBC, {replicates} replicates, 20 bins\n{text}"),
+    )
+    .unwrap();
+    println!("{text}\nwritten to {path}");
+    assert!(min_p > 0.001, "{text}");
+}
