@@ -1,0 +1,95 @@
+//! The command line: argument parsing (clap derive) and dispatch to `commands`.
+//!
+//! To add a command: add a variant to [`Command`] with its doc comment (that is its
+//! `--help`), write `commands/<name>.rs` with an `async fn run(&Context, …) -> anyhow::Result<()>`,
+//! and add one arm to [`dispatch`].
+
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+
+use crate::commands::{self, Context};
+use crate::config::CONFIG_ENV;
+use crate::telemetry::{self, LogFormat};
+
+/// Vigil keeps the site/year variance model of a monitoring network up to date.
+#[derive(Debug, Parser)]
+#[command(name = "vigil", version, about, propagate_version = true)]
+pub struct Cli {
+    /// Configuration file [default: ./vigil.toml]
+    #[arg(long, global = true, value_name = "PATH", env = CONFIG_ENV)]
+    pub config: Option<PathBuf>,
+
+    /// Log line format on stderr [default: text on a terminal, json otherwise]
+    #[arg(long, global = true, value_enum, value_name = "FORMAT")]
+    pub log_format: Option<LogFormat>,
+
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Create the database and the feed folders, and apply migrations (idempotent)
+    Init,
+    /// Ingest the named feed files, or every file waiting in the inbox
+    Ingest {
+        /// Files to ingest (CSV or Arrow IPC); none means the whole inbox, in name order
+        #[arg(value_name = "FILE")]
+        files: Vec<PathBuf>,
+    },
+    /// Show recent runs and batches, and the latest version of each series
+    Status {
+        /// Print one JSON document instead of text
+        #[arg(long)]
+        json: bool,
+    },
+}
+
+/// Parse the process arguments, run the command, and turn the result into an exit code:
+/// 0 on success; 1 with a one-line reason on stderr on failure; 2 for a usage error.
+pub fn run() -> ExitCode {
+    let cli = match Cli::try_parse() {
+        Ok(cli) => cli,
+        Err(e) => {
+            let _ = e.print();
+            return if e.use_stderr() {
+                ExitCode::from(2)
+            } else {
+                ExitCode::SUCCESS
+            };
+        }
+    };
+    telemetry::init(cli.log_format);
+    let runtime = match tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+    {
+        Ok(rt) => rt,
+        Err(e) => {
+            eprintln!("vigil: error: cannot start the async runtime: {e}");
+            return ExitCode::FAILURE;
+        }
+    };
+    match runtime.block_on(dispatch(cli)) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            let reason = format!("{e:#}").replace('\n', " ");
+            // Only the one line: the log stream also goes to stderr and would repeat it.
+            eprintln!("vigil: error: {reason}");
+            ExitCode::FAILURE
+        }
+    }
+}
+
+/// Run one parsed command.
+pub async fn dispatch(cli: Cli) -> anyhow::Result<()> {
+    let ctx = Context::load(cli.config.as_deref())?;
+    match cli.command {
+        Command::Init => commands::init::run(&ctx).await,
+        Command::Ingest { files } => commands::ingest::run(&ctx, &files).await,
+        Command::Status { json } => commands::status::run(&ctx, json).await,
+    }
+}

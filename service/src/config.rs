@@ -1,0 +1,759 @@
+//! The `vigil.toml` configuration: its TOML shape (DESIGN.md §4.2), its defaults, and the
+//! checks run at start-up so that a mistake is reported once, naming the file and the key,
+//! instead of surfacing in the middle of a nightly run.
+
+use std::collections::{BTreeMap, BTreeSet};
+use std::fmt;
+use std::path::{Path, PathBuf};
+
+use serde::{Deserialize, Serialize};
+
+use crate::schedule::Schedule;
+
+/// Environment variable naming the config file when `--config` is not given.
+pub const CONFIG_ENV: &str = "VIGIL_CONFIG";
+/// Config file used when neither `--config` nor `VIGIL_CONFIG` is given.
+pub const DEFAULT_CONFIG: &str = "vigil.toml";
+
+/// A problem with the configuration, written for the person editing the file.
+#[derive(Debug, thiserror::Error)]
+pub enum ConfigError {
+    #[error("cannot read config file {path}: {source}")]
+    Read {
+        path: PathBuf,
+        source: std::io::Error,
+    },
+    #[error("{file}: {key}{location}: {message}")]
+    Invalid {
+        file: String,
+        key: String,
+        location: String,
+        message: String,
+    },
+}
+
+/// The whole validated configuration. Paths are absolute (resolved against the directory of
+/// the config file).
+#[derive(Debug, Clone)]
+pub struct Config {
+    pub path: PathBuf,
+    pub database: PathBuf,
+    pub feed: FeedDirs,
+    pub schedule: Schedule,
+    /// The key columns of the feed, shared by every series (a current limit).
+    pub keys: KeyColumns,
+    pub series: Vec<SeriesConfig>,
+}
+
+#[derive(Debug, Clone)]
+pub struct FeedDirs {
+    pub inbox: PathBuf,
+    pub archive: PathBuf,
+    pub quarantine: PathBuf,
+}
+
+/// Names of the columns that identify a visit in feed files.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct KeyColumns {
+    pub site: String,
+    pub year: String,
+    pub visit: Option<String>,
+}
+
+/// One modelled indicator.
+#[derive(Debug, Clone, Serialize)]
+pub struct SeriesConfig {
+    pub name: String,
+    pub response: String,
+    pub transform: Transform,
+    pub covariates: Vec<String>,
+    pub groups: Vec<String>,
+    pub priors: Priors,
+    pub sampler: SamplerConfig,
+}
+
+impl SeriesConfig {
+    /// Every stored column this series reads: response, covariates, groups.
+    pub fn columns(&self) -> Vec<String> {
+        let mut cols = vec![self.response.clone()];
+        cols.extend(self.covariates.iter().cloned());
+        cols.extend(self.groups.iter().cloned());
+        cols
+    }
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Transform {
+    None,
+    Log,
+}
+
+impl fmt::Display for Transform {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(match self {
+            Transform::None => "none",
+            Transform::Log => "log",
+        })
+    }
+}
+
+/// Prior for a standard deviation, on the model scale of the response.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case", deny_unknown_fields)]
+pub enum SdPrior {
+    HalfNormal(f64),
+    HalfStudentT {
+        df: f64,
+        scale: f64,
+    },
+    /// Exponential with the given rate.
+    Exponential(f64),
+}
+
+/// Prior for the intercept or a coefficient.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case", deny_unknown_fields)]
+pub enum LocationPrior {
+    Normal { mean: f64, sd: f64 },
+}
+
+/// Priors written in the config; `None` means "use the data-scaled default" chosen by the
+/// model step (recorded with each fit).
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Priors {
+    pub residual_sd: Option<SdPrior>,
+    pub site_sd: Option<SdPrior>,
+    pub year_sd: Option<SdPrior>,
+    /// Applies to the standard deviation of every column in `groups`.
+    pub group_sd: Option<SdPrior>,
+    pub intercept: Option<LocationPrior>,
+    pub coefficients: Option<LocationPrior>,
+}
+
+/// Sampler settings with their documented defaults.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct SamplerConfig {
+    pub chains: u32,
+    /// Saved draws per chain.
+    pub draws: u32,
+    /// Warm-up iterations per chain of a cold start; warm starts may use fewer.
+    pub warmup: u32,
+    pub seed: u64,
+    pub max_rhat: f64,
+    pub min_ess: f64,
+}
+
+impl Default for SamplerConfig {
+    fn default() -> Self {
+        SamplerConfig {
+            chains: 4,
+            draws: 1000,
+            warmup: 1000,
+            seed: 1,
+            max_rhat: 1.01,
+            min_ess: 400.0,
+        }
+    }
+}
+
+// ---- TOML shape -------------------------------------------------------------------------
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawConfig {
+    #[serde(default)]
+    store: RawStore,
+    #[serde(default)]
+    feed: RawFeed,
+    #[serde(default)]
+    schedule: RawSchedule,
+    #[serde(default)]
+    series: Vec<RawSeries>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+struct RawStore {
+    database: String,
+}
+impl Default for RawStore {
+    fn default() -> Self {
+        RawStore {
+            database: "vigil.db".into(),
+        }
+    }
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+struct RawFeed {
+    inbox: String,
+    archive: String,
+    quarantine: String,
+}
+impl Default for RawFeed {
+    fn default() -> Self {
+        RawFeed {
+            inbox: "inbox".into(),
+            archive: "archive".into(),
+            quarantine: "quarantine".into(),
+        }
+    }
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+struct RawSchedule {
+    cron: String,
+    timezone: String,
+}
+impl Default for RawSchedule {
+    fn default() -> Self {
+        RawSchedule {
+            cron: "30 2 * * *".into(),
+            timezone: "UTC".into(),
+        }
+    }
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawSeries {
+    name: String,
+    response: String,
+    #[serde(default = "default_transform")]
+    transform: String,
+    site: String,
+    year: String,
+    visit: Option<String>,
+    #[serde(default)]
+    covariates: Vec<String>,
+    #[serde(default)]
+    groups: Vec<String>,
+    #[serde(default)]
+    priors: Priors,
+    #[serde(default)]
+    sampler: SamplerConfig,
+}
+
+fn default_transform() -> String {
+    "none".into()
+}
+
+// ---- loading ----------------------------------------------------------------------------
+
+/// Which config file to use: `--config`, else `VIGIL_CONFIG`, else `./vigil.toml`.
+pub fn locate(cli: Option<&Path>) -> PathBuf {
+    if let Some(p) = cli {
+        return p.to_path_buf();
+    }
+    match std::env::var_os(CONFIG_ENV) {
+        Some(v) if !v.is_empty() => PathBuf::from(v),
+        _ => PathBuf::from(DEFAULT_CONFIG),
+    }
+}
+
+impl Config {
+    /// Read and validate the config file at `path`.
+    pub fn load(path: &Path) -> Result<Config, ConfigError> {
+        let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
+            path: path.to_path_buf(),
+            source,
+        })?;
+        let dir = path
+            .parent()
+            .map(|p| {
+                if p.as_os_str().is_empty() {
+                    Path::new(".")
+                } else {
+                    p
+                }
+            })
+            .unwrap_or(Path::new("."));
+        let dir = std::path::absolute(dir).unwrap_or_else(|_| dir.to_path_buf());
+        Config::parse(&text, &path.display().to_string(), &dir).map(|mut c| {
+            c.path = path.to_path_buf();
+            c
+        })
+    }
+
+    /// Parse and validate config text. `file` names it in messages; relative paths are
+    /// resolved against `dir`.
+    pub fn parse(text: &str, file: &str, dir: &Path) -> Result<Config, ConfigError> {
+        let invalid = |key: &str, message: String| ConfigError::Invalid {
+            file: file.to_string(),
+            key: key.to_string(),
+            location: String::new(),
+            message,
+        };
+
+        let de = toml::Deserializer::new(text);
+        let raw: RawConfig = serde_path_to_error::deserialize(de).map_err(|e| {
+            let key = e.path().to_string();
+            let inner = e.into_inner();
+            let location = inner
+                .span()
+                .map(|span| {
+                    let (line, col) = line_col(text, span.start);
+                    format!(" (line {line}, column {col})")
+                })
+                .unwrap_or_default();
+            ConfigError::Invalid {
+                file: file.to_string(),
+                key: if key == "." {
+                    "(top level)".into()
+                } else {
+                    key
+                },
+                location,
+                message: inner.message().trim().to_string(),
+            }
+        })?;
+
+        let resolve = |key: &str, p: &str| -> Result<PathBuf, ConfigError> {
+            if p.trim().is_empty() {
+                return Err(invalid(
+                    key,
+                    "must name a path, found an empty string".into(),
+                ));
+            }
+            let p = Path::new(p);
+            Ok(if p.is_absolute() {
+                p.to_path_buf()
+            } else {
+                dir.join(p)
+            })
+        };
+        let database = resolve("store.database", &raw.store.database)?;
+        let feed = FeedDirs {
+            inbox: resolve("feed.inbox", &raw.feed.inbox)?,
+            archive: resolve("feed.archive", &raw.feed.archive)?,
+            quarantine: resolve("feed.quarantine", &raw.feed.quarantine)?,
+        };
+        let schedule = Schedule::parse(&raw.schedule.cron, &raw.schedule.timezone)
+            .map_err(|e| invalid(e.key, e.message))?;
+
+        if raw.series.is_empty() {
+            return Err(invalid(
+                "series",
+                "at least one [[series]] is required (it also names the site and year columns of the feed)"
+                    .into(),
+            ));
+        }
+
+        let mut keys: Option<KeyColumns> = None;
+        let mut names = BTreeSet::new();
+        // Column -> (kind, first key that used it), so a column is typed the same everywhere.
+        let mut column_kind: BTreeMap<String, (&'static str, String)> = BTreeMap::new();
+        let mut series = Vec::with_capacity(raw.series.len());
+
+        for (i, rs) in raw.series.into_iter().enumerate() {
+            let at = |k: &str| format!("series[{i}].{k}");
+            for (k, v) in [
+                ("name", &rs.name),
+                ("response", &rs.response),
+                ("site", &rs.site),
+                ("year", &rs.year),
+            ] {
+                if v.trim().is_empty() {
+                    return Err(invalid(&at(k), "must not be empty".into()));
+                }
+            }
+            if !names.insert(rs.name.clone()) {
+                return Err(invalid(
+                    &at("name"),
+                    format!(
+                        "series name {:?} is used twice; names must be unique",
+                        rs.name
+                    ),
+                ));
+            }
+            let transform = match rs.transform.as_str() {
+                "none" => Transform::None,
+                "log" => Transform::Log,
+                other => {
+                    return Err(invalid(
+                        &at("transform"),
+                        format!("must be \"none\" or \"log\", found {other:?}"),
+                    ))
+                }
+            };
+            if let Some(v) = &rs.visit {
+                if v.trim().is_empty() {
+                    return Err(invalid(
+                        &at("visit"),
+                        "must not be empty (leave the key out when there is no visit column)"
+                            .into(),
+                    ));
+                }
+            }
+            let these = KeyColumns {
+                site: rs.site.clone(),
+                year: rs.year.clone(),
+                visit: rs.visit.clone(),
+            };
+            if these.site == these.year
+                || Some(&these.site) == these.visit.as_ref()
+                || Some(&these.year) == these.visit.as_ref()
+            {
+                return Err(invalid(
+                    &at("site"),
+                    "site, year and visit must be three different columns".into(),
+                ));
+            }
+            match &keys {
+                None => keys = Some(these.clone()),
+                Some(k) if *k != these => {
+                    return Err(invalid(
+                        &at("site"),
+                        format!(
+                            "every series must use the same site/year/visit columns (a current limit): series[0] uses {}, this one uses {}",
+                            describe_keys(k),
+                            describe_keys(&these)
+                        ),
+                    ))
+                }
+                Some(_) => {}
+            }
+            let key_cols: Vec<&str> = [
+                Some(rs.site.as_str()),
+                Some(rs.year.as_str()),
+                rs.visit.as_deref(),
+            ]
+            .into_iter()
+            .flatten()
+            .collect();
+
+            let mut seen = BTreeSet::new();
+            let roles = std::iter::once(("response", &rs.response, "numeric"))
+                .chain(rs.covariates.iter().map(|c| ("covariates", c, "numeric")))
+                .chain(rs.groups.iter().map(|g| ("groups", g, "label")));
+            for (role, col, kind) in roles {
+                let key = at(role);
+                if col.trim().is_empty() {
+                    return Err(invalid(&key, "column names must not be empty".into()));
+                }
+                if key_cols.contains(&col.as_str()) {
+                    return Err(invalid(
+                        &key,
+                        format!("{col:?} is a site/year/visit column and cannot also be a {role} column"),
+                    ));
+                }
+                if !seen.insert(col.clone()) {
+                    return Err(invalid(
+                        &key,
+                        format!("column {col:?} appears more than once in this series (response, covariates and groups must be distinct)"),
+                    ));
+                }
+                match column_kind.get(col) {
+                    Some((k, first)) if *k != kind => {
+                        return Err(invalid(
+                            &key,
+                            format!("column {col:?} is a {kind} column here but a {k} column in {first}; a column is either numeric or a group label everywhere"),
+                        ))
+                    }
+                    Some(_) => {}
+                    None => {
+                        column_kind.insert(col.clone(), (kind, key.clone()));
+                    }
+                }
+            }
+
+            check_priors(&rs.priors, &at("priors")).map_err(|(k, m)| invalid(&k, m))?;
+            check_sampler(&rs.sampler, &at("sampler")).map_err(|(k, m)| invalid(&k, m))?;
+
+            series.push(SeriesConfig {
+                name: rs.name,
+                response: rs.response,
+                transform,
+                covariates: rs.covariates,
+                groups: rs.groups,
+                priors: rs.priors,
+                sampler: rs.sampler,
+            });
+        }
+
+        let keys =
+            keys.ok_or_else(|| invalid("series", "at least one [[series]] is required".into()))?;
+        Ok(Config {
+            path: PathBuf::from(file),
+            database,
+            feed,
+            schedule,
+            keys,
+            series,
+        })
+    }
+
+    /// Columns whose cells are labels (text) rather than numbers: the union of every
+    /// series' `groups`.
+    pub fn label_columns(&self) -> BTreeSet<String> {
+        self.series
+            .iter()
+            .flat_map(|s| s.groups.iter().cloned())
+            .collect()
+    }
+
+    pub fn series(&self, name: &str) -> Option<&SeriesConfig> {
+        self.series.iter().find(|s| s.name == name)
+    }
+}
+
+fn describe_keys(k: &KeyColumns) -> String {
+    match &k.visit {
+        Some(v) => format!("site={:?} year={:?} visit={:?}", k.site, k.year, v),
+        None => format!("site={:?} year={:?} (no visit)", k.site, k.year),
+    }
+}
+
+fn line_col(text: &str, offset: usize) -> (usize, usize) {
+    let before = &text[..offset.min(text.len())];
+    let line = before.matches('\n').count() + 1;
+    let col = before.rsplit('\n').next().map_or(0, |l| l.chars().count()) + 1;
+    (line, col)
+}
+
+fn check_sd_prior(p: &SdPrior, key: &str) -> Result<(), (String, String)> {
+    let bad = |what: &str, v: f64| {
+        Err((
+            key.to_string(),
+            format!("{what} must be a positive finite number, found {v}"),
+        ))
+    };
+    match *p {
+        SdPrior::HalfNormal(s) if !(s.is_finite() && s > 0.0) => bad("half_normal scale", s),
+        SdPrior::Exponential(r) if !(r.is_finite() && r > 0.0) => bad("exponential rate", r),
+        SdPrior::HalfStudentT { df, .. } if !(df.is_finite() && df > 0.0) => {
+            bad("half_student_t df", df)
+        }
+        SdPrior::HalfStudentT { scale, .. } if !(scale.is_finite() && scale > 0.0) => {
+            bad("half_student_t scale", scale)
+        }
+        _ => Ok(()),
+    }
+}
+
+fn check_location_prior(p: &LocationPrior, key: &str) -> Result<(), (String, String)> {
+    let LocationPrior::Normal { mean, sd } = *p;
+    if !mean.is_finite() {
+        return Err((
+            key.to_string(),
+            format!("normal mean must be finite, found {mean}"),
+        ));
+    }
+    if !(sd.is_finite() && sd > 0.0) {
+        return Err((
+            key.to_string(),
+            format!("normal sd must be a positive finite number, found {sd}"),
+        ));
+    }
+    Ok(())
+}
+
+fn check_priors(p: &Priors, at: &str) -> Result<(), (String, String)> {
+    for (k, v) in [
+        ("residual_sd", &p.residual_sd),
+        ("site_sd", &p.site_sd),
+        ("year_sd", &p.year_sd),
+        ("group_sd", &p.group_sd),
+    ] {
+        if let Some(v) = v {
+            check_sd_prior(v, &format!("{at}.{k}"))?;
+        }
+    }
+    for (k, v) in [
+        ("intercept", &p.intercept),
+        ("coefficients", &p.coefficients),
+    ] {
+        if let Some(v) = v {
+            check_location_prior(v, &format!("{at}.{k}"))?;
+        }
+    }
+    Ok(())
+}
+
+fn check_sampler(s: &SamplerConfig, at: &str) -> Result<(), (String, String)> {
+    let err = |k: &str, m: String| Err((format!("{at}.{k}"), m));
+    if s.chains < 1 {
+        return err("chains", format!("must be at least 1, found {}", s.chains));
+    }
+    if s.draws < 100 {
+        return err(
+            "draws",
+            format!(
+                "must be at least 100 saved draws per chain, found {}",
+                s.draws
+            ),
+        );
+    }
+    if !(s.max_rhat.is_finite() && s.max_rhat > 1.0) {
+        return err(
+            "max_rhat",
+            format!(
+                "must be a number greater than 1 (e.g. 1.01), found {}",
+                s.max_rhat
+            ),
+        );
+    }
+    if !(s.min_ess.is_finite() && s.min_ess > 0.0) {
+        return err(
+            "min_ess",
+            format!("must be a positive number, found {}", s.min_ess),
+        );
+    }
+    let saved = f64::from(s.chains) * f64::from(s.draws);
+    if s.min_ess > saved {
+        return err(
+            "min_ess",
+            format!(
+                "{} can never be reached with chains x draws = {} saved draws",
+                s.min_ess, saved
+            ),
+        );
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const GOOD: &str = r#"
+[store]
+database = "data/vigil.db"
+[feed]
+inbox = "in"
+[schedule]
+cron = "30 2 * * *"
+timezone = "Europe/Helsinki"
+
+[[series]]
+name = "chlorophyll"
+response = "chl_ug_l"
+transform = "log"
+site = "lake"
+year = "season"
+visit = "visit"
+covariates = ["surface_temp_c"]
+groups = ["crew"]
+[series.priors]
+residual_sd = { half_normal = 1 }
+site_sd = { half_student_t = { df = 3, scale = 2.5 } }
+year_sd = { exponential = 2.0 }
+intercept = { normal = { mean = 0.0, sd = 100.0 } }
+[series.sampler]
+chains = 2
+draws = 500
+"#;
+
+    fn parse(text: &str) -> Result<Config, ConfigError> {
+        Config::parse(text, "vigil.toml", Path::new("/etc/vigil"))
+    }
+
+    fn message(text: &str) -> String {
+        parse(text).err().map(|e| e.to_string()).unwrap_or_default()
+    }
+
+    #[test]
+    fn reads_every_documented_key() {
+        let c = parse(GOOD).unwrap();
+        assert_eq!(c.database, Path::new("/etc/vigil/data/vigil.db"));
+        assert_eq!(c.feed.inbox, Path::new("/etc/vigil/in"));
+        assert_eq!(c.feed.archive, Path::new("/etc/vigil/archive"));
+        let s = &c.series[0];
+        assert_eq!(s.transform, Transform::Log);
+        assert_eq!(s.priors.residual_sd, Some(SdPrior::HalfNormal(1.0)));
+        assert_eq!(
+            s.priors.site_sd,
+            Some(SdPrior::HalfStudentT {
+                df: 3.0,
+                scale: 2.5
+            })
+        );
+        assert_eq!(s.priors.year_sd, Some(SdPrior::Exponential(2.0)));
+        assert_eq!(s.sampler.chains, 2);
+        assert_eq!(s.sampler.seed, 1);
+        assert_eq!(c.keys.visit.as_deref(), Some("visit"));
+        assert!(c.label_columns().contains("crew"));
+    }
+
+    #[test]
+    fn bad_transform_names_the_key_and_the_value() {
+        let text = GOOD.replace("transform = \"log\"", "transform = \"ln\"");
+        assert_eq!(
+            message(&text),
+            "vigil.toml: series[0].transform: must be \"none\" or \"log\", found \"ln\""
+        );
+    }
+
+    #[test]
+    fn unknown_key_is_refused_with_its_path() {
+        let text = GOOD.replace("chains = 2", "chains = 2\nthin = 5");
+        let m = message(&text);
+        assert!(m.starts_with("vigil.toml: series[0].sampler"), "{m}");
+        assert!(m.contains("unknown field `thin`"), "{m}");
+        assert!(m.contains("line "), "{m}");
+    }
+
+    #[test]
+    fn prior_scales_must_be_positive() {
+        let text = GOOD.replace("half_normal = 1", "half_normal = -1");
+        let m = message(&text);
+        assert!(m.contains("series[0].priors.residual_sd"), "{m}");
+        assert!(m.contains("positive"), "{m}");
+        let text = GOOD.replace("{ exponential = 2.0 }", "{ half_cauchy = 2.0 }");
+        let m = message(&text);
+        assert!(m.contains("series[0].priors.year_sd"), "{m}");
+        assert!(m.contains("half_cauchy"), "{m}");
+    }
+
+    #[test]
+    fn sampler_limits() {
+        assert!(
+            message(&GOOD.replace("chains = 2", "chains = 0")).contains("series[0].sampler.chains")
+        );
+        assert!(
+            message(&GOOD.replace("draws = 500", "draws = 50")).contains("series[0].sampler.draws")
+        );
+        assert!(
+            message(&GOOD.replace("draws = 500", "draws = 500\nmax_rhat = 1.0"))
+                .contains("series[0].sampler.max_rhat")
+        );
+        assert!(
+            message(&GOOD.replace("draws = 500", "draws = 500\nmin_ess = 5000"))
+                .contains("can never be reached")
+        );
+    }
+
+    #[test]
+    fn schedule_is_checked() {
+        let m = message(&GOOD.replace("30 2 * * *", "every night"));
+        assert!(m.starts_with("vigil.toml: schedule.cron:"), "{m}");
+        let m = message(&GOOD.replace("Europe/Helsinki", "Mars/Olympus"));
+        assert!(m.starts_with("vigil.toml: schedule.timezone:"), "{m}");
+    }
+
+    #[test]
+    fn columns_are_checked() {
+        let m = message(&GOOD.replace("groups = [\"crew\"]", "groups = [\"lake\"]"));
+        assert!(m.contains("series[0].groups"), "{m}");
+        let two = format!("{GOOD}\n[[series]]\nname = \"chlorophyll\"\nresponse = \"tp\"\nsite = \"lake\"\nyear = \"season\"\nvisit = \"visit\"\n");
+        assert!(message(&two).contains("series[1].name"));
+        let other_keys = format!("{GOOD}\n[[series]]\nname = \"tp\"\nresponse = \"tp\"\nsite = \"station\"\nyear = \"season\"\nvisit = \"visit\"\n");
+        let m = message(&other_keys);
+        assert!(
+            m.contains("series[1].site") && m.contains("current limit"),
+            "{m}"
+        );
+        let retyped = format!("{GOOD}\n[[series]]\nname = \"tp\"\nresponse = \"crew\"\nsite = \"lake\"\nyear = \"season\"\nvisit = \"visit\"\n");
+        assert!(message(&retyped).contains("either numeric or a group label"));
+    }
+
+    #[test]
+    fn at_least_one_series() {
+        assert!(message("[store]\ndatabase = \"x.db\"\n").contains("series"));
+    }
+}

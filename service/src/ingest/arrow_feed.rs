@@ -1,0 +1,124 @@
+//! Reading an Arrow IPC feed file (file format, or stream format) into a [`Collector`].
+//!
+//! Text, integer and floating-point columns are understood; a cell of any other type is
+//! rejected with its type named. `line` in rejections is the 1-based row number counted
+//! across record batches.
+
+use std::io::Cursor;
+
+use arrow_array::cast::AsArray;
+use arrow_array::types::{
+    Float32Type, Float64Type, Int16Type, Int32Type, Int64Type, Int8Type, UInt16Type, UInt32Type,
+    UInt64Type, UInt8Type,
+};
+use arrow_array::{Array, RecordBatch};
+use arrow_schema::DataType;
+
+use super::collect::{Collector, RawCell};
+use super::{FileLayout, Unreadable};
+
+/// First bytes of an Arrow IPC file.
+pub const FILE_MAGIC: &[u8] = b"ARROW1";
+/// First bytes of an Arrow IPC stream (the continuation marker).
+pub const STREAM_MAGIC: &[u8] = &[0xFF, 0xFF, 0xFF, 0xFF];
+
+pub fn read(bytes: &[u8], layout: &FileLayout) -> Result<Collector, Unreadable> {
+    let unreadable =
+        |e: arrow_schema::ArrowError| Unreadable(format!("unreadable Arrow IPC data: {e}"));
+    let (schema, batches): (_, Box<dyn Iterator<Item = Result<RecordBatch, _>>>) =
+        if bytes.starts_with(FILE_MAGIC) {
+            let r = arrow_ipc::reader::FileReader::try_new(Cursor::new(bytes), None)
+                .map_err(unreadable)?;
+            (r.schema(), Box::new(r))
+        } else {
+            let r = arrow_ipc::reader::StreamReader::try_new(Cursor::new(bytes), None)
+                .map_err(unreadable)?;
+            (r.schema(), Box::new(r))
+        };
+    let header: Vec<String> = schema
+        .fields()
+        .iter()
+        .map(|f| f.name().trim().to_string())
+        .collect();
+    let plan = layout.plan(&header)?;
+    let mut collector = Collector::new(&layout.keys.site, &layout.keys.year, plan.measures.clone());
+    let mut row_number: u64 = 0;
+    for batch in batches {
+        let batch = batch.map_err(unreadable)?;
+        let columns = batch.columns();
+        for i in 0..batch.num_rows() {
+            row_number += 1;
+            let at = |c: usize| cell(columns[c].as_ref(), i);
+            let cells: Vec<RawCell<'_>> = plan.measure_at.iter().map(|&c| at(c)).collect();
+            collector.row(
+                row_number,
+                at(plan.site_at),
+                at(plan.year_at),
+                plan.visit_at.map(at),
+                &cells,
+            );
+        }
+    }
+    Ok(collector)
+}
+
+fn cell(array: &dyn Array, i: usize) -> RawCell<'_> {
+    if array.is_null(i) {
+        return RawCell::Empty;
+    }
+    macro_rules! int {
+        ($t:ty) => {
+            array
+                .as_primitive_opt::<$t>()
+                .map_or(RawCell::Unsupported("?"), |a| {
+                    RawCell::Int(i64::from(a.value(i)))
+                })
+        };
+    }
+    match array.data_type() {
+        DataType::Utf8 => array
+            .as_string_opt::<i32>()
+            .map_or(RawCell::Unsupported("?"), |a| RawCell::Text(a.value(i))),
+        DataType::LargeUtf8 => array
+            .as_string_opt::<i64>()
+            .map_or(RawCell::Unsupported("?"), |a| RawCell::Text(a.value(i))),
+        DataType::Utf8View => array
+            .as_string_view_opt()
+            .map_or(RawCell::Unsupported("?"), |a| RawCell::Text(a.value(i))),
+        DataType::Int8 => int!(Int8Type),
+        DataType::Int16 => int!(Int16Type),
+        DataType::Int32 => int!(Int32Type),
+        DataType::Int64 => int!(Int64Type),
+        DataType::UInt8 => int!(UInt8Type),
+        DataType::UInt16 => int!(UInt16Type),
+        DataType::UInt32 => int!(UInt32Type),
+        DataType::UInt64 => {
+            array
+                .as_primitive_opt::<UInt64Type>()
+                .map_or(RawCell::Unsupported("?"), |a| {
+                    match i64::try_from(a.value(i)) {
+                        Ok(v) => RawCell::Int(v),
+                        Err(_) => RawCell::Float(a.value(i) as f64),
+                    }
+                })
+        }
+        DataType::Float32 => array
+            .as_primitive_opt::<Float32Type>()
+            .map_or(RawCell::Unsupported("?"), |a| {
+                RawCell::Float(f64::from(a.value(i)))
+            }),
+        DataType::Float64 => array
+            .as_primitive_opt::<Float64Type>()
+            .map_or(RawCell::Unsupported("?"), |a| RawCell::Float(a.value(i))),
+        DataType::Boolean => RawCell::Unsupported("boolean"),
+        DataType::Date32 | DataType::Date64 => RawCell::Unsupported("date"),
+        DataType::Timestamp(..) => RawCell::Unsupported("timestamp"),
+        DataType::Dictionary(..) => {
+            RawCell::Unsupported("dictionary-encoded value (send plain text)")
+        }
+        DataType::Decimal128(..) | DataType::Decimal256(..) => {
+            RawCell::Unsupported("decimal (send float64)")
+        }
+        _ => RawCell::Unsupported("value of an unsupported Arrow type"),
+    }
+}

@@ -1,0 +1,454 @@
+//! Turning rows of cells into accepted values and rejections, the same way for every file
+//! format: key checks, number parsing, in-file duplicates and conflicts.
+
+use std::collections::HashMap;
+
+use crate::store::{BatchValues, Cell, NewRejection, NewValue};
+
+/// Visit label stored when a file has no visit column, or an empty visit cell.
+pub const DEFAULT_VISIT: &str = "1";
+
+/// Years outside this range are taken as typing errors.
+pub const YEARS: std::ops::RangeInclusive<i64> = 1800..=2200;
+
+/// One cell as a reader found it.
+#[derive(Debug, Clone, Copy)]
+pub enum RawCell<'a> {
+    Empty,
+    Text(&'a str),
+    Int(i64),
+    Float(f64),
+    /// A typed cell of a type we cannot use (e.g. an Arrow boolean); names the type.
+    Unsupported(&'a str),
+}
+
+impl RawCell<'_> {
+    fn is_empty(&self) -> bool {
+        match self {
+            RawCell::Empty => true,
+            RawCell::Text(t) => t.trim().is_empty(),
+            _ => false,
+        }
+    }
+
+    fn raw(&self) -> Option<String> {
+        match self {
+            RawCell::Empty => None,
+            RawCell::Text(t) => Some((*t).to_string()),
+            RawCell::Int(i) => Some(i.to_string()),
+            RawCell::Float(x) => Some(x.to_string()),
+            RawCell::Unsupported(_) => None,
+        }
+    }
+}
+
+/// What a measurement column holds.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ColumnKind {
+    Numeric,
+    Label,
+}
+
+/// A measurement column of the file being read.
+#[derive(Debug, Clone)]
+pub struct Measure {
+    pub name: String,
+    pub kind: ColumnKind,
+}
+
+type Key = (u32, i32, u32, u32);
+
+/// Accumulates one file's values.
+pub struct Collector {
+    measures: Vec<Measure>,
+    site_col: String,
+    year_col: String,
+    values: BatchValues,
+    site_ix: HashMap<String, u32>,
+    visit_ix: HashMap<String, u32>,
+    label_ix: HashMap<String, u32>,
+    /// Where each key's accepted value sits in `values.values`.
+    seen: HashMap<Key, usize>,
+    /// Keys sent with different values in this file: every occurrence (line, raw).
+    conflicts: HashMap<Key, Vec<(u64, Option<String>)>>,
+    rejections: Vec<NewRejection>,
+    rows_read: u64,
+}
+
+fn intern(map: &mut HashMap<String, u32>, table: &mut Vec<String>, s: &str) -> u32 {
+    if let Some(&i) = map.get(s) {
+        return i;
+    }
+    let i = table.len() as u32;
+    table.push(s.to_string());
+    map.insert(s.to_string(), i);
+    i
+}
+
+impl Collector {
+    pub fn new(site_col: &str, year_col: &str, measures: Vec<Measure>) -> Collector {
+        let values = BatchValues {
+            columns: measures.iter().map(|m| m.name.clone()).collect(),
+            ..BatchValues::default()
+        };
+        Collector {
+            measures,
+            site_col: site_col.to_string(),
+            year_col: year_col.to_string(),
+            values,
+            site_ix: HashMap::new(),
+            visit_ix: HashMap::new(),
+            label_ix: HashMap::new(),
+            seen: HashMap::new(),
+            conflicts: HashMap::new(),
+            rejections: Vec::new(),
+            rows_read: 0,
+        }
+    }
+
+    /// Reject every non-empty cell of a row for one reason (at least one rejection, so a
+    /// bad row never vanishes without a trace). `cells` pairs a column name (None beyond
+    /// the header) with the cell.
+    pub fn reject_row<'a>(
+        &mut self,
+        line: u64,
+        cells: impl IntoIterator<Item = (Option<&'a str>, RawCell<'a>)>,
+        reason: &str,
+    ) {
+        self.rows_read += 1;
+        let before = self.rejections.len();
+        for (col, cell) in cells {
+            if !cell.is_empty() {
+                self.rejections.push(NewRejection {
+                    line: Some(line),
+                    column: col.map(str::to_string),
+                    raw: cell.raw(),
+                    reason: reason.to_string(),
+                });
+            }
+        }
+        if self.rejections.len() == before {
+            self.rejections.push(NewRejection {
+                line: Some(line),
+                column: None,
+                raw: None,
+                reason: reason.to_string(),
+            });
+        }
+    }
+
+    /// One row: its key cells and its measurement cells, in the order of `measures`.
+    pub fn row(
+        &mut self,
+        line: u64,
+        site: RawCell<'_>,
+        year: RawCell<'_>,
+        visit: Option<RawCell<'_>>,
+        cells: &[RawCell<'_>],
+    ) {
+        let measures = std::mem::take(&mut self.measures);
+        let named = || {
+            measures
+                .iter()
+                .map(|m| Some(m.name.as_str()))
+                .zip(cells.iter().copied())
+        };
+        let site_code = match site {
+            RawCell::Text(t) if !t.trim().is_empty() => Some(t.to_string()),
+            RawCell::Int(i) => Some(i.to_string()),
+            _ => None,
+        };
+        let Some(site_code) = site_code else {
+            let reason = match site {
+                RawCell::Unsupported(ty) => format!(
+                    "site column `{}` holds a {ty}; expected text or an integer",
+                    self.site_col
+                ),
+                _ => format!("row has no site (column `{}` is empty)", self.site_col),
+            };
+            self.reject_row(line, named(), &reason);
+            self.measures = measures;
+            return;
+        };
+        let year = match parse_year(year) {
+            Ok(y) => y,
+            Err(why) => {
+                let reason = format!(
+                    "{why} (column `{}`); the row's values are not used",
+                    self.year_col
+                );
+                self.reject_row(line, named(), &reason);
+                self.measures = measures;
+                return;
+            }
+        };
+        self.rows_read += 1;
+        let visit_label = match visit {
+            Some(RawCell::Text(t)) if !t.trim().is_empty() => t.to_string(),
+            Some(RawCell::Int(i)) => i.to_string(),
+            _ => DEFAULT_VISIT.to_string(),
+        };
+        let site_i = intern(&mut self.site_ix, &mut self.values.sites, &site_code);
+        let visit_i = intern(&mut self.visit_ix, &mut self.values.visits, &visit_label);
+
+        for (col_i, (m, cell)) in measures.iter().zip(cells.iter()).enumerate() {
+            if cell.is_empty() {
+                continue;
+            }
+            let parsed = match m.kind {
+                ColumnKind::Numeric => parse_number(*cell).map(Cell::Num),
+                ColumnKind::Label => match cell {
+                    RawCell::Text(t) => Ok(Cell::Label(intern(
+                        &mut self.label_ix,
+                        &mut self.values.labels,
+                        t,
+                    ))),
+                    RawCell::Int(i) => Ok(Cell::Label(intern(
+                        &mut self.label_ix,
+                        &mut self.values.labels,
+                        &i.to_string(),
+                    ))),
+                    RawCell::Float(x) => Ok(Cell::Label(intern(
+                        &mut self.label_ix,
+                        &mut self.values.labels,
+                        &x.to_string(),
+                    ))),
+                    RawCell::Unsupported(ty) => Err(format!("a {ty} cannot be a group label")),
+                    RawCell::Empty => continue,
+                },
+            };
+            let cell_value = match parsed {
+                Ok(c) => c,
+                Err(reason) => {
+                    self.rejections.push(NewRejection {
+                        line: Some(line),
+                        column: Some(m.name.clone()),
+                        raw: cell.raw(),
+                        reason,
+                    });
+                    continue;
+                }
+            };
+            let key = (site_i, year, visit_i, col_i as u32);
+            if let Some(list) = self.conflicts.get_mut(&key) {
+                list.push((line, cell.raw()));
+                continue;
+            }
+            match self.seen.get(&key) {
+                None => {
+                    self.seen.insert(key, self.values.values.len());
+                    self.values.values.push(NewValue {
+                        site: site_i,
+                        year,
+                        visit: visit_i,
+                        column: col_i as u32,
+                        cell: cell_value,
+                        line,
+                    });
+                }
+                // An identical repeat inside the file is kept once.
+                Some(&at) if same_cell(self.values.values[at].cell, cell_value) => {}
+                Some(&at) => {
+                    let first = self.values.values[at];
+                    let first_raw = match first.cell {
+                        Cell::Num(x) => x.to_string(),
+                        Cell::Label(i) => self.values.labels[i as usize].clone(),
+                    };
+                    self.conflicts
+                        .insert(key, vec![(first.line, Some(first_raw)), (line, cell.raw())]);
+                }
+            }
+        }
+        self.measures = measures;
+    }
+
+    /// The accepted values, the rejections and the number of data rows read.
+    pub fn finish(mut self) -> (u64, BatchValues, Vec<NewRejection>) {
+        if !self.conflicts.is_empty() {
+            self.values.values.retain(|v| {
+                !self
+                    .conflicts
+                    .contains_key(&(v.site, v.year, v.visit, v.column))
+            });
+            let mut conflicts: Vec<_> = self.conflicts.into_iter().collect();
+            conflicts.sort_by_key(|(_, occ)| occ[0].0);
+            for (key, occurrences) in conflicts {
+                let lines: Vec<String> = occurrences.iter().map(|(l, _)| l.to_string()).collect();
+                let reason = format!(
+                    "conflicting values for the same site, year, visit and column in this file (lines {}); none of them is used",
+                    lines.join(", ")
+                );
+                let column = self.values.columns[key.3 as usize].clone();
+                for (line, raw) in occurrences {
+                    self.rejections.push(NewRejection {
+                        line: Some(line),
+                        column: Some(column.clone()),
+                        raw,
+                        reason: reason.clone(),
+                    });
+                }
+            }
+        }
+        self.rejections
+            .sort_by(|a, b| a.line.cmp(&b.line).then_with(|| a.column.cmp(&b.column)));
+        (self.rows_read, self.values, self.rejections)
+    }
+}
+
+fn same_cell(a: Cell, b: Cell) -> bool {
+    match (a, b) {
+        (Cell::Num(x), Cell::Num(y)) => x.to_bits() == y.to_bits() || x == y,
+        (Cell::Label(i), Cell::Label(j)) => i == j,
+        _ => false,
+    }
+}
+
+/// A measurement value: finite, within f64.
+pub fn parse_number(cell: RawCell<'_>) -> Result<f64, String> {
+    match cell {
+        RawCell::Float(x) if x.is_nan() => {
+            Err("NaN is not a value; leave the cell empty for a missing value".into())
+        }
+        RawCell::Float(x) if x.is_infinite() => Err("infinite values are not accepted".into()),
+        RawCell::Float(x) => Ok(x),
+        RawCell::Int(i) => Ok(i as f64),
+        RawCell::Unsupported(ty) => Err(format!("a {ty} is not a number")),
+        RawCell::Empty => Err("empty".into()),
+        RawCell::Text(t) => {
+            let t = t.trim();
+            match t.parse::<f64>() {
+                Err(_) => Err(format!("`{t}` is not a number")),
+                Ok(x) if x.is_nan() => {
+                    Err("NaN is not a value; leave the cell empty for a missing value".into())
+                }
+                Ok(x) if x.is_infinite() => {
+                    let word = t.trim_start_matches(['+', '-']).to_ascii_lowercase();
+                    if word.starts_with("inf") {
+                        Err("infinite values are not accepted".into())
+                    } else {
+                        Err(format!("`{t}` overflows a 64-bit floating-point number"))
+                    }
+                }
+                Ok(x) => Ok(x),
+            }
+        }
+    }
+}
+
+/// A year: an integer (an integral decimal such as `2019.0` is accepted) within [`YEARS`].
+pub fn parse_year(cell: RawCell<'_>) -> Result<i32, String> {
+    let year = match cell {
+        RawCell::Empty => return Err("row has no year".into()),
+        RawCell::Text(t) if t.trim().is_empty() => return Err("row has no year".into()),
+        RawCell::Text(t) => {
+            let t = t.trim();
+            match t.parse::<i64>() {
+                Ok(y) => y,
+                Err(_) => match t.parse::<f64>() {
+                    Ok(x) if x.is_finite() && x.fract() == 0.0 && x.abs() < 1e9 => x as i64,
+                    _ => return Err(format!("year `{t}` is not an integer")),
+                },
+            }
+        }
+        RawCell::Int(i) => i,
+        RawCell::Float(x) if x.is_finite() && x.fract() == 0.0 && x.abs() < 1e9 => x as i64,
+        RawCell::Float(x) => return Err(format!("year `{x}` is not an integer")),
+        RawCell::Unsupported(ty) => return Err(format!("year is a {ty}, not an integer")),
+    };
+    if !YEARS.contains(&year) {
+        return Err(format!(
+            "year {year} is outside {}..={}",
+            YEARS.start(),
+            YEARS.end()
+        ));
+    }
+    i32::try_from(year).map_err(|_| format!("year {year} is out of range"))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn numeric(names: &[&str]) -> Vec<Measure> {
+        names
+            .iter()
+            .map(|n| Measure {
+                name: n.to_string(),
+                kind: ColumnKind::Numeric,
+            })
+            .collect()
+    }
+
+    #[test]
+    fn numbers() {
+        assert_eq!(parse_number(RawCell::Text(" 1.5 ")), Ok(1.5));
+        assert_eq!(parse_number(RawCell::Text("-2e3")), Ok(-2000.0));
+        assert!(parse_number(RawCell::Text("1,5"))
+            .unwrap_err()
+            .contains("not a number"));
+        assert!(parse_number(RawCell::Text("NaN"))
+            .unwrap_err()
+            .contains("NaN"));
+        assert!(parse_number(RawCell::Text("-inf"))
+            .unwrap_err()
+            .contains("infinite"));
+        assert!(parse_number(RawCell::Text("1e400"))
+            .unwrap_err()
+            .contains("overflows"));
+        assert!(parse_number(RawCell::Float(f64::NAN)).is_err());
+        assert_eq!(parse_number(RawCell::Int(-3)), Ok(-3.0));
+    }
+
+    #[test]
+    fn years() {
+        assert_eq!(parse_year(RawCell::Text("2019")), Ok(2019));
+        assert_eq!(parse_year(RawCell::Text("2019.0")), Ok(2019));
+        assert!(parse_year(RawCell::Text("2019.5"))
+            .unwrap_err()
+            .contains("not an integer"));
+        assert!(parse_year(RawCell::Text("19x")).is_err());
+        assert!(parse_year(RawCell::Int(1700))
+            .unwrap_err()
+            .contains("outside"));
+        assert!(parse_year(RawCell::Empty).unwrap_err().contains("no year"));
+    }
+
+    #[test]
+    fn conflicts_reject_every_occurrence_and_identical_repeats_stay_once() {
+        let mut c = Collector::new("lake", "season", numeric(&["chl", "tp"]));
+        let t = RawCell::Text;
+        c.row(2, t("A"), t("2020"), None, &[t("1.0"), t("5")]);
+        c.row(3, t("A"), t("2020"), None, &[t("2.0"), t("5.0")]);
+        c.row(4, t("A"), t("2020"), None, &[t("1"), RawCell::Empty]);
+        let (rows, values, rejections) = c.finish();
+        assert_eq!(rows, 3);
+        // tp: 5 and 5.0 are the same number, kept once; chl conflicts on lines 2, 3, 4.
+        assert_eq!(values.values.len(), 1);
+        assert_eq!(values.columns[values.values[0].column as usize], "tp");
+        assert_eq!(rejections.len(), 3);
+        assert!(rejections
+            .iter()
+            .all(|r| r.reason.contains("lines 2, 3, 4")));
+        assert_eq!(rejections[1].raw.as_deref(), Some("2.0"));
+    }
+
+    #[test]
+    fn a_row_without_site_is_rejected_value_by_value() {
+        let mut c = Collector::new("lake", "season", numeric(&["chl", "tp"]));
+        let t = RawCell::Text;
+        c.row(2, t(" "), t("2020"), None, &[t("1.0"), t("x")]);
+        c.row(
+            3,
+            t("B"),
+            t("20x0"),
+            None,
+            &[RawCell::Empty, RawCell::Empty],
+        );
+        let (_, values, rejections) = c.finish();
+        assert!(values.values.is_empty());
+        assert_eq!(rejections.len(), 3);
+        assert!(rejections[0].reason.contains("no site"));
+        assert_eq!(rejections[2].column, None);
+        assert!(rejections[2].reason.contains("20x0"));
+    }
+}

@@ -1,0 +1,170 @@
+//! When scheduled runs happen: the `[schedule]` cron expression and time zone, parsed with
+//! the `cron` and `chrono-tz` crates.
+//!
+//! We accept the standard 5-field form (minute hour day-of-month month day-of-week) and a
+//! 6-field form with seconds in front. Day-of-week numbers follow the standard convention
+//! (0 or 7 = Sunday, 1 = Monday … 6 = Saturday); the `cron` crate counts 1 = Sunday, so
+//! numbers are rewritten to day names before parsing, which both read the same way.
+
+use std::str::FromStr;
+
+use chrono::{DateTime, Utc};
+use chrono_tz::Tz;
+
+/// A parsed schedule.
+#[derive(Debug, Clone)]
+pub struct Schedule {
+    pub cron: String,
+    pub timezone: Tz,
+    parsed: cron::Schedule,
+}
+
+/// What is wrong with a schedule, and under which config key.
+#[derive(Debug)]
+pub struct ScheduleError {
+    pub key: &'static str,
+    pub message: String,
+}
+
+const DAY_NAMES: [&str; 8] = ["SUN", "MON", "TUE", "WED", "THU", "FRI", "SAT", "SUN"];
+
+impl Schedule {
+    pub fn parse(cron_text: &str, timezone: &str) -> Result<Schedule, ScheduleError> {
+        let timezone = Tz::from_str(timezone.trim()).map_err(|_| ScheduleError {
+            key: "schedule.timezone",
+            message: format!(
+                "{timezone:?} is not a time zone name (use an IANA name such as \"UTC\" or \"Europe/Helsinki\")"
+            ),
+        })?;
+        let fields: Vec<&str> = cron_text.split_whitespace().collect();
+        let cron_err = |why: String| ScheduleError {
+            key: "schedule.cron",
+            message: format!("{cron_text:?}: {why}"),
+        };
+        let mut full: Vec<String> = match fields.len() {
+            5 => std::iter::once("0")
+                .chain(fields.iter().copied())
+                .map(String::from)
+                .collect(),
+            6 => fields.iter().map(|s| s.to_string()).collect(),
+            n => {
+                return Err(cron_err(format!(
+                "has {n} fields; expected 5 (minute hour day-of-month month day-of-week) or 6 (seconds first)"
+            )))
+            }
+        };
+        full[5] = day_numbers_to_names(&full[5]).map_err(cron_err)?;
+        let parsed =
+            cron::Schedule::from_str(&full.join(" ")).map_err(|e| cron_err(e.to_string()))?;
+        Ok(Schedule {
+            cron: cron_text.to_string(),
+            timezone,
+            parsed,
+        })
+    }
+
+    /// The first scheduled instant strictly after `now`.
+    pub fn next_after(&self, now: DateTime<Utc>) -> Option<DateTime<Utc>> {
+        let local = now.with_timezone(&self.timezone);
+        self.parsed
+            .after(&local)
+            .next()
+            .map(|t| t.with_timezone(&Utc))
+    }
+}
+
+/// Rewrite standard day-of-week numbers (0–7) as names so that the `cron` crate, which
+/// counts from 1 = Sunday, reads them as a standard crontab would.
+fn day_numbers_to_names(field: &str) -> Result<String, String> {
+    let name = |s: &str| -> Result<String, String> {
+        match s.parse::<usize>() {
+            Ok(n) if n <= 7 => Ok(DAY_NAMES[n].to_string()),
+            Ok(n) => Err(format!("day of week {n} is out of range 0-7")),
+            Err(_) => Ok(s.to_string()),
+        }
+    };
+    let mut items = Vec::new();
+    for item in field.split(',') {
+        let (base, step) = match item.split_once('/') {
+            Some((b, s)) => (b, Some(s)),
+            None => (item, None),
+        };
+        let rewritten = match base.split_once('-') {
+            // "5-7" (Friday to Sunday) must not become the empty range FRI-SUN.
+            Some((a, "7")) if step.is_none() && a != "0" && a != "7" => {
+                format!("{}-SAT,SUN", name(a)?)
+            }
+            Some((a, b)) => format!("{}-{}", name(a)?, name(b)?),
+            None => name(base)?,
+        };
+        items.push(match step {
+            Some(s) => format!("{rewritten}/{s}"),
+            None => rewritten,
+        });
+    }
+    Ok(items.join(","))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use chrono::{Datelike, TimeZone, Timelike, Weekday};
+
+    fn next(cron: &str, tz: &str, now: DateTime<Utc>) -> DateTime<Utc> {
+        Schedule::parse(cron, tz).unwrap().next_after(now).unwrap()
+    }
+
+    #[test]
+    fn five_fields_run_at_the_minute() {
+        let now = Utc.with_ymd_and_hms(2026, 3, 1, 12, 0, 0).unwrap();
+        assert_eq!(
+            next("30 2 * * *", "UTC", now),
+            Utc.with_ymd_and_hms(2026, 3, 2, 2, 30, 0).unwrap()
+        );
+        assert_eq!(
+            next("15 30 2 * * *", "UTC", now),
+            Utc.with_ymd_and_hms(2026, 3, 2, 2, 30, 15).unwrap()
+        );
+    }
+
+    #[test]
+    fn day_of_week_numbers_are_standard() {
+        // 2026-03-01 is a Sunday (asserted through chrono's calendar first).
+        let now = Utc.with_ymd_and_hms(2026, 3, 1, 12, 0, 0).unwrap();
+        assert_eq!(now.weekday(), Weekday::Sun);
+        assert_eq!(next("0 3 * * 1", "UTC", now).weekday(), Weekday::Mon);
+        assert_eq!(next("0 3 * * 0", "UTC", now).weekday(), Weekday::Sun);
+        assert_eq!(next("0 3 * * 6", "UTC", now).weekday(), Weekday::Sat);
+        assert_eq!(next("0 3 * * 7", "UTC", now).weekday(), Weekday::Sun);
+        assert_eq!(next("0 3 * * 5-7", "UTC", now).weekday(), Weekday::Fri);
+        assert_eq!(next("0 3 * * MON-FRI", "UTC", now).weekday(), Weekday::Mon);
+    }
+
+    #[test]
+    fn time_zone_shifts_the_instant() {
+        let now = Utc.with_ymd_and_hms(2026, 1, 10, 12, 0, 0).unwrap();
+        // Helsinki is UTC+2 in winter.
+        let t = next("30 2 * * *", "Europe/Helsinki", now);
+        assert_eq!((t.hour(), t.minute()), (0, 30));
+    }
+
+    #[test]
+    fn bad_expressions_are_refused() {
+        assert_eq!(
+            Schedule::parse("30 2 * *", "UTC").unwrap_err().key,
+            "schedule.cron"
+        );
+        assert_eq!(
+            Schedule::parse("61 2 * * *", "UTC").unwrap_err().key,
+            "schedule.cron"
+        );
+        assert_eq!(
+            Schedule::parse("0 3 * * 9", "UTC").unwrap_err().key,
+            "schedule.cron"
+        );
+        assert_eq!(
+            Schedule::parse("30 2 * * *", "Nowhere").unwrap_err().key,
+            "schedule.timezone"
+        );
+    }
+}

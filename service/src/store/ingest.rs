@@ -1,0 +1,398 @@
+//! Writing one feed file's batch: the batch row, its values with supersede-and-keep-history,
+//! and its rejections, in one transaction.
+//!
+//! Speed comes from set-based SQL: values go into a per-connection temporary staging table
+//! with multi-row INSERTs (cached prepared statements), then three statements drop values
+//! equal to the current ones, point the current ones at their successors, and copy the
+//! rest into `observations`. New value ids are assigned up front (max + 1, …) inside the
+//! IMMEDIATE transaction, so a superseded row can name its successor before the successor
+//! row exists (the foreign key is deferred to commit).
+//!
+//! Invariant: a batch is visible whole or not at all (checked by `tests/e2e_ingest.rs::failed_batch_leaves_nothing`).
+
+use serde::Serialize;
+use sqlx::sqlite::SqliteConnection;
+use sqlx::Row;
+
+use super::{now_utc, Store, StoreError};
+
+/// Rows per multi-row INSERT of staged values (8 parameters each, well under SQLite's
+/// 32766-parameter limit; larger chunks gave no further speed-up).
+const STAGE_CHUNK: usize = 500;
+const REJECT_CHUNK: usize = 500;
+
+/// The file a batch came from.
+#[derive(Debug, Clone)]
+pub struct BatchFile {
+    pub source: String,
+    pub sha256: String,
+    pub size_bytes: u64,
+    /// `csv`, `arrow-file`, `arrow-stream`, or `None` when it could not be told.
+    pub format: Option<&'static str>,
+}
+
+/// A value's content: a number, or an index into [`BatchValues::labels`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Cell {
+    Num(f64),
+    Label(u32),
+}
+
+/// One accepted value. Site, visit and column are indices into the tables of
+/// [`BatchValues`], so a million values do not carry a million strings.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct NewValue {
+    pub site: u32,
+    pub year: i32,
+    pub visit: u32,
+    pub column: u32,
+    pub cell: Cell,
+    pub line: u64,
+}
+
+/// The accepted values of one file, at most one per (site, year, visit, column).
+#[derive(Debug, Default, Clone)]
+pub struct BatchValues {
+    pub sites: Vec<String>,
+    pub visits: Vec<String>,
+    pub columns: Vec<String>,
+    pub labels: Vec<String>,
+    pub values: Vec<NewValue>,
+}
+
+/// One rejected value (or row) and why.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct NewRejection {
+    pub line: Option<u64>,
+    pub column: Option<String>,
+    pub raw: Option<String>,
+    pub reason: String,
+}
+
+/// What was made of a file.
+#[derive(Debug, Clone)]
+pub enum BatchContent {
+    Parsed {
+        rows_read: u64,
+        values: BatchValues,
+        rejections: Vec<NewRejection>,
+    },
+    /// The file could not be read at all; it goes to quarantine.
+    Unreadable { reason: String },
+    /// The caller found an ingested batch with the same hash and did not parse the file.
+    KnownDuplicate,
+}
+
+/// What [`Store::ingest_batch`] did.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+#[serde(tag = "status", rename_all = "snake_case")]
+pub enum BatchOutcome {
+    Ingested {
+        batch_id: i64,
+        rows_read: u64,
+        values_accepted: u64,
+        values_rejected: u64,
+        values_superseding: u64,
+        values_unchanged: u64,
+    },
+    Duplicate {
+        batch_id: i64,
+        duplicate_of: i64,
+    },
+    Quarantined {
+        batch_id: i64,
+        reason: String,
+    },
+}
+
+/// A stored batch row.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+pub struct BatchRecord {
+    pub batch_id: i64,
+    pub source: String,
+    pub sha256: String,
+    pub received_at: String,
+    pub status: String,
+}
+
+impl Store {
+    /// The ingested batch with this content hash, if any.
+    pub async fn batch_with_sha256(&self, sha256: &str) -> Result<Option<BatchRecord>, StoreError> {
+        let mut conn = self.pool.acquire().await.map_err(|e| self.sql(e))?;
+        ingested_with_sha(&mut conn, sha256)
+            .await
+            .map_err(|e| self.sql(e))
+    }
+
+    /// Record one file: a duplicate (same content as an ingested batch), a quarantined
+    /// file, or its accepted values and rejections. Everything happens in one IMMEDIATE
+    /// transaction, so two processes cannot both ingest the same content.
+    pub async fn ingest_batch(
+        &self,
+        file: &BatchFile,
+        content: &BatchContent,
+    ) -> Result<BatchOutcome, StoreError> {
+        let mut tx = self
+            .pool
+            .begin_with("BEGIN IMMEDIATE")
+            .await
+            .map_err(|e| self.sql(e))?;
+        let outcome = write_batch(&mut tx, file, content)
+            .await
+            .map_err(|e| self.sql(e))?;
+        tx.commit().await.map_err(|e| self.sql(e))?;
+        Ok(outcome)
+    }
+}
+
+async fn ingested_with_sha(
+    conn: &mut SqliteConnection,
+    sha256: &str,
+) -> Result<Option<BatchRecord>, sqlx::Error> {
+    let row = sqlx::query(
+        "SELECT batch_id, source, sha256, received_at, status FROM ingest_batches
+         WHERE sha256 = ?1 AND status = 'ingested'",
+    )
+    .bind(sha256)
+    .fetch_optional(&mut *conn)
+    .await?;
+    Ok(row.map(|r| BatchRecord {
+        batch_id: r.get("batch_id"),
+        source: r.get("source"),
+        sha256: r.get("sha256"),
+        received_at: r.get("received_at"),
+        status: r.get("status"),
+    }))
+}
+
+async fn insert_batch_row(
+    conn: &mut SqliteConnection,
+    file: &BatchFile,
+    status: &str,
+    message: Option<&str>,
+    duplicate_of: Option<i64>,
+) -> Result<i64, sqlx::Error> {
+    sqlx::query_scalar(
+        "INSERT INTO ingest_batches (source, sha256, received_at, status, message, format, size_bytes, duplicate_of)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8) RETURNING batch_id",
+    )
+    .bind(&file.source)
+    .bind(&file.sha256)
+    .bind(now_utc())
+    .bind(status)
+    .bind(message)
+    .bind(file.format)
+    .bind(i64::try_from(file.size_bytes).unwrap_or(i64::MAX))
+    .bind(duplicate_of)
+    .fetch_one(&mut *conn)
+    .await
+}
+
+fn count(n: u64) -> i64 {
+    i64::try_from(n).unwrap_or(i64::MAX)
+}
+
+async fn write_batch(
+    conn: &mut SqliteConnection,
+    file: &BatchFile,
+    content: &BatchContent,
+) -> Result<BatchOutcome, sqlx::Error> {
+    if let Some(earlier) = ingested_with_sha(conn, &file.sha256).await? {
+        let message = format!(
+            "same content as batch {} ({}, received {})",
+            earlier.batch_id, earlier.source, earlier.received_at
+        );
+        let batch_id = insert_batch_row(
+            conn,
+            file,
+            "duplicate",
+            Some(&message),
+            Some(earlier.batch_id),
+        )
+        .await?;
+        return Ok(BatchOutcome::Duplicate {
+            batch_id,
+            duplicate_of: earlier.batch_id,
+        });
+    }
+    let (rows_read, values, rejections) = match content {
+        BatchContent::KnownDuplicate => {
+            // Only reachable if the earlier batch vanished between the caller's look-up
+            // and this transaction: keep the file for a person to look at.
+            let reason = "the earlier batch with the same content is gone; ingest the file again";
+            let batch_id = insert_batch_row(conn, file, "quarantined", Some(reason), None).await?;
+            return Ok(BatchOutcome::Quarantined {
+                batch_id,
+                reason: reason.to_string(),
+            });
+        }
+        BatchContent::Unreadable { reason } => {
+            let batch_id = insert_batch_row(conn, file, "quarantined", Some(reason), None).await?;
+            return Ok(BatchOutcome::Quarantined {
+                batch_id,
+                reason: reason.clone(),
+            });
+        }
+        BatchContent::Parsed {
+            rows_read,
+            values,
+            rejections,
+        } => (*rows_read, values, rejections),
+    };
+    let batch_id = insert_batch_row(conn, file, "ingested", None, None).await?;
+
+    // Site ids, in the order of `values.sites`. The no-op update makes RETURNING give the
+    // id of a site that already exists.
+    let mut site_ids = Vec::with_capacity(values.sites.len());
+    for code in &values.sites {
+        let id: i64 = sqlx::query_scalar(
+            "INSERT INTO sites (code, first_batch_id) VALUES (?1, ?2)
+             ON CONFLICT (code) DO UPDATE SET code = excluded.code RETURNING site_id",
+        )
+        .bind(code)
+        .bind(batch_id)
+        .fetch_one(&mut *conn)
+        .await?;
+        site_ids.push(id);
+    }
+
+    sqlx::query(
+        "CREATE TEMP TABLE IF NOT EXISTS ingest_stage (
+             new_id INTEGER PRIMARY KEY, site_id INTEGER NOT NULL, year INTEGER NOT NULL,
+             visit TEXT NOT NULL, column_name TEXT NOT NULL, num_value REAL, text_value TEXT,
+             line INTEGER NOT NULL)",
+    )
+    .execute(&mut *conn)
+    .await?;
+    sqlx::query("DELETE FROM temp.ingest_stage")
+        .execute(&mut *conn)
+        .await?;
+
+    let base: i64 = sqlx::query_scalar("SELECT COALESCE(MAX(value_id), 0) FROM observations")
+        .fetch_one(&mut *conn)
+        .await?;
+
+    const STAGE: &str = "INSERT INTO temp.ingest_stage (new_id, site_id, year, visit, column_name, num_value, text_value, line) VALUES ";
+    let full_chunk = multi_row_insert(STAGE, 8, STAGE_CHUNK);
+    let mut next_id = base;
+    for chunk in values.values.chunks(STAGE_CHUNK) {
+        let short;
+        let sql = if chunk.len() == STAGE_CHUNK {
+            full_chunk.as_str()
+        } else {
+            short = multi_row_insert(STAGE, 8, chunk.len());
+            short.as_str()
+        };
+        let mut q = sqlx::query(sql);
+        for v in chunk {
+            next_id += 1;
+            let (num, text) = match v.cell {
+                Cell::Num(x) => (Some(x), None),
+                Cell::Label(i) => (None, Some(values.labels[i as usize].as_str())),
+            };
+            q = q
+                .bind(next_id)
+                .bind(site_ids[v.site as usize])
+                .bind(v.year)
+                .bind(values.visits[v.visit as usize].as_str())
+                .bind(values.columns[v.column as usize].as_str())
+                .bind(num)
+                .bind(text)
+                .bind(count(v.line));
+        }
+        q.execute(&mut *conn).await?;
+    }
+
+    // A re-sent identical value is not new history.
+    let unchanged = sqlx::query(
+        "DELETE FROM temp.ingest_stage WHERE EXISTS (
+             SELECT 1 FROM observations o
+             WHERE o.superseded_by IS NULL AND o.site_id = ingest_stage.site_id
+               AND o.year = ingest_stage.year AND o.visit = ingest_stage.visit
+               AND o.column_name = ingest_stage.column_name
+               AND o.num_value IS ingest_stage.num_value AND o.text_value IS ingest_stage.text_value)",
+    )
+    .execute(&mut *conn)
+    .await?
+    .rows_affected();
+
+    let superseding = sqlx::query(
+        "UPDATE observations SET superseded_by = s.new_id
+         FROM temp.ingest_stage s
+         WHERE observations.superseded_by IS NULL AND observations.site_id = s.site_id
+           AND observations.year = s.year AND observations.visit = s.visit
+           AND observations.column_name = s.column_name",
+    )
+    .execute(&mut *conn)
+    .await?
+    .rows_affected();
+
+    sqlx::query(
+        "INSERT INTO observations (value_id, batch_id, site_id, year, visit, column_name, num_value, text_value, line)
+         SELECT new_id, ?1, site_id, year, visit, column_name, num_value, text_value, line
+         FROM temp.ingest_stage ORDER BY new_id",
+    )
+    .bind(batch_id)
+    .execute(&mut *conn)
+    .await?;
+    sqlx::query("DELETE FROM temp.ingest_stage")
+        .execute(&mut *conn)
+        .await?;
+
+    for chunk in rejections.chunks(REJECT_CHUNK) {
+        let sql = multi_row_insert(
+            "INSERT INTO rejections (batch_id, line, column_name, raw_value, reason) VALUES ",
+            5,
+            chunk.len(),
+        );
+        let mut q = sqlx::query(&sql);
+        for r in chunk {
+            q = q
+                .bind(batch_id)
+                .bind(r.line.map(count))
+                .bind(r.column.as_deref())
+                .bind(r.raw.as_deref())
+                .bind(r.reason.as_str());
+        }
+        q.execute(&mut *conn).await?;
+    }
+
+    let accepted = values.values.len() as u64;
+    let rejected = rejections.len() as u64;
+    sqlx::query(
+        "UPDATE ingest_batches SET rows_read = ?2, values_accepted = ?3, values_rejected = ?4,
+             values_superseding = ?5, values_unchanged = ?6
+         WHERE batch_id = ?1",
+    )
+    .bind(batch_id)
+    .bind(count(rows_read))
+    .bind(count(accepted))
+    .bind(count(rejected))
+    .bind(count(superseding))
+    .bind(count(unchanged))
+    .execute(&mut *conn)
+    .await?;
+
+    Ok(BatchOutcome::Ingested {
+        batch_id,
+        rows_read,
+        values_accepted: accepted,
+        values_rejected: rejected,
+        values_superseding: superseding,
+        values_unchanged: unchanged,
+    })
+}
+
+/// `prefix (?,?,…),(?,?,…),…` with `rows` groups of `width` placeholders.
+fn multi_row_insert(prefix: &str, width: usize, rows: usize) -> String {
+    let group = format!("({})", vec!["?"; width].join(","));
+    let mut sql = String::with_capacity(prefix.len() + rows * (group.len() + 1));
+    sql.push_str(prefix);
+    for i in 0..rows {
+        if i > 0 {
+            sql.push(',');
+        }
+        sql.push_str(&group);
+    }
+    sql
+}

@@ -1,0 +1,228 @@
+//! The SQLite store: the only module that writes SQL.
+//!
+//! It owns the connection settings (WAL, foreign keys, busy timeout), the embedded
+//! migrations from `migrations/` and the check that the database and the binary agree on
+//! them, and every read and write the rest of the service needs, as typed async functions.
+//! Values are always bound as parameters, never spliced into SQL text.
+//!
+//! Invariant: only this module writes SQL (checked by `tests/e2e_store.rs::only_the_store_writes_sql`).
+
+mod ingest;
+mod series;
+mod status;
+
+use std::path::{Path, PathBuf};
+use std::str::FromStr;
+use std::time::Duration;
+
+use sqlx::migrate::Migrator;
+use sqlx::sqlite::{
+    SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteSynchronous,
+};
+use sqlx::Row;
+
+pub use ingest::{
+    BatchContent, BatchFile, BatchOutcome, BatchRecord, BatchValues, Cell, NewRejection, NewValue,
+};
+pub use series::SeriesRow;
+pub use status::{BatchSummary, FitSummary, RunSummary};
+
+/// Migrations compiled into the binary, read from the repository's `migrations/` folder.
+pub static MIGRATOR: Migrator = sqlx::migrate!("../migrations");
+
+/// How long a writer waits for another writer before giving up.
+const BUSY_TIMEOUT: Duration = Duration::from_secs(5);
+
+/// What went wrong in the store, phrased for the operator.
+#[derive(Debug, thiserror::Error)]
+pub enum StoreError {
+    #[error("database {0} does not exist; run `vigil init` first")]
+    Missing(PathBuf),
+    #[error("database {path} was written by a newer vigil (it has migration {version} \"{description}\", which this binary does not know); upgrade vigil")]
+    Newer {
+        path: PathBuf,
+        version: i64,
+        description: String,
+    },
+    #[error(
+        "database {path} needs migration {version} \"{description}\"; run `vigil init` to apply it"
+    )]
+    Pending {
+        path: PathBuf,
+        version: i64,
+        description: String,
+    },
+    #[error("database {path}: migration {version} was changed after it was applied (checksum differs); restore the original migration file")]
+    Altered { path: PathBuf, version: i64 },
+    #[error(
+        "database {path}: migration {version} did not finish; restore the database from a backup"
+    )]
+    Dirty { path: PathBuf, version: i64 },
+    #[error("database {path}: cannot create its directory: {source}")]
+    CreateDir {
+        path: PathBuf,
+        source: std::io::Error,
+    },
+    #[error("database {path}: {source}")]
+    Sql { path: PathBuf, source: sqlx::Error },
+    #[error("database {path}: applying migrations failed: {source}")]
+    Migrate {
+        path: PathBuf,
+        source: sqlx::migrate::MigrateError,
+    },
+}
+
+/// A handle on the Vigil database. Cheap to clone (a connection pool).
+#[derive(Debug, Clone)]
+pub struct Store {
+    pool: SqlitePool,
+    path: PathBuf,
+}
+
+/// Current time as RFC 3339 UTC text, the format of every timestamp column.
+pub fn now_utc() -> String {
+    chrono::Utc::now().to_rfc3339_opts(chrono::SecondsFormat::Secs, true)
+}
+
+impl Store {
+    /// Create the database if needed and apply every pending migration (idempotent).
+    /// Refuses a database written by a newer vigil.
+    pub async fn init(path: &Path) -> Result<Store, StoreError> {
+        if let Some(dir) = path.parent().filter(|d| !d.as_os_str().is_empty()) {
+            std::fs::create_dir_all(dir).map_err(|source| StoreError::CreateDir {
+                path: path.to_path_buf(),
+                source,
+            })?;
+        }
+        let store = Store::connect(path, true).await?;
+        match store.check().await {
+            Ok(()) | Err(StoreError::Pending { .. }) => {}
+            Err(e) => return Err(e),
+        }
+        MIGRATOR
+            .run(&store.pool)
+            .await
+            .map_err(|source| StoreError::Migrate {
+                path: path.to_path_buf(),
+                source,
+            })?;
+        Ok(store)
+    }
+
+    /// Open an existing database whose migrations match this binary exactly.
+    pub async fn open(path: &Path) -> Result<Store, StoreError> {
+        if !path.exists() {
+            return Err(StoreError::Missing(path.to_path_buf()));
+        }
+        let store = Store::connect(path, false).await?;
+        store.check().await?;
+        Ok(store)
+    }
+
+    async fn connect(path: &Path, create: bool) -> Result<Store, StoreError> {
+        let options = SqliteConnectOptions::from_str("sqlite:")
+            .map_err(|source| StoreError::Sql {
+                path: path.to_path_buf(),
+                source,
+            })?
+            .filename(path)
+            .create_if_missing(create)
+            .journal_mode(SqliteJournalMode::Wal)
+            .synchronous(SqliteSynchronous::Normal)
+            .foreign_keys(true)
+            .busy_timeout(BUSY_TIMEOUT);
+        let pool = SqlitePoolOptions::new()
+            .max_connections(4)
+            .connect_with(options)
+            .await
+            .map_err(|source| StoreError::Sql {
+                path: path.to_path_buf(),
+                source,
+            })?;
+        Ok(Store {
+            pool,
+            path: path.to_path_buf(),
+        })
+    }
+
+    /// Compare the migrations recorded in the database with those compiled in.
+    pub async fn check(&self) -> Result<(), StoreError> {
+        let has_table: Option<i64> = sqlx::query_scalar(
+            "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = '_sqlx_migrations'",
+        )
+        .fetch_optional(&self.pool)
+        .await
+        .map_err(|e| self.sql(e))?;
+        let applied = if has_table.is_some() {
+            sqlx::query(
+                "SELECT version, description, success, checksum FROM _sqlx_migrations ORDER BY version",
+            )
+            .fetch_all(&self.pool)
+            .await
+            .map_err(|e| self.sql(e))?
+        } else {
+            Vec::new()
+        };
+        for row in &applied {
+            let version: i64 = row.get("version");
+            let success: bool = row.get("success");
+            let checksum: Vec<u8> = row.get("checksum");
+            let Some(known) = MIGRATOR.iter().find(|m| m.version == version) else {
+                return Err(StoreError::Newer {
+                    path: self.path.clone(),
+                    version,
+                    description: row.get("description"),
+                });
+            };
+            if !success {
+                return Err(StoreError::Dirty {
+                    path: self.path.clone(),
+                    version,
+                });
+            }
+            if *known.checksum != *checksum {
+                return Err(StoreError::Altered {
+                    path: self.path.clone(),
+                    version,
+                });
+            }
+        }
+        for m in MIGRATOR.iter() {
+            let done = applied
+                .iter()
+                .any(|r| r.get::<i64, _>("version") == m.version);
+            if !done {
+                return Err(StoreError::Pending {
+                    path: self.path.clone(),
+                    version: m.version,
+                    description: m.description.to_string(),
+                });
+            }
+        }
+        Ok(())
+    }
+
+    /// The newest migration version applied to this database.
+    pub async fn schema_version(&self) -> Result<i64, StoreError> {
+        sqlx::query_scalar("SELECT COALESCE(MAX(version), 0) FROM _sqlx_migrations")
+            .fetch_one(&self.pool)
+            .await
+            .map_err(|e| self.sql(e))
+    }
+
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    /// Close every connection (checkpoints the WAL when this is the last one).
+    pub async fn close(self) {
+        self.pool.close().await;
+    }
+
+    fn sql(&self, source: sqlx::Error) -> StoreError {
+        StoreError::Sql {
+            path: self.path.clone(),
+            source,
+        }
+    }
+}

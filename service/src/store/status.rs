@@ -1,0 +1,171 @@
+//! Reads behind `vigil status`: recent runs, recent batches, latest fits per series.
+
+use serde::Serialize;
+use sqlx::sqlite::SqliteRow;
+use sqlx::Row;
+
+use super::{Store, StoreError};
+
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct RunSummary {
+    pub run_id: i64,
+    pub trigger: String,
+    pub started_at: String,
+    pub finished_at: Option<String>,
+    pub status: String,
+    pub message: Option<String>,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct BatchSummary {
+    pub batch_id: i64,
+    pub source: String,
+    pub sha256: String,
+    pub received_at: String,
+    pub rows_read: i64,
+    pub values_accepted: i64,
+    pub values_rejected: i64,
+    pub values_superseding: i64,
+    pub values_unchanged: i64,
+    pub status: String,
+    pub message: Option<String>,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct FitSummary {
+    pub fit_id: i64,
+    pub series: String,
+    pub version: i64,
+    pub status: String,
+    pub created_at: String,
+    pub data_through_year: Option<i64>,
+    pub watermark: i64,
+    pub n_obs: Option<i64>,
+    pub n_sites: Option<i64>,
+    pub n_years: Option<i64>,
+    pub warm_start_from: Option<i64>,
+    pub chains: Option<i64>,
+    pub draws: Option<i64>,
+    pub warmup: Option<i64>,
+    pub wall_seconds: Option<f64>,
+    pub max_rhat: Option<f64>,
+    pub min_ess_bulk: Option<f64>,
+    pub min_ess_tail: Option<f64>,
+    pub message: Option<String>,
+}
+
+const FIT_COLUMNS: &str =
+    "fit_id, series, version, status, created_at, data_through_year, watermark,
+    n_obs, n_sites, n_years, warm_start_from, chains, draws, warmup, wall_seconds, max_rhat,
+    min_ess_bulk, min_ess_tail, message";
+
+fn fit_from_row(r: &SqliteRow) -> Result<FitSummary, sqlx::Error> {
+    Ok(FitSummary {
+        fit_id: r.try_get("fit_id")?,
+        series: r.try_get("series")?,
+        version: r.try_get("version")?,
+        status: r.try_get("status")?,
+        created_at: r.try_get("created_at")?,
+        data_through_year: r.try_get("data_through_year")?,
+        watermark: r.try_get("watermark")?,
+        n_obs: r.try_get("n_obs")?,
+        n_sites: r.try_get("n_sites")?,
+        n_years: r.try_get("n_years")?,
+        warm_start_from: r.try_get("warm_start_from")?,
+        chains: r.try_get("chains")?,
+        draws: r.try_get("draws")?,
+        warmup: r.try_get("warmup")?,
+        wall_seconds: r.try_get("wall_seconds")?,
+        max_rhat: r.try_get("max_rhat")?,
+        min_ess_bulk: r.try_get("min_ess_bulk")?,
+        min_ess_tail: r.try_get("min_ess_tail")?,
+        message: r.try_get("message")?,
+    })
+}
+
+impl Store {
+    /// The `limit` most recent runs, newest first.
+    pub async fn recent_runs(&self, limit: u32) -> Result<Vec<RunSummary>, StoreError> {
+        let rows = sqlx::query(
+            "SELECT run_id, trigger, started_at, finished_at, status, message
+             FROM runs ORDER BY run_id DESC LIMIT ?1",
+        )
+        .bind(limit)
+        .fetch_all(&self.pool)
+        .await
+        .map_err(|e| self.sql(e))?;
+        rows.iter()
+            .map(|r| {
+                Ok(RunSummary {
+                    run_id: r.try_get("run_id")?,
+                    trigger: r.try_get("trigger")?,
+                    started_at: r.try_get("started_at")?,
+                    finished_at: r.try_get("finished_at")?,
+                    status: r.try_get("status")?,
+                    message: r.try_get("message")?,
+                })
+            })
+            .collect::<Result<_, sqlx::Error>>()
+            .map_err(|e| self.sql(e))
+    }
+
+    /// The `limit` most recent ingest batches, newest first.
+    pub async fn recent_batches(&self, limit: u32) -> Result<Vec<BatchSummary>, StoreError> {
+        let rows = sqlx::query(
+            "SELECT batch_id, source, sha256, received_at, rows_read, values_accepted,
+                    values_rejected, values_superseding, values_unchanged, status, message
+             FROM ingest_batches ORDER BY batch_id DESC LIMIT ?1",
+        )
+        .bind(limit)
+        .fetch_all(&self.pool)
+        .await
+        .map_err(|e| self.sql(e))?;
+        rows.iter()
+            .map(|r| {
+                Ok(BatchSummary {
+                    batch_id: r.try_get("batch_id")?,
+                    source: r.try_get("source")?,
+                    sha256: r.try_get("sha256")?,
+                    received_at: r.try_get("received_at")?,
+                    rows_read: r.try_get("rows_read")?,
+                    values_accepted: r.try_get("values_accepted")?,
+                    values_rejected: r.try_get("values_rejected")?,
+                    values_superseding: r.try_get("values_superseding")?,
+                    values_unchanged: r.try_get("values_unchanged")?,
+                    status: r.try_get("status")?,
+                    message: r.try_get("message")?,
+                })
+            })
+            .collect::<Result<_, sqlx::Error>>()
+            .map_err(|e| self.sql(e))
+    }
+
+    /// The newest fit attempt of `series`, whatever its status.
+    pub async fn latest_fit_attempt(&self, series: &str) -> Result<Option<FitSummary>, StoreError> {
+        let sql = format!(
+            "SELECT {FIT_COLUMNS} FROM fits WHERE series = ?1 ORDER BY version DESC LIMIT 1"
+        );
+        self.one_fit(&sql, series).await
+    }
+
+    /// The latest published fit of `series` (the row of the `latest_fits` view).
+    pub async fn latest_published_fit(
+        &self,
+        series: &str,
+    ) -> Result<Option<FitSummary>, StoreError> {
+        let sql = format!("SELECT {FIT_COLUMNS} FROM latest_fits WHERE series = ?1");
+        self.one_fit(&sql, series).await
+    }
+
+    async fn one_fit(&self, sql: &str, series: &str) -> Result<Option<FitSummary>, StoreError> {
+        let row = sqlx::query(sql)
+            .bind(series)
+            .fetch_optional(&self.pool)
+            .await
+            .map_err(|e| self.sql(e))?;
+        row.as_ref()
+            .map(fit_from_row)
+            .transpose()
+            .map_err(|e| self.sql(e))
+    }
+}

@@ -1,0 +1,249 @@
+//! Test helper that speaks the domain's language: a monitoring network in a temporary
+//! directory, with a config, an inbox, the real `vigil` binary, and two ways to read the
+//! database (sqlx, and the `sqlite3` command-line client an analyst would use).
+
+#![allow(dead_code)]
+
+use std::fmt;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+use sqlx::sqlite::{SqliteConnectOptions, SqliteRow};
+use sqlx::{ConnectOptions, Row, TypeInfo, ValueRef};
+
+/// A config with two series over the feed columns lake / season / visit.
+pub const CONFIG: &str = r#"
+[store]
+database = "vigil.db"
+
+[feed]
+inbox = "inbox"
+archive = "archive"
+quarantine = "quarantine"
+
+[schedule]
+cron = "30 2 * * *"
+timezone = "UTC"
+
+[[series]]
+name = "chlorophyll"
+response = "chl_ug_l"
+transform = "log"
+site = "lake"
+year = "season"
+visit = "visit"
+covariates = ["surface_temp_c"]
+groups = ["crew"]
+
+[[series]]
+name = "phosphorus"
+response = "tp_ug_l"
+site = "lake"
+year = "season"
+visit = "visit"
+"#;
+
+/// One SQL value as read back.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Value {
+    Null,
+    Int(i64),
+    Real(f64),
+    Text(String),
+    Blob(Vec<u8>),
+}
+
+impl Value {
+    pub fn int(&self) -> i64 {
+        match self {
+            Value::Int(i) => *i,
+            other => panic!("expected an integer, found {other:?}"),
+        }
+    }
+    pub fn real(&self) -> f64 {
+        match self {
+            Value::Real(x) => *x,
+            Value::Int(i) => *i as f64,
+            other => panic!("expected a number, found {other:?}"),
+        }
+    }
+    pub fn text(&self) -> &str {
+        match self {
+            Value::Text(s) => s,
+            other => panic!("expected text, found {other:?}"),
+        }
+    }
+    pub fn is_null(&self) -> bool {
+        matches!(self, Value::Null)
+    }
+}
+
+impl fmt::Display for Value {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            Value::Null => f.write_str("NULL"),
+            Value::Int(i) => write!(f, "{i}"),
+            Value::Real(x) => write!(f, "{x}"),
+            Value::Text(s) => f.write_str(s),
+            Value::Blob(b) => write!(f, "<{} bytes>", b.len()),
+        }
+    }
+}
+
+pub struct Network {
+    pub dir: tempfile::TempDir,
+}
+
+impl Network {
+    /// A fresh network with the default config, not yet initialised.
+    pub fn new() -> Network {
+        Network::with_config(CONFIG)
+    }
+
+    pub fn with_config(config: &str) -> Network {
+        let dir = tempfile::tempdir().expect("temp dir");
+        std::fs::write(dir.path().join("vigil.toml"), config).expect("write config");
+        Network { dir }
+    }
+
+    /// A fresh network after `vigil init`.
+    pub fn initialised() -> Network {
+        let net = Network::new();
+        net.ok(&["init"]);
+        net
+    }
+
+    pub fn path(&self, rel: &str) -> PathBuf {
+        self.dir.path().join(rel)
+    }
+
+    pub fn config_path(&self) -> PathBuf {
+        self.path("vigil.toml")
+    }
+
+    pub fn db_path(&self) -> PathBuf {
+        self.path("vigil.db")
+    }
+
+    /// Put a feed file into the inbox.
+    pub fn drop_file(&self, name: &str, contents: impl AsRef<[u8]>) -> PathBuf {
+        let inbox = self.path("inbox");
+        std::fs::create_dir_all(&inbox).expect("inbox");
+        let p = inbox.join(name);
+        std::fs::write(&p, contents).expect("write feed file");
+        p
+    }
+
+    pub fn files_in(&self, dir: &str) -> Vec<String> {
+        let mut names: Vec<String> = std::fs::read_dir(self.path(dir))
+            .map(|rd| {
+                rd.filter_map(|e| e.ok())
+                    .map(|e| e.file_name().to_string_lossy().into_owned())
+                    .collect()
+            })
+            .unwrap_or_default();
+        names.sort();
+        names
+    }
+
+    /// Run the real binary with `--config` pointing at this network.
+    pub fn vigil(&self, args: &[&str]) -> Output {
+        Command::new(env!("CARGO_BIN_EXE_vigil"))
+            .arg("--config")
+            .arg(self.config_path())
+            .args(args)
+            .current_dir(self.dir.path())
+            .env_remove("RUST_LOG")
+            .env_remove("VIGIL_CONFIG")
+            .output()
+            .expect("run vigil")
+    }
+
+    /// Run and insist on success; returns stdout.
+    pub fn ok(&self, args: &[&str]) -> String {
+        let out = self.vigil(args);
+        assert!(
+            out.status.success(),
+            "vigil {args:?} failed ({}):\nstdout: {}\nstderr: {}",
+            out.status,
+            String::from_utf8_lossy(&out.stdout),
+            String::from_utf8_lossy(&out.stderr)
+        );
+        String::from_utf8_lossy(&out.stdout).into_owned()
+    }
+
+    /// Rows of a query, read through sqlx.
+    pub fn sql(&self, query: &str) -> Vec<Vec<Value>> {
+        let rt = tokio::runtime::Builder::new_current_thread()
+            .enable_all()
+            .build()
+            .expect("runtime");
+        rt.block_on(async {
+            let mut conn = SqliteConnectOptions::new()
+                .filename(self.db_path())
+                .read_only(true)
+                .connect()
+                .await
+                .expect("open db");
+            let rows = sqlx::query(query)
+                .fetch_all(&mut conn)
+                .await
+                .unwrap_or_else(|e| panic!("query {query:?} failed: {e}"));
+            rows.iter().map(row_values).collect()
+        })
+    }
+
+    /// The single value of a one-row, one-column query.
+    pub fn scalar(&self, query: &str) -> Value {
+        let rows = self.sql(query);
+        assert_eq!(rows.len(), 1, "{query}: expected one row, got {rows:?}");
+        rows[0][0].clone()
+    }
+
+    /// A query's output from the `sqlite3` command-line client (`-batch -noheader`, `|`
+    /// separated), exactly as an analyst would see it.
+    pub fn sqlite3(&self, query: &str) -> String {
+        let out = Command::new("sqlite3")
+            .arg("-batch")
+            .arg("-noheader")
+            .arg(self.db_path())
+            .arg(query)
+            .output()
+            .expect("the sqlite3 client must be installed (.ci/run installs it)");
+        assert!(
+            out.status.success(),
+            "sqlite3 {query:?} failed: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        String::from_utf8_lossy(&out.stdout).into_owned()
+    }
+}
+
+fn row_values(row: &SqliteRow) -> Vec<Value> {
+    (0..row.columns().len())
+        .map(|i| {
+            let raw = row.try_get_raw(i).expect("column");
+            if raw.is_null() {
+                return Value::Null;
+            }
+            match raw.type_info().name() {
+                "INTEGER" | "BOOLEAN" => Value::Int(row.get(i)),
+                "REAL" => Value::Real(row.get(i)),
+                "BLOB" => Value::Blob(row.get(i)),
+                _ => Value::Text(row.get(i)),
+            }
+        })
+        .collect()
+}
+
+/// Outcome line of `vigil ingest` for the file called `name`.
+pub fn line_for<'a>(stdout: &'a str, name: &str) -> &'a str {
+    stdout
+        .lines()
+        .find(|l| l.contains(name))
+        .unwrap_or_else(|| panic!("no line for {name} in:\n{stdout}"))
+}
+
+pub fn assert_exists(p: &Path) {
+    assert!(p.exists(), "{} should exist", p.display());
+}

@@ -1,0 +1,115 @@
+//! Configuration mistakes are reported by the binary with the file, the key and the fix.
+
+mod common;
+
+use std::process::Command;
+
+use common::{Network, CONFIG};
+
+fn stderr_of(net: &Network, args: &[&str]) -> String {
+    let out = net.vigil(args);
+    assert!(
+        !out.status.success(),
+        "vigil {args:?} accepted a bad config"
+    );
+    assert_eq!(out.status.code(), Some(1));
+    String::from_utf8_lossy(&out.stderr).into_owned()
+}
+
+#[test]
+fn a_bad_value_names_the_file_and_the_key() {
+    let net = Network::with_config(&CONFIG.replace("transform = \"log\"", "transform = \"ln\""));
+    let err = stderr_of(&net, &["init"]);
+    let file = net.config_path().display().to_string();
+    assert_eq!(
+        err.trim(),
+        format!(
+            "vigil: error: {file}: series[0].transform: must be \"none\" or \"log\", found \"ln\""
+        )
+    );
+    assert!(
+        !net.db_path().exists(),
+        "nothing is created from a bad config"
+    );
+}
+
+#[test]
+fn an_unknown_key_is_refused_with_its_line() {
+    let net = Network::with_config(&CONFIG.replace(
+        "timezone = \"UTC\"",
+        "timezone = \"UTC\"\ntimezon = \"UTC\"",
+    ));
+    let err = stderr_of(&net, &["status"]);
+    assert!(err.contains("vigil.toml: schedule"), "{err}");
+    assert!(err.contains("unknown field `timezon`"), "{err}");
+    assert!(err.contains("(line 13, column 1)"), "{err}");
+    assert_eq!(err.trim().lines().count(), 1, "{err}");
+}
+
+#[test]
+fn second_series_errors_carry_their_index() {
+    // The last [[series]] of CONFIG is series[1]; give it a bad prior.
+    let bad = format!("{CONFIG}[series.priors]\nsite_sd = {{ half_normal = 0 }}\n");
+    let net = Network::with_config(&bad);
+    let err = stderr_of(&net, &["init"]);
+    assert!(
+        err.contains("series[1].priors.site_sd: half_normal scale must be a positive"),
+        "{err}"
+    );
+}
+
+#[test]
+fn a_missing_config_names_the_path() {
+    let net = Network::new();
+    let out = Command::new(env!("CARGO_BIN_EXE_vigil"))
+        .args(["--config", "nowhere/vigil.toml", "status"])
+        .current_dir(net.dir.path())
+        .output()
+        .expect("run");
+    assert!(!out.status.success());
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        err.contains("cannot read config file nowhere/vigil.toml"),
+        "{err}"
+    );
+}
+
+#[test]
+fn config_comes_from_the_environment_and_paths_from_its_folder() {
+    let net = Network::new();
+    let elsewhere = tempfile::tempdir().expect("tmp");
+    let out = Command::new(env!("CARGO_BIN_EXE_vigil"))
+        .arg("init")
+        .env("VIGIL_CONFIG", net.config_path())
+        .current_dir(elsewhere.path())
+        .output()
+        .expect("run");
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    // The database and folders are beside the config, not in the working directory.
+    common::assert_exists(&net.db_path());
+    common::assert_exists(&net.path("inbox"));
+    assert!(std::fs::read_dir(elsewhere.path())
+        .expect("dir")
+        .next()
+        .is_none());
+}
+
+#[test]
+fn usage_errors_exit_2_and_help_works() {
+    let net = Network::new();
+    let out = net.vigil(&["no-such-command"]);
+    assert_eq!(out.status.code(), Some(2));
+    for args in [
+        &["--help"][..],
+        &["ingest", "--help"],
+        &["status", "--help"],
+    ] {
+        let out = net.vigil(args);
+        assert!(out.status.success());
+        assert!(String::from_utf8_lossy(&out.stdout).contains("Usage"));
+    }
+}

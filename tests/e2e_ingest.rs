@@ -1,0 +1,419 @@
+//! Feed ingest end to end: the real binary, real feed files, a real SQLite file.
+
+mod common;
+
+use std::sync::Arc;
+
+use arrow_array::{ArrayRef, Float64Array, Int32Array, RecordBatch, StringArray};
+use arrow_schema::{DataType, Field, Schema};
+use common::{line_for, Network, Value};
+
+const HEADER: &str = "lake,season,visit,chl_ug_l,tp_ug_l,surface_temp_c,crew";
+
+#[test]
+fn good_values_are_kept_and_every_bad_one_has_its_reason() {
+    let net = Network::initialised();
+    // A byte-order mark and CRLF line ends, as spreadsheet exports write them.
+    let rows = [
+        HEADER,
+        "L1,2020,1,3.2,12,18.5,A",  // line 2 (chl conflicts with line 8)
+        "L2,2020,1,abc,15,,B",      // line 3: chl not a number
+        ",2020,1,2.0,,,",           // line 4: no site
+        "L3,20x0,1,1.0,2.0,,C",     // line 5: bad year
+        "L4,2021,1,NaN,1e400,-3,D", // line 6: NaN, overflow; -3 kept
+        "L5,2021,1,1,2",            // line 7: too few fields
+        "L1,2020,1,3.3,12,18.5,A",  // line 8: conflict on chl, identical tp/temp/crew
+        "L6,1700,1,0,,,",           // line 9: year out of range
+        "L7,2021,1,0,-1,,",         // line 10: zero and negative are accepted here
+    ];
+    let text = format!("\u{feff}{}\r\n", rows.join("\r\n"));
+    net.drop_file("2021-spring.csv", text);
+    let out = net.ok(&["ingest"]);
+    let line = line_for(&out, "2021-spring.csv");
+    assert!(line.contains("9 values accepted"), "{line}");
+    assert!(line.contains("15 rejected"), "{line}");
+
+    let batch = &net.sql(
+        "SELECT status, rows_read, values_accepted, values_rejected, source FROM ingest_batches",
+    )[0];
+    assert_eq!(batch[0], Value::Text("ingested".into()));
+    assert_eq!(batch[1].int(), 9);
+    assert_eq!(batch[2].int(), 9);
+    assert_eq!(batch[3].int(), 15);
+    assert_eq!(batch[4].text(), "2021-spring.csv");
+
+    let kept = net.sqlite3(
+        "SELECT site, year, column_name, COALESCE(num_value, text_value) FROM current_observations
+         ORDER BY site, column_name",
+    );
+    assert_eq!(
+        kept,
+        "L1|2020|crew|A\nL1|2020|surface_temp_c|18.5\nL1|2020|tp_ug_l|12.0\n\
+         L2|2020|crew|B\nL2|2020|tp_ug_l|15.0\n\
+         L4|2021|crew|D\nL4|2021|surface_temp_c|-3.0\n\
+         L7|2021|chl_ug_l|0.0\nL7|2021|tp_ug_l|-1.0\n"
+    );
+
+    let rejected = net.sql(
+        "SELECT line, column_name, raw_value, reason FROM rejections ORDER BY line, column_name",
+    );
+    assert_eq!(rejected.len(), 15);
+    let find = |line: i64, col: Option<&str>| -> (Value, String) {
+        let r = rejected
+            .iter()
+            .find(|r| {
+                r[0].int() == line
+                    && match col {
+                        Some(c) => r[1] == Value::Text(c.into()),
+                        None => r[1].is_null(),
+                    }
+            })
+            .unwrap_or_else(|| panic!("no rejection at line {line} column {col:?}: {rejected:?}"));
+        (r[2].clone(), r[3].text().to_string())
+    };
+    let (raw, reason) = find(3, Some("chl_ug_l"));
+    assert_eq!(raw, Value::Text("abc".into()));
+    assert!(reason.contains("not a number"), "{reason}");
+    assert!(find(4, Some("chl_ug_l")).1.contains("no site"));
+    for col in ["chl_ug_l", "tp_ug_l", "crew"] {
+        assert!(find(5, Some(col)).1.contains("20x0"));
+    }
+    assert!(find(6, Some("chl_ug_l")).1.contains("NaN"));
+    assert!(find(6, Some("tp_ug_l")).1.contains("overflows"));
+    for col in ["lake", "season", "visit", "chl_ug_l", "tp_ug_l"] {
+        assert!(find(7, Some(col))
+            .1
+            .contains("5 fields but the header has 7"));
+    }
+    let (raw2, conflict2) = find(2, Some("chl_ug_l"));
+    let (raw8, conflict8) = find(8, Some("chl_ug_l"));
+    assert_eq!(raw2, Value::Text("3.2".into()));
+    assert_eq!(raw8, Value::Text("3.3".into()));
+    assert!(conflict2.contains("conflicting") && conflict2.contains("lines 2, 8"));
+    assert_eq!(conflict2, conflict8);
+    assert!(find(9, Some("chl_ug_l")).1.contains("outside 1800..=2200"));
+
+    // The file left the inbox for the archive, after its batch committed.
+    assert!(net.files_in("inbox").is_empty());
+    assert_eq!(net.files_in("archive"), ["2021-spring.csv"]);
+}
+
+#[test]
+fn the_same_file_twice_changes_nothing() {
+    let net = Network::initialised();
+    let text = format!("{HEADER}\nL1,2020,1,3.2,12,18.5,A\nL2,2020,2,4.1,9,17,B\n");
+    net.drop_file("a.csv", &text);
+    net.ok(&["ingest"]);
+    let before = net.sqlite3("SELECT * FROM observations ORDER BY value_id");
+    net.drop_file("a-again.csv", &text);
+    let out = net.ok(&["ingest"]);
+    assert!(
+        line_for(&out, "a-again.csv").contains("duplicate of batch 1"),
+        "{out}"
+    );
+    assert_eq!(
+        net.sqlite3("SELECT * FROM observations ORDER BY value_id"),
+        before
+    );
+    assert_eq!(
+        net.sqlite3(
+            "SELECT batch_id, status, values_accepted, values_rejected, duplicate_of FROM ingest_batches ORDER BY batch_id"
+        ),
+        "1|ingested|8|0|\n2|duplicate|0|0|1\n"
+    );
+    // The same name again goes to the archive under a new name.
+    net.drop_file("a.csv", &text);
+    net.ok(&["ingest"]);
+    assert_eq!(net.files_in("archive"), ["a-2.csv", "a-again.csv", "a.csv"]);
+    assert_eq!(net.scalar("SELECT COUNT(*) FROM observations").int(), 8);
+}
+
+#[test]
+fn a_correction_supersedes_and_keeps_history() {
+    let net = Network::initialised();
+    net.drop_file("01.csv", format!("{HEADER}\nL1,2020,1,3.2,12,18.5,A\n"));
+    net.ok(&["ingest"]);
+    let old_id = net
+        .scalar("SELECT value_id FROM current_observations WHERE column_name = 'chl_ug_l'")
+        .int();
+    // Visit column left out: the default visit label "1" names the same visit.
+    net.drop_file(
+        "02.csv",
+        "lake,season,chl_ug_l,tp_ug_l\nL1,2020,3.5,12\nL2,2020,1.0,\n",
+    );
+    let out = net.ok(&["ingest"]);
+    assert!(
+        line_for(&out, "02.csv").contains("3 values accepted (1 superseding, 1 unchanged)"),
+        "{out}"
+    );
+    let history = net.sql(
+        "SELECT value_id, num_value, superseded_by, batch_id FROM observations o
+         WHERE column_name = 'chl_ug_l' AND site_id = (SELECT site_id FROM sites WHERE code = 'L1')
+         ORDER BY value_id",
+    );
+    assert_eq!(history.len(), 2, "{history:?}");
+    assert_eq!(history[0][0].int(), old_id);
+    assert_eq!(history[0][1].real(), 3.2);
+    assert_eq!(history[0][2].int(), history[1][0].int());
+    assert_eq!(history[1][1].real(), 3.5);
+    assert!(history[1][2].is_null());
+    assert_eq!(history[1][3].int(), 2);
+    assert_eq!(
+        net.sqlite3("SELECT site, num_value FROM current_observations WHERE column_name = 'chl_ug_l' ORDER BY site"),
+        "L1|3.5\nL2|1.0\n"
+    );
+    // The identical tp value made no new row.
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM observations WHERE column_name = 'tp_ug_l'")
+            .int(),
+        1
+    );
+}
+
+#[test]
+fn unreadable_files_are_quarantined_with_their_reason() {
+    let net = Network::initialised();
+    net.drop_file(
+        "junk.csv",
+        [0x89u8, b'P', b'N', b'G', 0, 0, 0, 13, 0xFF, 0x00],
+    );
+    net.drop_file(
+        "latin1.csv",
+        b"lake,season,chl_ug_l\nJ\xe4rvi,2020,1.0\n".as_slice(),
+    );
+    net.drop_file("noyear.csv", "lake,chl_ug_l\nL1,1.0\n");
+    net.drop_file("empty.csv", "");
+    net.drop_file("fake.arrow", b"ARROW1\0\0garbage".as_slice());
+    net.drop_file("good.csv", format!("{HEADER}\nL1,2020,1,3.2,12,18.5,A\n"));
+    let out = net.ok(&["ingest"]);
+    for name in [
+        "junk.csv",
+        "latin1.csv",
+        "noyear.csv",
+        "empty.csv",
+        "fake.arrow",
+    ] {
+        assert!(line_for(&out, name).contains("quarantined"), "{out}");
+    }
+    let reasons = net.sql(
+        "SELECT source, message FROM ingest_batches WHERE status = 'quarantined' ORDER BY source",
+    );
+    let reason = |src: &str| -> String {
+        reasons
+            .iter()
+            .find(|r| r[0].text() == src)
+            .map(|r| r[1].text().to_string())
+            .unwrap_or_else(|| panic!("{src} not quarantined: {reasons:?}"))
+    };
+    assert!(
+        reason("junk.csv").contains("UTF-8"),
+        "{}",
+        reason("junk.csv")
+    );
+    assert!(reason("latin1.csv").contains("not UTF-8 text (first invalid byte on line 2)"));
+    assert!(reason("noyear.csv").contains("no year column `season`"));
+    assert!(reason("empty.csv").contains("empty"));
+    assert!(reason("fake.arrow").contains("Arrow"));
+    assert_eq!(
+        net.files_in("quarantine"),
+        [
+            "empty.csv",
+            "fake.arrow",
+            "junk.csv",
+            "latin1.csv",
+            "noyear.csv"
+        ]
+    );
+    assert_eq!(net.files_in("archive"), ["good.csv"]);
+    assert_eq!(net.scalar("SELECT COUNT(*) FROM observations").int(), 4);
+}
+
+#[test]
+fn site_codes_and_labels_round_trip_verbatim() {
+    let net = Network::initialised();
+    let nasty = "S6';DROP TABLE fits;--";
+    let quoted = "Lake \"North\", east";
+    let unicode = "Järvi Ä 湖 🦆";
+    let label = "O'Brien, \"Bo\"";
+    let csv = format!(
+        "{HEADER}\n\"{}\",2020,1,1.0,,,x\n\"{}\",2020,1,2.0,,,\"{}\"\n{unicode},2020,\"v;1\",3.0,,,\n",
+        nasty.replace('"', "\"\""),
+        quoted.replace('"', "\"\""),
+        label.replace('"', "\"\"")
+    );
+    net.drop_file("odd.csv", csv);
+    net.ok(&["ingest"]);
+    let codes: Vec<String> = net
+        .sql("SELECT code FROM sites ORDER BY site_id")
+        .into_iter()
+        .map(|r| r[0].text().to_string())
+        .collect();
+    assert_eq!(codes, [nasty, quoted, unicode]);
+    // The analyst's client sees the same bytes.
+    assert_eq!(
+        net.sqlite3("SELECT code FROM sites ORDER BY site_id"),
+        format!("{nasty}\n{quoted}\n{unicode}\n")
+    );
+    assert_eq!(
+        net.scalar("SELECT text_value FROM observations WHERE column_name = 'crew' AND text_value LIKE 'O%'"),
+        Value::Text(label.into())
+    );
+    assert_eq!(
+        net.scalar("SELECT visit FROM current_observations WHERE site = 'Järvi Ä 湖 🦆'"),
+        Value::Text("v;1".into())
+    );
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM sqlite_master WHERE name = 'fits'")
+            .int(),
+        1
+    );
+}
+
+fn arrow_batch() -> RecordBatch {
+    let schema = Arc::new(Schema::new(vec![
+        Field::new("lake", DataType::Utf8, true),
+        Field::new("season", DataType::Int32, true),
+        Field::new("chl_ug_l", DataType::Float64, true),
+        Field::new("crew", DataType::Utf8, true),
+    ]));
+    let columns: Vec<ArrayRef> = vec![
+        Arc::new(StringArray::from(vec![
+            Some("L1"),
+            Some("L2"),
+            None,
+            Some("L4"),
+        ])),
+        Arc::new(Int32Array::from(vec![
+            Some(2020),
+            Some(2021),
+            Some(2021),
+            Some(2022),
+        ])),
+        Arc::new(Float64Array::from(vec![
+            Some(3.25),
+            None,
+            Some(1.0),
+            Some(f64::NAN),
+        ])),
+        Arc::new(StringArray::from(vec![Some("A"), Some("B"), None, None])),
+    ];
+    RecordBatch::try_new(schema, columns).expect("batch")
+}
+
+#[test]
+fn arrow_ipc_files_and_streams_ingest() {
+    let net = Network::initialised();
+    let batch = arrow_batch();
+    let mut file_bytes = Vec::new();
+    {
+        let mut w = arrow_ipc::writer::FileWriter::try_new(&mut file_bytes, &batch.schema())
+            .expect("writer");
+        w.write(&batch).expect("write");
+        w.finish().expect("finish");
+    }
+    net.drop_file("season.arrow", &file_bytes);
+    let out = net.ok(&["ingest"]);
+    let line = line_for(&out, "season.arrow");
+    assert!(line.contains("4 rows, 3 values accepted"), "{line}");
+    assert!(line.contains("2 rejected"), "{line}");
+    assert_eq!(
+        net.sqlite3(
+            "SELECT site, year, visit, column_name, COALESCE(num_value, text_value) FROM current_observations ORDER BY site, column_name"
+        ),
+        "L1|2020|1|chl_ug_l|3.25\nL1|2020|1|crew|A\nL2|2021|1|crew|B\n"
+    );
+    assert_eq!(
+        net.sqlite3("SELECT line, column_name, reason FROM rejections ORDER BY line"),
+        "3|chl_ug_l|row has no site (column `lake` is empty)\n\
+         4|chl_ug_l|NaN is not a value; leave the cell empty for a missing value\n"
+    );
+    assert_eq!(
+        net.scalar("SELECT format FROM ingest_batches").text(),
+        "arrow-file"
+    );
+
+    // The stream format of a corrected batch: L1's value changes.
+    let mut stream_bytes = Vec::new();
+    {
+        let schema = batch.schema();
+        let fixed = RecordBatch::try_new(
+            schema.clone(),
+            vec![
+                Arc::new(StringArray::from(vec!["L1"])) as ArrayRef,
+                Arc::new(Int32Array::from(vec![2020])),
+                Arc::new(Float64Array::from(vec![3.5])),
+                Arc::new(StringArray::from(vec!["A"])),
+            ],
+        )
+        .expect("batch");
+        let mut w =
+            arrow_ipc::writer::StreamWriter::try_new(&mut stream_bytes, &schema).expect("writer");
+        w.write(&fixed).expect("write");
+        w.finish().expect("finish");
+    }
+    net.drop_file("fix.arrows", &stream_bytes);
+    let out = net.ok(&["ingest"]);
+    assert!(
+        line_for(&out, "fix.arrows").contains("(1 superseding, 1 unchanged)"),
+        "{out}"
+    );
+    assert_eq!(
+        net.scalar("SELECT num_value FROM current_observations WHERE site = 'L1' AND column_name = 'chl_ug_l'").real(),
+        3.5
+    );
+}
+
+#[test]
+fn failed_batch_leaves_nothing() {
+    let net = Network::initialised();
+    // Make the last step of the batch transaction (writing rejections) fail.
+    net.sqlite3(
+        "CREATE TRIGGER injected_failure BEFORE INSERT ON rejections
+         BEGIN SELECT RAISE(ABORT, 'injected failure'); END;",
+    );
+    net.drop_file(
+        "a.csv",
+        format!("{HEADER}\nL1,2020,1,3.2,12,18.5,A\nL2,2020,1,abc,,,\n"),
+    );
+    let out = net.vigil(&["ingest"]);
+    assert!(!out.status.success());
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(stderr.contains("injected failure"), "{stderr}");
+    assert!(
+        stderr
+            .lines()
+            .last()
+            .unwrap_or("")
+            .starts_with("vigil: error:"),
+        "{stderr}"
+    );
+    for table in ["ingest_batches", "observations", "sites", "rejections"] {
+        assert_eq!(
+            net.scalar(&format!("SELECT COUNT(*) FROM {table}")).int(),
+            0,
+            "{table} must show nothing of the failed batch"
+        );
+    }
+    assert_eq!(net.files_in("inbox"), ["a.csv"]);
+    assert!(net.files_in("archive").is_empty());
+
+    net.sqlite3("DROP TRIGGER injected_failure");
+    net.ok(&["ingest"]);
+    assert_eq!(net.scalar("SELECT COUNT(*) FROM observations").int(), 4);
+    assert_eq!(net.scalar("SELECT COUNT(*) FROM rejections").int(), 1);
+    assert_eq!(net.files_in("archive"), ["a.csv"]);
+}
+
+#[test]
+fn named_files_outside_the_inbox_are_copied_not_moved() {
+    let net = Network::initialised();
+    let outside = net.path("upload.csv");
+    std::fs::write(&outside, format!("{HEADER}\nL1,2020,1,3.2,12,18.5,A\n")).expect("write");
+    let out = net.ok(&["ingest", outside.to_str().expect("utf-8 path")]);
+    assert!(out.contains("ingested as batch 1"), "{out}");
+    common::assert_exists(&outside);
+    assert_eq!(net.files_in("archive"), ["upload.csv"]);
+    let missing = net.vigil(&["ingest", "no-such-file.csv"]);
+    assert!(!missing.status.success());
+    assert!(String::from_utf8_lossy(&missing.stderr).contains("no-such-file.csv is not a file"));
+}

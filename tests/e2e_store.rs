@@ -1,0 +1,361 @@
+//! The database as outside readers see it: migrations, contract views, immutability of
+//! published versions, and `status`.
+
+mod common;
+
+use common::Network;
+
+#[test]
+fn init_is_idempotent_and_sets_up_wal() {
+    let net = Network::new();
+    let first = net.ok(&["init"]);
+    assert!(first.contains("schema version 1"), "{first}");
+    net.ok(&["init"]);
+    for dir in ["inbox", "archive", "quarantine"] {
+        common::assert_exists(&net.path(dir));
+    }
+    assert_eq!(net.sqlite3("PRAGMA journal_mode").trim(), "wal");
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM _sqlx_migrations WHERE success")
+            .int(),
+        1
+    );
+}
+
+#[test]
+fn contract_tables_and_columns_exist() {
+    let net = Network::initialised();
+    let contract: &[(&str, &[&str])] = &[
+        (
+            "ingest_batches",
+            &[
+                "batch_id",
+                "source",
+                "sha256",
+                "received_at",
+                "rows_read",
+                "values_accepted",
+                "values_rejected",
+                "status",
+            ],
+        ),
+        (
+            "rejections",
+            &["batch_id", "line", "column_name", "raw_value", "reason"],
+        ),
+        (
+            "fits",
+            &[
+                "fit_id",
+                "series",
+                "version",
+                "status",
+                "created_at",
+                "data_through_year",
+                "watermark",
+                "n_obs",
+                "n_sites",
+                "n_years",
+                "warm_start_from",
+                "chains",
+                "draws",
+                "warmup",
+                "wall_seconds",
+                "max_rhat",
+                "min_ess_bulk",
+                "min_ess_tail",
+                "seed",
+                "message",
+            ],
+        ),
+        (
+            "posterior_summary",
+            &[
+                "fit_id", "kind", "term", "level", "mean", "sd", "q05", "q25", "q50", "q75", "q95",
+                "rhat", "ess_bulk", "ess_tail",
+            ],
+        ),
+        (
+            "forecasts",
+            &[
+                "fit_id",
+                "target",
+                "site",
+                "year",
+                "scenario",
+                "mean",
+                "sd",
+                "q50",
+                "lo50",
+                "hi50",
+                "lo80",
+                "hi80",
+                "lo95",
+                "hi95",
+                "share_site",
+                "share_year",
+                "share_groups",
+                "share_residual",
+                "share_estimation",
+            ],
+        ),
+        (
+            "runs",
+            &[
+                "run_id",
+                "trigger",
+                "started_at",
+                "finished_at",
+                "status",
+                "message",
+            ],
+        ),
+        ("latest_fits", &["fit_id", "series", "version", "status"]),
+        (
+            "latest_forecasts",
+            &[
+                "series",
+                "fit_id",
+                "target",
+                "site",
+                "year",
+                "scenario",
+                "mean",
+                "sd",
+                "q50",
+                "lo50",
+                "hi50",
+                "lo80",
+                "hi80",
+                "lo95",
+                "hi95",
+                "share_site",
+                "share_year",
+                "share_groups",
+                "share_residual",
+                "share_estimation",
+            ],
+        ),
+        (
+            "variance_drift",
+            &[
+                "series",
+                "version",
+                "fit_id",
+                "data_through_year",
+                "term",
+                "q05",
+                "q50",
+                "q95",
+            ],
+        ),
+    ];
+    for (table, columns) in contract {
+        let have: Vec<String> = net
+            .sql(&format!("SELECT name FROM pragma_table_info('{table}')"))
+            .into_iter()
+            .map(|r| r[0].text().to_string())
+            .collect();
+        for c in *columns {
+            assert!(
+                have.iter().any(|h| h == c),
+                "{table} lacks column {c}: {have:?}"
+            );
+        }
+    }
+}
+
+/// Two published versions and a rejected one, written the way the pipeline will.
+const FITS: &str = "
+INSERT INTO fits (fit_id, series, version, status, created_at, data_through_year, watermark)
+VALUES (1, 'chlorophyll', 1, 'published', '2026-01-01T02:30:00Z', 2020, 10),
+       (2, 'chlorophyll', 2, 'published', '2026-01-02T02:30:00Z', 2021, 20),
+       (3, 'chlorophyll', 3, 'rejected',  '2026-01-03T02:30:00Z', 2022, 30);
+INSERT INTO posterior_summary (fit_id, kind, term, level, q05, q50, q95) VALUES
+  (1, 'sd', 'site', NULL, 0.5, 1.0, 1.5), (1, 'sd', 'residual', NULL, 0.2, 0.3, 0.4),
+  (2, 'sd', 'site', NULL, 0.6, 1.1, 1.4), (2, 'sd', 'residual', NULL, 0.25, 0.3, 0.35),
+  (2, 'effect', 'site', 'L1', -1, 0, 1), (3, 'sd', 'site', NULL, 9, 9, 9);
+INSERT INTO forecasts (fit_id, target, site, year, mean) VALUES
+  (1, 'known_site_new_year', 'L1', 2021, 1.0),
+  (2, 'known_site_new_year', 'L1', 2022, 2.0),
+  (2, 'new_site_new_year', NULL, 2022, 3.0);
+";
+
+#[test]
+fn views_serve_the_latest_published_version_and_the_drift() {
+    let net = Network::initialised();
+    net.sqlite3(FITS);
+    assert_eq!(
+        net.sqlite3("SELECT series, version, fit_id FROM latest_fits"),
+        "chlorophyll|2|2\n"
+    );
+    assert_eq!(
+        net.sqlite3("SELECT series, fit_id, target, site, year, mean FROM latest_forecasts ORDER BY target"),
+        "chlorophyll|2|known_site_new_year|L1|2022|2.0\nchlorophyll|2|new_site_new_year||2022|3.0\n"
+    );
+    assert_eq!(
+        net.sqlite3("SELECT series, version, fit_id, data_through_year, term, q05, q50, q95 FROM variance_drift"),
+        "chlorophyll|1|1|2020|residual|0.2|0.3|0.4\n\
+         chlorophyll|1|1|2020|site|0.5|1.0|1.5\n\
+         chlorophyll|2|2|2021|residual|0.25|0.3|0.35\n\
+         chlorophyll|2|2|2021|site|0.6|1.1|1.4\n"
+    );
+}
+
+#[test]
+fn published_versions_are_immutable() {
+    let net = Network::initialised();
+    net.sqlite3(FITS);
+    for stmt in [
+        "UPDATE fits SET message = 'edited' WHERE fit_id = 2",
+        "DELETE FROM fits WHERE fit_id = 1",
+        "UPDATE posterior_summary SET q50 = 0 WHERE fit_id = 2",
+        "DELETE FROM posterior_summary WHERE fit_id = 1",
+    ] {
+        let out = std::process::Command::new("sqlite3")
+            .arg(net.db_path())
+            .arg(stmt)
+            .output()
+            .expect("sqlite3");
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert!(
+            !out.status.success() || err.contains("immutable"),
+            "{stmt} was allowed"
+        );
+        assert!(err.contains("immutable"), "{stmt}: {err}");
+    }
+    // A rejected attempt is not a version: it may be annotated.
+    net.sqlite3("UPDATE fits SET message = 'gate failed' WHERE fit_id = 3");
+    assert_eq!(net.scalar("SELECT COUNT(*) FROM fits").int(), 3);
+}
+
+#[test]
+fn accepted_values_cannot_be_rewritten() {
+    let net = Network::initialised();
+    net.drop_file("a.csv", "lake,season,chl_ug_l\nL1,2020,1.0\n");
+    net.ok(&["ingest"]);
+    for stmt in [
+        "UPDATE observations SET num_value = 2",
+        "DELETE FROM observations",
+    ] {
+        let out = std::process::Command::new("sqlite3")
+            .arg(net.db_path())
+            .arg(stmt)
+            .output()
+            .expect("sqlite3");
+        assert!(
+            String::from_utf8_lossy(&out.stderr).contains("history"),
+            "{stmt} was allowed"
+        );
+    }
+    assert_eq!(net.scalar("SELECT num_value FROM observations").real(), 1.0);
+}
+
+#[test]
+fn a_database_from_a_newer_vigil_is_refused() {
+    let net = Network::initialised();
+    net.sqlite3(
+        "INSERT INTO _sqlx_migrations (version, description, success, checksum, execution_time)
+         VALUES (9999, 'from the future', 1, x'00', 0)",
+    );
+    for args in [&["status"][..], &["ingest"], &["init"]] {
+        let out = net.vigil(args);
+        assert!(!out.status.success(), "{args:?} ran on a newer database");
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert!(err.contains("written by a newer vigil"), "{args:?}: {err}");
+        assert!(err.contains("9999"), "{err}");
+        assert_eq!(
+            err.trim().lines().count(),
+            1,
+            "one-line reason expected: {err}"
+        );
+    }
+}
+
+#[test]
+fn a_missing_or_unmigrated_database_asks_for_init() {
+    let net = Network::new();
+    let out = net.vigil(&["status"]);
+    assert!(!out.status.success());
+    assert!(String::from_utf8_lossy(&out.stderr).contains("does not exist; run `vigil init`"));
+
+    net.sqlite3("CREATE TABLE unrelated (x)");
+    let out = net.vigil(&["ingest"]);
+    assert!(!out.status.success());
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(err.contains("run `vigil init`"), "{err}");
+    net.ok(&["init"]);
+    net.ok(&["status"]);
+}
+
+#[test]
+fn status_json_reports_series_batches_and_schedule() {
+    let net = Network::initialised();
+    let fresh: serde_json::Value =
+        serde_json::from_str(&net.ok(&["status", "--json"])).expect("json");
+    assert_eq!(
+        fresh["series_without_fit"],
+        serde_json::json!(["chlorophyll", "phosphorus"])
+    );
+    assert!(fresh["schedule"]["next_run"]
+        .as_str()
+        .is_some_and(|t| t.ends_with("T02:30:00Z")));
+
+    net.drop_file("a.csv", "lake,season,chl_ug_l\nL1,2020,1.0\nL2,2020,x\n");
+    net.ok(&["ingest"]);
+    net.sqlite3(FITS);
+    let s: serde_json::Value = serde_json::from_str(&net.ok(&["status", "--json"])).expect("json");
+    assert_eq!(s["schema_version"], 1);
+    assert_eq!(s["inbox_waiting"], 0);
+    assert_eq!(s["batches"][0]["values_accepted"], 1);
+    assert_eq!(s["batches"][0]["values_rejected"], 1);
+    assert_eq!(s["batches"][0]["status"], "ingested");
+    let chl = &s["series"][0];
+    assert_eq!(chl["name"], "chlorophyll");
+    assert_eq!(chl["latest_fit"]["version"], 3);
+    assert_eq!(chl["latest_fit"]["status"], "rejected");
+    assert_eq!(chl["latest_published"]["version"], 2);
+    // The value id of the ingested chl value (1) is below the fit's watermark (30).
+    assert_eq!(chl["data_watermark"], 1);
+    assert_eq!(chl["data_changed"], false);
+    assert_eq!(s["series_without_fit"], serde_json::json!(["phosphorus"]));
+    let text = net.ok(&["status"]);
+    assert!(text.contains("phosphorus: no fit yet"), "{text}");
+    assert!(text.contains("chlorophyll: serving version 2"), "{text}");
+}
+
+/// Every SQL statement lives in `service/src/store/`; this scan keeps it that way.
+#[test]
+fn only_the_store_writes_sql() {
+    let src = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("src");
+    let mut offenders = Vec::new();
+    let mut stack = vec![src.clone()];
+    while let Some(dir) = stack.pop() {
+        for entry in std::fs::read_dir(&dir).expect("read src") {
+            let path = entry.expect("entry").path();
+            if path.is_dir() {
+                if path != src.join("store") {
+                    stack.push(path);
+                }
+                continue;
+            }
+            let text = std::fs::read_to_string(&path).expect("read");
+            for needle in [
+                "sqlx::query",
+                "INSERT INTO",
+                "UPDATE ",
+                "DELETE FROM",
+                "SELECT ",
+                "CREATE TABLE",
+            ] {
+                if text.contains(needle) {
+                    offenders.push(format!("{} contains {needle:?}", path.display()));
+                }
+            }
+        }
+    }
+    assert!(
+        offenders.is_empty(),
+        "SQL outside the store module: {offenders:#?}"
+    );
+}
