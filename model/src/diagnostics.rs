@@ -57,41 +57,31 @@ impl ZTable {
     }
 }
 
-/// Average ranks (1-based) of all values pooled, then normal scores, chain shapes kept.
-fn z_scale(chains: &[Vec<f64>], table: &ZTable) -> Vec<Vec<f64>> {
-    let total: usize = chains.iter().map(|c| c.len()).sum();
-    let mut idx: Vec<(f64, usize)> = Vec::with_capacity(total);
-    for c in chains {
-        for &v in c {
-            idx.push((v, idx.len()));
-        }
-    }
-    idx.sort_by(|a, b| a.0.total_cmp(&b.0));
-    let mut ranks = vec![0.0; total];
+/// Normal scores of pooled values given their ascending order (`order[k]` is the flat
+/// index of the k-th smallest); ties share their average rank. Output has chain shapes.
+fn z_from_order(
+    values: &[f64],
+    order: &[usize],
+    chain_len: usize,
+    table: &ZTable,
+) -> Vec<Vec<f64>> {
+    let total = values.len();
+    debug_assert_eq!(table.total, total);
+    let mut z = vec![0.0; total];
     let mut i = 0;
     while i < total {
         let mut j = i;
-        while j + 1 < total && idx[j + 1].0 == idx[i].0 {
+        while j + 1 < total && values[order[j + 1]] == values[order[i]] {
             j += 1;
         }
-        let r = (i + j) as f64 / 2.0 + 1.0;
-        for item in &idx[i..=j] {
-            ranks[item.1] = r;
+        // Average 1-based rank of the run i..=j, doubled to stay an integer.
+        let twice_rank = i + j + 2;
+        for &k in &order[i..=j] {
+            z[k] = table.by_twice_rank[twice_rank];
         }
         i = j + 1;
     }
-    debug_assert_eq!(table.total, total);
-    let mut out = Vec::with_capacity(chains.len());
-    let mut at = 0;
-    for c in chains {
-        out.push(
-            (0..c.len())
-                .map(|k| table.by_twice_rank[(2.0 * ranks[at + k]) as usize])
-                .collect(),
-        );
-        at += c.len();
-    }
-    out
+    z.chunks(chain_len).map(|c| c.to_vec()).collect()
 }
 
 fn mean(x: &[f64]) -> f64 {
@@ -208,11 +198,15 @@ fn ess_quantile(split: &[Vec<f64>], sorted: &[f64], p: f64) -> f64 {
 /// Rank-normalised split R-hat, bulk-ESS and tail-ESS of one quantity, given per chain.
 pub fn diagnose(chains: &[&[f64]]) -> Diagnostic {
     let half = chains.first().map_or(0, |c| c.len() / 2);
-    diagnose_with(chains, &ZTable::new(2 * half * chains.len()))
+    diagnose_with(chains, &ZTable::new(2 * half * chains.len())).0
 }
 
-/// [`diagnose`] with a shared table of normal scores (for `S` = all split draws).
-pub(crate) fn diagnose_with(chains: &[&[f64]], table: &ZTable) -> Diagnostic {
+/// [`diagnose`] with a shared table of normal scores (for `S` = all split draws); also
+/// returns the split draws sorted ascending, which summaries reuse for quantiles.
+///
+/// One sort serves everything: the ranks of the draws come from it, and so do the ranks
+/// of the folded draws `|x - median|`, by merging outward from the median.
+pub(crate) fn diagnose_with(chains: &[&[f64]], table: &ZTable) -> (Diagnostic, Vec<f64>) {
     let nan = Diagnostic {
         rhat: f64::NAN,
         ess_bulk: f64::NAN,
@@ -220,25 +214,104 @@ pub(crate) fn diagnose_with(chains: &[&[f64]], table: &ZTable) -> Diagnostic {
     };
     if chains.is_empty() || chains[0].len() < 4 || chains.iter().any(|c| c.len() != chains[0].len())
     {
-        return nan;
+        let mut all: Vec<f64> = chains.iter().flat_map(|c| c.iter().copied()).collect();
+        all.sort_unstable_by(f64::total_cmp);
+        return (nan, all);
     }
     let split = split_chains(chains);
-    let mut sorted: Vec<f64> = split.iter().flatten().copied().collect();
-    sorted.sort_by(f64::total_cmp);
-    if sorted[0] == sorted[sorted.len() - 1] {
-        return nan;
+    let chain_len = split[0].len();
+    let flat: Vec<f64> = split.iter().flatten().copied().collect();
+    let total = flat.len();
+    let mut order: Vec<usize> = (0..total).collect();
+    order.sort_unstable_by(|&a, &b| flat[a].total_cmp(&flat[b]));
+    let sorted: Vec<f64> = order.iter().map(|&k| flat[k]).collect();
+    if sorted[0] == sorted[total - 1] {
+        return (nan, sorted);
     }
-    let z = z_scale(&split, table);
+    let z = z_from_order(&flat, &order, chain_len, table);
     let median = quantile_sorted(&sorted, 0.5);
-    let folded: Vec<Vec<f64>> = split
-        .iter()
-        .map(|c| c.iter().map(|v| (v - median).abs()).collect())
-        .collect();
+    let folded: Vec<f64> = flat.iter().map(|v| (v - median).abs()).collect();
+    // Ascending order of |x - median|: walk down from the median on the left, up on the
+    // right, taking the nearer one each time.
+    let split_at = sorted.partition_point(|&v| v < median);
+    let (mut left, mut right) = (split_at, split_at);
+    let mut folded_order = Vec::with_capacity(total);
+    while folded_order.len() < total {
+        let take_left = match (left > 0, right < total) {
+            (true, true) => folded[order[left - 1]] <= folded[order[right]],
+            (true, false) => true,
+            _ => false,
+        };
+        if take_left {
+            left -= 1;
+            folded_order.push(order[left]);
+        } else {
+            folded_order.push(order[right]);
+            right += 1;
+        }
+    }
+    let z_folded = z_from_order(&folded, &folded_order, chain_len, table);
     let rhat_bulk = rhat_basic(&z);
-    let rhat_tail = rhat_basic(&z_scale(&folded, table));
-    Diagnostic {
+    let rhat_tail = rhat_basic(&z_folded);
+    let d = Diagnostic {
         rhat: rhat_bulk.max(rhat_tail),
         ess_bulk: ess_basic(&z),
         ess_tail: ess_quantile(&split, &sorted, 0.05).min(ess_quantile(&split, &sorted, 0.95)),
+    };
+    (d, sorted)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use rand::{Rng, SeedableRng};
+
+    /// Ranks by a plain sort of the values themselves (the textbook route).
+    fn z_naive(chains: &[Vec<f64>], table: &ZTable) -> Vec<Vec<f64>> {
+        let flat: Vec<f64> = chains.iter().flatten().copied().collect();
+        let mut order: Vec<usize> = (0..flat.len()).collect();
+        order.sort_by(|&a, &b| flat[a].total_cmp(&flat[b]));
+        z_from_order(&flat, &order, chains[0].len(), table)
+    }
+
+    /// The merged order of folded draws gives the same R-hat as sorting them directly,
+    /// including with ties (values on a coarse grid).
+    #[test]
+    fn folded_ranks_by_merging_equal_ranks_by_sorting() {
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(3);
+        for coarse in [false, true] {
+            let chains: Vec<Vec<f64>> = (0..4)
+                .map(|c| {
+                    (0..101)
+                        .map(|_| {
+                            let v: f64 = rng.gen::<f64>() * 3.0 + c as f64 * 0.2;
+                            if coarse {
+                                (v * 4.0).round() / 4.0
+                            } else {
+                                v
+                            }
+                        })
+                        .collect()
+                })
+                .collect();
+            let refs: Vec<&[f64]> = chains.iter().map(|c| c.as_slice()).collect();
+            let split = split_chains(&refs);
+            let table = ZTable::new(split.iter().map(|c| c.len()).sum());
+            let mut sorted: Vec<f64> = split.iter().flatten().copied().collect();
+            sorted.sort_by(f64::total_cmp);
+            let median = quantile_sorted(&sorted, 0.5);
+            let folded: Vec<Vec<f64>> = split
+                .iter()
+                .map(|c| c.iter().map(|v| (v - median).abs()).collect())
+                .collect();
+            let expected =
+                rhat_basic(&z_naive(&split, &table)).max(rhat_basic(&z_naive(&folded, &table)));
+            let (got, _) = diagnose_with(&refs, &table);
+            assert!(
+                (got.rhat - expected).abs() < 1e-12,
+                "coarse={coarse}: {} vs {expected}",
+                got.rhat
+            );
+        }
     }
 }

@@ -253,7 +253,6 @@ pub fn forecast(post: &Posterior, transform: Transform, scenario: &Scenario) -> 
     let m = post.sd_names.len();
     let p = post.coef_names.len();
     let n_sites = post.site_labels.len();
-    let n_years = post.year_labels.len();
     let next_year = post.data_through_year() + 1;
     // Fixed part per draw: mean at covariate means, shifted by the scenario.
     let fixed: Vec<f64> = (0..eff.n)
@@ -315,9 +314,9 @@ pub fn forecast(post: &Posterior, transform: Transform, scenario: &Scenario) -> 
                 let t = year_index(year);
                 let means = (0..eff.n)
                     .map(|d| {
-                        let mut v = fixed[d] + eff.site[d * n_sites + s];
+                        let mut v = fixed[d] + eff.site[s * eff.n + d];
                         if let (false, Some(t)) = (target.new_year(), t) {
-                            v += eff.year[d * n_years + t];
+                            v += eff.year[t * eff.n + d];
                         }
                         v
                     })
@@ -344,7 +343,7 @@ pub fn forecast(post: &Posterior, transform: Transform, scenario: &Scenario) -> 
     let vars = vars_for(target);
     for (t, &year) in post.year_labels.iter().enumerate() {
         let means = (0..eff.n)
-            .map(|d| fixed[d] + eff.year[d * n_years + t])
+            .map(|d| fixed[d] + eff.year[t * eff.n + d])
             .collect();
         let comp = Components {
             means,

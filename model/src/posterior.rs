@@ -79,11 +79,12 @@ pub struct EffectDraws {
     /// Number of effect draws (all chains).
     pub n: usize,
     pub per_chain: usize,
-    /// `n x n_sites`, row-major.
+    /// `n_sites x n`, level-major: the draws of one site are contiguous (chain after
+    /// chain), which is how summaries and forecasts read them.
     pub site: Vec<f64>,
-    /// `n x n_years`.
+    /// `n_years x n`, level-major.
     pub year: Vec<f64>,
-    /// Per further factor: `n x n_levels`.
+    /// Per further factor: `n_levels x n`, level-major.
     pub groups: Vec<Vec<f64>>,
     /// Standard deviations at each effect draw: `n x m`.
     pub sd: Vec<f64>,
@@ -315,12 +316,18 @@ fn summarise(
     table: &ZTable,
 ) -> Summary {
     let refs: Vec<&[f64]> = chains.iter().map(|c| c.as_slice()).collect();
-    let d = diagnose_with(&refs, table);
-    let mut all: Vec<f64> = chains.iter().flatten().copied().collect();
+    let (d, sorted_split) = diagnose_with(&refs, table);
+    // With even chain lengths the split draws are all the draws; otherwise sort again.
+    let all = if chains.iter().all(|c| c.len() % 2 == 0) {
+        sorted_split
+    } else {
+        let mut all: Vec<f64> = chains.iter().flatten().copied().collect();
+        all.sort_unstable_by(f64::total_cmp);
+        all
+    };
     let n = all.len() as f64;
     let mean = all.iter().sum::<f64>() / n;
     let sd = (all.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt();
-    all.sort_by(f64::total_cmp);
     Summary {
         kind,
         term: term.to_string(),
@@ -375,22 +382,32 @@ fn assemble(
     let mut effects = EffectDraws {
         n: n_eff,
         per_chain,
-        site: Vec::with_capacity(n_eff * n_sites),
-        year: Vec::with_capacity(n_eff * lay.n_years),
-        groups: vec![Vec::new(); lay.group_sizes.len()],
+        site: vec![0.0; n_eff * n_sites],
+        year: vec![0.0; n_eff * lay.n_years],
+        groups: lay
+            .group_sizes
+            .iter()
+            .map(|&size| vec![0.0; n_eff * size])
+            .collect(),
         sd: Vec::with_capacity(n_eff * m),
         coef: Vec::with_capacity(n_eff * p),
         mean_at_covariate_means: Vec::with_capacity(n_eff),
     };
     for (c, out) in outputs.iter().enumerate() {
         for (e, &d) in out.effect_index.iter().enumerate() {
+            let col = c * per_chain + e;
             let u = &out.u_effects[e * lay.q..(e + 1) * lay.q];
-            effects
-                .site
-                .extend_from_slice(&out.site_effects[e * n_sites..(e + 1) * n_sites]);
-            effects.year.extend_from_slice(&u[..lay.n_years]);
+            let sites = &out.site_effects[e * n_sites..(e + 1) * n_sites];
+            for (s, &v) in sites.iter().enumerate() {
+                effects.site[s * n_eff + col] = v;
+            }
+            for t in 0..lay.n_years {
+                effects.year[t * n_eff + col] = u[t];
+            }
             for (k, (&off, &size)) in lay.group_offsets.iter().zip(&lay.group_sizes).enumerate() {
-                effects.groups[k].extend_from_slice(&u[off..off + size]);
+                for l in 0..size {
+                    effects.groups[k][l * n_eff + col] = u[off + l];
+                }
             }
             effects.sd.extend_from_slice(&out.sd[d * m..(d + 1) * m]);
             let base = (c * draws + d) * p;
@@ -446,8 +463,6 @@ fn assemble(
             ));
         }
     }
-    let n_years = lay.n_years;
-    let group_sizes = &lay.group_sizes;
     let series = |source: &Source| -> Vec<Vec<f64>> {
         match *source {
             Source::Sd(k) => (0..chains)
@@ -474,26 +489,17 @@ fn assemble(
                         .collect()
                 })
                 .collect(),
-            Source::Site(s) => (0..chains)
-                .map(|c| {
-                    (0..per_chain)
-                        .map(|e| effects.site[(c * per_chain + e) * n_sites + s])
-                        .collect()
-                })
+            Source::Site(s) => effects.site[s * n_eff..(s + 1) * n_eff]
+                .chunks(per_chain)
+                .map(|c| c.to_vec())
                 .collect(),
-            Source::Year(t) => (0..chains)
-                .map(|c| {
-                    (0..per_chain)
-                        .map(|e| effects.year[(c * per_chain + e) * n_years + t])
-                        .collect()
-                })
+            Source::Year(t) => effects.year[t * n_eff..(t + 1) * n_eff]
+                .chunks(per_chain)
+                .map(|c| c.to_vec())
                 .collect(),
-            Source::Group(k, l) => (0..chains)
-                .map(|c| {
-                    (0..per_chain)
-                        .map(|e| effects.groups[k][(c * per_chain + e) * group_sizes[k] + l])
-                        .collect()
-                })
+            Source::Group(k, l) => effects.groups[k][l * n_eff..(l + 1) * n_eff]
+                .chunks(per_chain)
+                .map(|c| c.to_vec())
                 .collect(),
         }
     };
