@@ -557,28 +557,7 @@ fn assemble(
         steps_per_draw: settings.steps_per_draw,
     };
 
-    // Warm-start state: moments of the log sds over all chains, plus the chain ends.
-    let log_draws: Vec<Vec<f64>> = sd_draws
-        .chunks(m)
-        .map(|r| r.iter().map(|s| s.ln()).collect())
-        .collect();
-    let fit = Fit::from_draws(&log_draws);
-    let (log_sd_mean, log_sd_cov) = match fit {
-        Some(f) => (
-            f.mean.iter().copied().collect(),
-            f.cov().transpose().iter().copied().collect(),
-        ),
-        None => (
-            vec![0.0; m],
-            DMatrix::<f64>::identity(m, m).iter().copied().collect(),
-        ),
-    };
-    let warm_start = WarmStart {
-        sd_names: sd_names.clone(),
-        log_sd_mean,
-        log_sd_cov,
-        chain_ends: outputs.iter().map(|o| o.end.clone()).collect(),
-    };
+    let warm_start = WarmStart::from_draws(&sd_names, chains, draws, &sd_draws);
 
     Posterior {
         sd_names,

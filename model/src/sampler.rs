@@ -102,6 +102,45 @@ pub struct WarmStart {
     pub chain_ends: Vec<Vec<f64>>,
 }
 
+impl WarmStart {
+    /// The warm-start state of saved standard-deviation draws (`chains x draws x m`,
+    /// chain-major, as in [`crate::Posterior::sd_draws`]): moments of their logs over all
+    /// chains, and the last draw of each chain. This is all a later fit needs, so a store
+    /// that keeps the draws keeps the warm start.
+    pub fn from_draws(
+        sd_names: &[String],
+        chains: usize,
+        draws: usize,
+        sd_draws: &[f64],
+    ) -> WarmStart {
+        let m = sd_names.len();
+        let log_draws: Vec<Vec<f64>> = sd_draws
+            .chunks(m)
+            .map(|r| r.iter().map(|s| s.ln()).collect())
+            .collect();
+        let (log_sd_mean, log_sd_cov) = match Fit::from_draws(&log_draws) {
+            Some(f) => (
+                f.mean.iter().copied().collect(),
+                f.cov().transpose().iter().copied().collect(),
+            ),
+            None => (
+                vec![0.0; m],
+                DMatrix::<f64>::identity(m, m).iter().copied().collect(),
+            ),
+        };
+        let chain_ends = (0..chains)
+            .filter(|_| draws > 0)
+            .map(|c| log_draws[c * draws + draws - 1].clone())
+            .collect();
+        WarmStart {
+            sd_names: sd_names.to_vec(),
+            log_sd_mean,
+            log_sd_cov,
+            chain_ends,
+        }
+    }
+}
+
 /// Progress of one chain, reported through [`Controls::progress`].
 #[derive(Debug, Clone, Copy)]
 pub struct Progress {
