@@ -14,10 +14,60 @@
 //! The predictive variance `E[v_d] + Var(m_d)` is split into shares by source: each
 //! unknown effect's variance, residual noise, and `Var(m_d)` as the estimation share.
 
-use crate::posterior::Posterior;
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 use statrs::function::erf::erfc;
+
+/// What forecasts need from a posterior: thinned joint draws of every effect with the
+/// standard deviations and coefficients of the same draws, and the data's labels. It is
+/// small enough to store with a version, so forecasts can be rebuilt from the store.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ForecastBasis {
+    pub sd_names: Vec<String>,
+    pub coef_names: Vec<String>,
+    pub site_labels: Vec<String>,
+    /// Observed years, ascending.
+    pub year_labels: Vec<i32>,
+    pub group_names: Vec<String>,
+    pub group_labels: Vec<Vec<String>>,
+    pub covariate_means: Vec<f64>,
+    pub site_last_year: Vec<i32>,
+    /// Number of joint draws.
+    pub n: usize,
+    /// `n_sites x n`, level-major.
+    pub site: Vec<f64>,
+    /// `n_years x n`, level-major.
+    pub year: Vec<f64>,
+    /// Per further factor, `n_levels x n`.
+    pub groups: Vec<Vec<f64>>,
+    /// `n x m`.
+    pub sd: Vec<f64>,
+    /// `n x p`, original units.
+    pub coef: Vec<f64>,
+}
+
+impl ForecastBasis {
+    /// Model-scale mean at the network's average covariates, per draw.
+    fn mean_at_covariate_means(&self) -> Vec<f64> {
+        let p = self.coef_names.len();
+        (0..self.n)
+            .map(|d| {
+                let row = &self.coef[d * p..(d + 1) * p];
+                row[0]
+                    + row[1..]
+                        .iter()
+                        .zip(&self.covariate_means)
+                        .map(|(b, x)| b * x)
+                        .sum::<f64>()
+            })
+            .collect()
+    }
+
+    /// Latest observed year.
+    pub fn data_through_year(&self) -> i32 {
+        self.year_labels.last().copied().unwrap_or(0)
+    }
+}
 
 /// The four forecast targets (the `target` column of `forecasts`).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
@@ -243,13 +293,19 @@ fn row_from(
 
 /// The baseline forecast set of a posterior: every monitored site next year and in its
 /// latest observed year, a new site in every observed year and next year.
-pub fn forecast_baseline(post: &Posterior, transform: Transform) -> Vec<ForecastRow> {
-    forecast(post, transform, &Scenario::baseline())
+pub fn forecast_baseline(basis: &ForecastBasis, transform: Transform) -> Vec<ForecastRow> {
+    forecast(basis, transform, &Scenario::baseline())
 }
 
 /// The forecast set for one covariate scenario.
-pub fn forecast(post: &Posterior, transform: Transform, scenario: &Scenario) -> Vec<ForecastRow> {
-    let eff = &post.effects;
+pub fn forecast(
+    basis: &ForecastBasis,
+    transform: Transform,
+    scenario: &Scenario,
+) -> Vec<ForecastRow> {
+    let eff = basis;
+    let post = basis;
+    let base = basis.mean_at_covariate_means();
     let m = post.sd_names.len();
     let p = post.coef_names.len();
     let n_sites = post.site_labels.len();
@@ -257,7 +313,7 @@ pub fn forecast(post: &Posterior, transform: Transform, scenario: &Scenario) -> 
     // Fixed part per draw: mean at covariate means, shifted by the scenario.
     let fixed: Vec<f64> = (0..eff.n)
         .map(|d| {
-            let mut v = eff.mean_at_covariate_means[d];
+            let mut v = base[d];
             for (j, x) in scenario.covariates.iter().enumerate() {
                 if let Some(x) = x {
                     v += eff.coef[d * p + 1 + j] * (x - post.covariate_means[j]);

@@ -155,6 +155,55 @@ impl Posterior {
             .find(|s| s.kind == kind && s.term == term && s.level.as_deref() == level)
     }
 
+    /// The forecast basis of `per_chain` evenly spaced effect draws per chain (all of them
+    /// when `per_chain` is at least [`EffectDraws::per_chain`]).
+    pub fn forecast_basis(&self, per_chain: usize) -> crate::forecast::ForecastBasis {
+        let eff = &self.effects;
+        let keep = per_chain.clamp(1, eff.per_chain.max(1));
+        let step = eff.per_chain as f64 / keep as f64;
+        // Columns (chain-major) of the kept draws: the last of each stride.
+        let cols: Vec<usize> = (0..self.chains)
+            .flat_map(|c| {
+                (0..keep)
+                    .map(move |k| c * eff.per_chain + ((k as f64 + 1.0) * step).ceil() as usize - 1)
+            })
+            .collect();
+        let pick = |rows: &[f64], levels: usize| -> Vec<f64> {
+            (0..levels)
+                .flat_map(|l| cols.iter().map(move |&c| rows[l * eff.n + c]))
+                .collect()
+        };
+        let m = self.sd_names.len();
+        let p = self.coef_names.len();
+        crate::forecast::ForecastBasis {
+            sd_names: self.sd_names.clone(),
+            coef_names: self.coef_names.clone(),
+            site_labels: self.site_labels.clone(),
+            year_labels: self.year_labels.clone(),
+            group_names: self.group_names.clone(),
+            group_labels: self.group_labels.clone(),
+            covariate_means: self.covariate_means.clone(),
+            site_last_year: self.site_last_year.clone(),
+            n: cols.len(),
+            site: pick(&eff.site, self.site_labels.len()),
+            year: pick(&eff.year, self.year_labels.len()),
+            groups: eff
+                .groups
+                .iter()
+                .zip(&self.group_labels)
+                .map(|(g, labels)| pick(g, labels.len()))
+                .collect(),
+            sd: cols
+                .iter()
+                .flat_map(|&c| eff.sd[c * m..(c + 1) * m].iter().copied())
+                .collect(),
+            coef: cols
+                .iter()
+                .flat_map(|&c| eff.coef[c * p..(c + 1) * p].iter().copied())
+                .collect(),
+        }
+    }
+
     /// Latest observed year.
     pub fn data_through_year(&self) -> i32 {
         self.year_labels.last().copied().unwrap_or(0)

@@ -134,7 +134,7 @@ fn forecasts_cover_the_four_targets_with_ordered_intervals_and_shares_summing_to
     )
     .unwrap();
     for transform in [Transform::None, Transform::Log] {
-        let rows = forecast_baseline(&post, transform);
+        let rows = forecast_baseline(&post.forecast_basis(usize::MAX), transform);
         let count = |t: ForecastTarget| rows.iter().filter(|r| r.target == t).count();
         assert_eq!(count(ForecastTarget::KnownSiteNewYear), data.n_sites());
         assert_eq!(count(ForecastTarget::KnownSiteKnownYear), data.n_sites());
