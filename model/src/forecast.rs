@@ -34,6 +34,8 @@ pub struct ForecastBasis {
     pub site_last_year: Vec<i32>,
     /// Number of joint draws.
     pub n: usize,
+    /// Index of each joint draw in the posterior's full draws (chain-major).
+    pub draw_index: Vec<usize>,
     /// `n_sites x n`, level-major.
     pub site: Vec<f64>,
     /// `n_years x n`, level-major.

@@ -92,6 +92,8 @@ pub struct EffectDraws {
     pub coef: Vec<f64>,
     /// Model-scale mean at the network's average covariates, per effect draw.
     pub mean_at_covariate_means: Vec<f64>,
+    /// Index of each effect draw in the full draws (chain-major `chain * draws + draw`).
+    pub draw_index: Vec<usize>,
 }
 
 /// A fitted posterior.
@@ -185,6 +187,7 @@ impl Posterior {
             covariate_means: self.covariate_means.clone(),
             site_last_year: self.site_last_year.clone(),
             n: cols.len(),
+            draw_index: cols.iter().map(|&c| eff.draw_index[c]).collect(),
             site: pick(&eff.site, self.site_labels.len()),
             year: pick(&eff.year, self.year_labels.len()),
             groups: eff
@@ -441,6 +444,7 @@ fn assemble(
         sd: Vec::with_capacity(n_eff * m),
         coef: Vec::with_capacity(n_eff * p),
         mean_at_covariate_means: Vec::with_capacity(n_eff),
+        draw_index: Vec::with_capacity(n_eff),
     };
     for (c, out) in outputs.iter().enumerate() {
         for (e, &d) in out.effect_index.iter().enumerate() {
@@ -464,6 +468,7 @@ fn assemble(
             effects
                 .mean_at_covariate_means
                 .push(u[lay.fixed_offset] + stats.y_mean);
+            effects.draw_index.push(c * draws + d);
         }
     }
 
