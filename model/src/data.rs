@@ -216,6 +216,17 @@ impl Data {
     pub fn warnings(&self) -> &[String] {
         &self.warnings
     }
+    /// Levels of each factor: site, year, then the further groups.
+    pub fn factor_levels(&self) -> Vec<(String, usize)> {
+        let mut out = vec![
+            ("site".to_string(), self.n_sites()),
+            ("year".to_string(), self.n_years()),
+        ];
+        for (name, labels) in self.group_names.iter().zip(&self.group_labels) {
+            out.push((name.clone(), labels.len()));
+        }
+        out
+    }
     /// Names of the variance components: `residual`, `site`, `year`, then the groups.
     pub fn sd_names(&self) -> Vec<String> {
         ["residual", "site", "year"]
@@ -263,12 +274,6 @@ fn check_factor(
     levels: usize,
     warnings: &mut Vec<String>,
 ) -> Result<(), ModelError> {
-    if levels < 2 {
-        return Err(ModelError::TooFewLevels {
-            factor: name.into(),
-            levels,
-        });
-    }
     let mut counts = vec![0usize; levels];
     for &i in idx {
         counts[i as usize] += 1;
@@ -276,7 +281,7 @@ fn check_factor(
     let replicated = counts.iter().filter(|&&c| c >= 2).count();
     // A level seen once adds no information separating its effect from residual noise;
     // with (almost) no replicated level the two variances trade off freely.
-    let needed = 2.max((levels as f64 * 0.05).ceil() as usize);
+    let needed = levels.min(2).max((levels as f64 * 0.05).ceil() as usize);
     if replicated < needed {
         return Err(ModelError::NotReplicated {
             factor: name.into(),
@@ -284,7 +289,12 @@ fn check_factor(
             replicated,
         });
     }
-    if levels < FEW_LEVELS {
+    if levels == 1 {
+        warnings.push(format!(
+            "grouping factor `{name}` has a single level: its variance is determined by its prior alone \
+             (REML refuses it), and forecasts for a new level use that prior"
+        ));
+    } else if levels < FEW_LEVELS {
         warnings.push(format!(
             "grouping factor `{name}` has only {levels} levels (fewer than {FEW_LEVELS}): its variance is weakly identified and leans on the prior"
         ));

@@ -26,7 +26,7 @@ pub enum ModelError {
     ConstantCovariate { name: String, value: f64 },
     #[error("covariates {names:?} are collinear (smallest eigenvalue of their correlation matrix {min_eigen:.2e}); drop one of them")]
     Collinear { names: Vec<String>, min_eigen: f64 },
-    #[error("grouping factor `{factor}` has {levels} level(s); at least 2 are needed to estimate its variance")]
+    #[error("grouping factor `{factor}` has {levels} level(s); REML needs at least 2 to estimate its variance")]
     TooFewLevels { factor: String, levels: usize },
     #[error(
         "grouping factor `{factor}` is not replicated: only {replicated} of its {levels} levels have more than one observation, \

@@ -56,7 +56,13 @@ impl PointFit {
 }
 
 /// Maximise the REML or ML likelihood of `data`.
+///
+/// A factor with a single level is refused: with a flat prior on the intercept its
+/// variance does not enter the likelihood at all.
 pub fn fit_point(data: &Data, method: Method) -> Result<PointFit, ModelError> {
+    if let Some((factor, levels)) = data.factor_levels().into_iter().find(|(_, l)| *l < 2) {
+        return Err(ModelError::TooFewLevels { factor, levels });
+    }
     let stats = SuffStats::new(data);
     point_from_stats(data, &stats, method)
 }

@@ -182,3 +182,29 @@ fn forecasts_cover_the_four_targets_with_ordered_intervals_and_shares_summing_to
         }
     }
 }
+
+/// The first season of a network: one year. REML cannot estimate the year variance and
+/// refuses; the Bayesian fit proceeds, with the year sd informed by its prior alone.
+#[test]
+fn a_single_year_is_refused_by_reml_and_fitted_from_the_prior_by_the_sampler() {
+    let data = simulate(&NetworkSpec {
+        sites: 30,
+        years: 1,
+        visits: 2,
+        seed: 8,
+        ..Default::default()
+    })
+    .0;
+    assert!(
+        matches!(fit_point(&data, Method::Reml), Err(ModelError::TooFewLevels { ref factor, levels: 1 }) if factor == "year")
+    );
+    assert!(data.warnings().iter().any(|w| w.contains("single level")));
+    let priors = Priors {
+        year_sd: Some(SdPrior::HalfNormal { scale: 0.5 }),
+        ..Default::default()
+    };
+    let post = sample(&data, &priors, &settings(0), None, Controls::default()).unwrap();
+    // Half-normal(0.5): median 0.5 * 0.6745 = 0.337 (closed form); the data add almost nothing.
+    let year = post.summary(SummaryKind::Sd, "year", None).unwrap();
+    assert!((year.q50 - 0.337).abs() < 0.08, "{year:?}");
+}
