@@ -61,9 +61,9 @@ CREATE TABLE observations (
 );
 CREATE UNIQUE INDEX observations_current
     ON observations (site_id, year, visit, column_name) WHERE superseded_by IS NULL;
--- Serves series watermarks: max(value_id) per column.
-CREATE INDEX observations_column ON observations (column_name, value_id);
-CREATE INDEX observations_batch ON observations (batch_id);
+-- Serves the deferred foreign-key check of superseded_by when successors are inserted
+-- (without it each inserted successor scans the whole table).
+CREATE INDEX observations_successor ON observations (superseded_by) WHERE superseded_by IS NOT NULL;
 
 -- Accepted values are history: they may gain a successor, nothing else.
 CREATE TRIGGER observations_keep_history_update
@@ -82,6 +82,13 @@ BEFORE DELETE ON observations
 BEGIN
     SELECT RAISE(ABORT, 'observations are history and cannot be deleted');
 END;
+
+-- Largest value id stored per column, kept by ingest in the batch transaction, so a
+-- series' watermark is read without scanning observations.
+CREATE TABLE column_watermarks (
+    column_name  TEXT PRIMARY KEY,
+    max_value_id INTEGER NOT NULL
+) WITHOUT ROWID;
 
 CREATE VIEW current_observations AS
 SELECT o.value_id, s.code AS site, o.year, o.visit, o.column_name, o.num_value,

@@ -46,6 +46,7 @@ fn feed(sites: usize, years: usize, shift: f64) -> String {
 
 #[tokio::main(flavor = "multi_thread", worker_threads = 2)]
 async fn main() -> anyhow::Result<()> {
+    vigil_service::telemetry::init(None);
     let args: Vec<usize> = std::env::args()
         .skip(1)
         .filter_map(|a| a.parse().ok())

@@ -1,25 +1,29 @@
 //! Writing one feed file's batch: the batch row, its values with supersede-and-keep-history,
 //! and its rejections, in one transaction.
 //!
-//! Speed comes from set-based SQL: values go into a per-connection temporary staging table
-//! with multi-row INSERTs (cached prepared statements), then three statements drop values
-//! equal to the current ones, point the current ones at their successors, and copy the
-//! rest into `observations`. New value ids are assigned up front (max + 1, …) inside the
-//! IMMEDIATE transaction, so a superseded row can name its successor before the successor
-//! row exists (the foreign key is deferred to commit).
+//! New value ids are assigned up front (max + 1, …) inside the IMMEDIATE transaction.
+//! Pass 1 inserts every value straight into `observations` with multi-row INSERTs (cached
+//! prepared statements); the unique partial index on current values makes SQLite skip a
+//! value whose key already has a current one. Only those skipped values (re-sends and
+//! corrections, usually few) go through a temporary staging table, where three set-based
+//! statements drop values equal to the current ones, point the current ones at their
+//! successors, and insert the successors. A superseded row names its successor before the
+//! successor exists, so that foreign key is deferred to commit.
 //!
 //! Invariant: a batch is visible whole or not at all (checked by `tests/e2e_ingest.rs::failed_batch_leaves_nothing`).
 
 use serde::Serialize;
 use sqlx::sqlite::SqliteConnection;
 use sqlx::Row;
+use tracing::debug;
 
 use super::{now_utc, Store, StoreError};
 
-/// Rows per multi-row INSERT of staged values (8 parameters each, well under SQLite's
-/// 32766-parameter limit; larger chunks gave no further speed-up).
-const STAGE_CHUNK: usize = 500;
+/// Rows per multi-row INSERT of values (9 parameters each, under SQLite's 32766-parameter
+/// limit).
+const INSERT_CHUNK: usize = 1000;
 const REJECT_CHUNK: usize = 500;
+const SITE_CHUNK: usize = 500;
 
 /// The file a batch came from.
 #[derive(Debug, Clone)]
@@ -240,58 +244,80 @@ async fn write_batch(
         } => (*rows_read, values, rejections),
     };
     let batch_id = insert_batch_row(conn, file, "ingested", None, None).await?;
+    let started = std::time::Instant::now();
+    let phase = |name: &str| {
+        debug!(
+            batch_id,
+            phase = name,
+            ms = started.elapsed().as_millis() as u64,
+            "ingest phase done"
+        )
+    };
 
-    // Site ids, in the order of `values.sites`. The no-op update makes RETURNING give the
-    // id of a site that already exists.
+    // Site ids, in the order of `values.sites`: insert the new codes, then read all ids.
+    for chunk in values.sites.chunks(SITE_CHUNK) {
+        let sql = multi_row_insert(
+            "INSERT INTO sites (code, first_batch_id) VALUES ",
+            2,
+            chunk.len(),
+        ) + " ON CONFLICT (code) DO NOTHING";
+        let mut q = sqlx::query(&sql);
+        for code in chunk {
+            q = q.bind(code.as_str()).bind(batch_id);
+        }
+        q.execute(&mut *conn).await?;
+    }
+    let mut id_of = std::collections::HashMap::with_capacity(values.sites.len());
+    for chunk in values.sites.chunks(SITE_CHUNK) {
+        let sql = format!(
+            "SELECT code, site_id FROM sites WHERE code IN ({})",
+            vec!["?"; chunk.len()].join(",")
+        );
+        let mut q = sqlx::query(&sql);
+        for code in chunk {
+            q = q.bind(code.as_str());
+        }
+        for row in q.fetch_all(&mut *conn).await? {
+            id_of.insert(row.try_get::<String, _>(0)?, row.try_get::<i64, _>(1)?);
+        }
+    }
     let mut site_ids = Vec::with_capacity(values.sites.len());
     for code in &values.sites {
-        let id: i64 = sqlx::query_scalar(
-            "INSERT INTO sites (code, first_batch_id) VALUES (?1, ?2)
-             ON CONFLICT (code) DO UPDATE SET code = excluded.code RETURNING site_id",
-        )
-        .bind(code)
-        .bind(batch_id)
-        .fetch_one(&mut *conn)
-        .await?;
+        let id = id_of.get(code).copied().ok_or_else(|| {
+            sqlx::Error::Protocol(format!("site {code:?} vanished during ingest"))
+        })?;
         site_ids.push(id);
     }
 
-    sqlx::query(
-        "CREATE TEMP TABLE IF NOT EXISTS ingest_stage (
-             new_id INTEGER PRIMARY KEY, site_id INTEGER NOT NULL, year INTEGER NOT NULL,
-             visit TEXT NOT NULL, column_name TEXT NOT NULL, num_value REAL, text_value TEXT,
-             line INTEGER NOT NULL)",
-    )
-    .execute(&mut *conn)
-    .await?;
-    sqlx::query("DELETE FROM temp.ingest_stage")
-        .execute(&mut *conn)
-        .await?;
-
+    phase("sites");
     let base: i64 = sqlx::query_scalar("SELECT COALESCE(MAX(value_id), 0) FROM observations")
         .fetch_one(&mut *conn)
         .await?;
 
-    const STAGE: &str = "INSERT INTO temp.ingest_stage (new_id, site_id, year, visit, column_name, num_value, text_value, line) VALUES ";
-    let full_chunk = multi_row_insert(STAGE, 8, STAGE_CHUNK);
-    let mut next_id = base;
-    for chunk in values.values.chunks(STAGE_CHUNK) {
+    // Pass 1: value `i` gets id `base + 1 + i` and goes straight into `observations`; a
+    // value whose key already has a current value is skipped by the unique partial index
+    // and kept for pass 2.
+    const DIRECT: &str = "INSERT INTO observations (value_id, batch_id, site_id, year, visit, column_name, num_value, text_value, line) VALUES ";
+    let direct_sql = |rows: usize| multi_row_insert(DIRECT, 9, rows) + " ON CONFLICT DO NOTHING";
+    let full_chunk = direct_sql(INSERT_CHUNK);
+    let mut existing: Vec<(i64, &NewValue)> = Vec::new();
+    // Largest stored value id per column of `values.columns` (0 = none stored).
+    let mut max_id = vec![0i64; values.columns.len()];
+    let mut first_id = base + 1;
+    for chunk in values.values.chunks(INSERT_CHUNK) {
         let short;
-        let sql = if chunk.len() == STAGE_CHUNK {
+        let sql = if chunk.len() == INSERT_CHUNK {
             full_chunk.as_str()
         } else {
-            short = multi_row_insert(STAGE, 8, chunk.len());
+            short = direct_sql(chunk.len());
             short.as_str()
         };
         let mut q = sqlx::query(sql);
-        for v in chunk {
-            next_id += 1;
-            let (num, text) = match v.cell {
-                Cell::Num(x) => (Some(x), None),
-                Cell::Label(i) => (None, Some(values.labels[i as usize].as_str())),
-            };
+        for (i, v) in chunk.iter().enumerate() {
+            let (num, text) = cell_columns(values, v);
             q = q
-                .bind(next_id)
+                .bind(first_id + i as i64)
+                .bind(batch_id)
                 .bind(site_ids[v.site as usize])
                 .bind(v.year)
                 .bind(values.visits[v.visit as usize].as_str())
@@ -300,45 +326,131 @@ async fn write_batch(
                 .bind(text)
                 .bind(count(v.line));
         }
-        q.execute(&mut *conn).await?;
+        let inserted = q.execute(&mut *conn).await?.rows_affected();
+        if inserted < chunk.len() as u64 {
+            let last_id = first_id + chunk.len() as i64 - 1;
+            let stored: std::collections::HashSet<i64> = sqlx::query_scalar(
+                "SELECT value_id FROM observations WHERE value_id BETWEEN ?1 AND ?2",
+            )
+            .bind(first_id)
+            .bind(last_id)
+            .fetch_all(&mut *conn)
+            .await?
+            .into_iter()
+            .collect();
+            for (i, v) in chunk.iter().enumerate() {
+                let id = first_id + i as i64;
+                if stored.contains(&id) {
+                    max_id[v.column as usize] = id;
+                } else {
+                    existing.push((id, v));
+                }
+            }
+        } else {
+            for (i, v) in chunk.iter().enumerate() {
+                max_id[v.column as usize] = first_id + i as i64;
+            }
+        }
+        first_id += chunk.len() as i64;
     }
+    phase("direct");
 
-    // A re-sent identical value is not new history.
-    let unchanged = sqlx::query(
-        "DELETE FROM temp.ingest_stage WHERE EXISTS (
-             SELECT 1 FROM observations o
-             WHERE o.superseded_by IS NULL AND o.site_id = ingest_stage.site_id
-               AND o.year = ingest_stage.year AND o.visit = ingest_stage.visit
-               AND o.column_name = ingest_stage.column_name
-               AND o.num_value IS ingest_stage.num_value AND o.text_value IS ingest_stage.text_value)",
-    )
-    .execute(&mut *conn)
-    .await?
-    .rows_affected();
-
-    let superseding = sqlx::query(
-        "UPDATE observations SET superseded_by = s.new_id
-         FROM temp.ingest_stage s
-         WHERE observations.superseded_by IS NULL AND observations.site_id = s.site_id
-           AND observations.year = s.year AND observations.visit = s.visit
-           AND observations.column_name = s.column_name",
-    )
-    .execute(&mut *conn)
-    .await?
-    .rows_affected();
-
-    sqlx::query(
-        "INSERT INTO observations (value_id, batch_id, site_id, year, visit, column_name, num_value, text_value, line)
-         SELECT new_id, ?1, site_id, year, visit, column_name, num_value, text_value, line
-         FROM temp.ingest_stage ORDER BY new_id",
-    )
-    .bind(batch_id)
-    .execute(&mut *conn)
-    .await?;
-    sqlx::query("DELETE FROM temp.ingest_stage")
+    // Pass 2, set-based, for values re-sent for a key that has a current value.
+    let (mut unchanged, mut superseding) = (0, 0);
+    if !existing.is_empty() {
+        sqlx::query(
+            "CREATE TEMP TABLE IF NOT EXISTS ingest_stage (
+                 new_id INTEGER PRIMARY KEY, site_id INTEGER NOT NULL, year INTEGER NOT NULL,
+                 visit TEXT NOT NULL, column_name TEXT NOT NULL, num_value REAL, text_value TEXT,
+                 line INTEGER NOT NULL)",
+        )
         .execute(&mut *conn)
         .await?;
+        sqlx::query("DELETE FROM temp.ingest_stage")
+            .execute(&mut *conn)
+            .await?;
+        const STAGE: &str = "INSERT INTO temp.ingest_stage (new_id, site_id, year, visit, column_name, num_value, text_value, line) VALUES ";
+        for chunk in existing.chunks(INSERT_CHUNK) {
+            let sql = multi_row_insert(STAGE, 8, chunk.len());
+            let mut q = sqlx::query(&sql);
+            for (id, v) in chunk {
+                let (num, text) = cell_columns(values, v);
+                q = q
+                    .bind(*id)
+                    .bind(site_ids[v.site as usize])
+                    .bind(v.year)
+                    .bind(values.visits[v.visit as usize].as_str())
+                    .bind(values.columns[v.column as usize].as_str())
+                    .bind(num)
+                    .bind(text)
+                    .bind(count(v.line));
+            }
+            q.execute(&mut *conn).await?;
+        }
+        phase("stage");
 
+        // A re-sent identical value is not new history.
+        unchanged = sqlx::query(
+            "DELETE FROM temp.ingest_stage WHERE EXISTS (
+                 SELECT 1 FROM observations o
+                 WHERE o.superseded_by IS NULL AND o.site_id = ingest_stage.site_id
+                   AND o.year = ingest_stage.year AND o.visit = ingest_stage.visit
+                   AND o.column_name = ingest_stage.column_name
+                   AND o.num_value IS ingest_stage.num_value AND o.text_value IS ingest_stage.text_value)",
+        )
+        .execute(&mut *conn)
+        .await?
+        .rows_affected();
+        phase("unchanged");
+
+        superseding = sqlx::query(
+            "UPDATE observations SET superseded_by = s.new_id
+             FROM temp.ingest_stage s
+             WHERE observations.superseded_by IS NULL AND observations.site_id = s.site_id
+               AND observations.year = s.year AND observations.visit = s.visit
+               AND observations.column_name = s.column_name",
+        )
+        .execute(&mut *conn)
+        .await?
+        .rows_affected();
+        phase("supersede");
+
+        sqlx::query(
+            "INSERT INTO observations (value_id, batch_id, site_id, year, visit, column_name, num_value, text_value, line)
+             SELECT new_id, ?1, site_id, year, visit, column_name, num_value, text_value, line
+             FROM temp.ingest_stage ORDER BY new_id",
+        )
+        .bind(batch_id)
+        .execute(&mut *conn)
+        .await?;
+        let staged_max: Vec<(String, i64)> = sqlx::query_as(
+            "SELECT column_name, MAX(new_id) FROM temp.ingest_stage GROUP BY column_name",
+        )
+        .fetch_all(&mut *conn)
+        .await?;
+        for (column, id) in staged_max {
+            if let Some(c) = values.columns.iter().position(|n| *n == column) {
+                max_id[c] = max_id[c].max(id);
+            }
+        }
+        sqlx::query("DELETE FROM temp.ingest_stage")
+            .execute(&mut *conn)
+            .await?;
+    }
+
+    for (column, id) in values.columns.iter().zip(&max_id) {
+        if *id > 0 {
+            sqlx::query(
+                "INSERT INTO column_watermarks (column_name, max_value_id) VALUES (?1, ?2)
+                 ON CONFLICT (column_name) DO UPDATE SET max_value_id = MAX(max_value_id, excluded.max_value_id)",
+            )
+            .bind(column.as_str())
+            .bind(*id)
+            .execute(&mut *conn)
+            .await?;
+        }
+    }
+    phase("insert");
     for chunk in rejections.chunks(REJECT_CHUNK) {
         let sql = multi_row_insert(
             "INSERT INTO rejections (batch_id, line, column_name, raw_value, reason) VALUES ",
@@ -357,6 +469,7 @@ async fn write_batch(
         q.execute(&mut *conn).await?;
     }
 
+    phase("rejections");
     let accepted = values.values.len() as u64;
     let rejected = rejections.len() as u64;
     sqlx::query(
@@ -381,6 +494,13 @@ async fn write_batch(
         values_superseding: superseding,
         values_unchanged: unchanged,
     })
+}
+
+fn cell_columns<'a>(values: &'a BatchValues, v: &NewValue) -> (Option<f64>, Option<&'a str>) {
+    match v.cell {
+        Cell::Num(x) => (Some(x), None),
+        Cell::Label(i) => (None, Some(values.labels[i as usize].as_str())),
+    }
 }
 
 /// `prefix (?,?,…),(?,?,…),…` with `rows` groups of `width` placeholders.

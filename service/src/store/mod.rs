@@ -130,7 +130,11 @@ impl Store {
             .journal_mode(SqliteJournalMode::Wal)
             .synchronous(SqliteSynchronous::Normal)
             .foreign_keys(true)
-            .busy_timeout(BUSY_TIMEOUT);
+            .busy_timeout(BUSY_TIMEOUT)
+            // A 64 MiB page cache keeps index pages of a large batch in memory, and the
+            // staging table of ingest never touches disk.
+            .pragma("cache_size", "-65536")
+            .pragma("temp_store", "memory");
         let pool = SqlitePoolOptions::new()
             .max_connections(4)
             .connect_with(options)

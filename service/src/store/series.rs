@@ -36,7 +36,7 @@ impl Store {
             return Ok(0);
         }
         let sql = format!(
-            "SELECT COALESCE(MAX(value_id), 0) FROM observations WHERE column_name IN ({})",
+            "SELECT COALESCE(MAX(max_value_id), 0) FROM column_watermarks WHERE column_name IN ({})",
             placeholders(1, columns.len())
         );
         let mut q = sqlx::query_scalar(&sql);
