@@ -134,9 +134,22 @@ CREATE TABLE fits (
     transform         TEXT,
     priors_json       TEXT,                 -- the priors actually used (defaults filled in)
     diagnostics_json  TEXT,
-    acceptance_rate   REAL,
-    UNIQUE (series, version)
+    acceptance_rate   REAL
 );
+-- Published versions count 1, 2, 3… per series; a rejected or failed attempt carries the
+-- version it tried to become, so it may share that number with the later published fit.
+CREATE UNIQUE INDEX fits_published_version ON fits (series, version) WHERE status = 'published';
+CREATE INDEX fits_series ON fits (series, fit_id);
+
+-- Visits a fit left out (for example a non-positive value under a log transform), and why.
+CREATE TABLE fit_exclusions (
+    fit_id INTEGER NOT NULL REFERENCES fits (fit_id),
+    site   TEXT    NOT NULL,
+    year   INTEGER NOT NULL,
+    visit  TEXT    NOT NULL,
+    reason TEXT    NOT NULL
+);
+CREATE INDEX fit_exclusions_fit ON fit_exclusions (fit_id);
 
 CREATE TABLE posterior_summary (
     fit_id   INTEGER NOT NULL REFERENCES fits (fit_id),

@@ -140,7 +140,7 @@ pub(crate) fn ess_basic(chains: &[Vec<f64>]) -> f64 {
         let means: Vec<f64> = chains.iter().map(|c| mean(c)).collect();
         var_plus += var(&means, 1.0);
     }
-    if !(var_plus > 0.0) || !var_plus.is_finite() {
+    if var_plus.is_nan() || var_plus <= 0.0 || !var_plus.is_finite() {
         return f64::NAN;
     }
     let mut rho = vec![0.0; n];

@@ -44,6 +44,7 @@ pub use sampler::{Controls, Progress, SamplerSettings, WarmStart};
 mod forecast;
 pub mod simulate;
 pub use forecast::{
-    forecast, forecast_baseline, mixture_quantile, ForecastRow, ForecastTarget, Scenario, Transform,
+    forecast, forecast_baseline, mixture_quantile, ForecastBasis, ForecastRow, ForecastTarget,
+    Scenario, Transform,
 };
 pub mod sbc;

@@ -114,7 +114,7 @@ impl Factorised {
         let mut log_det_schur_beta = 0.0;
         for i in 0..q {
             let li = l[(i, i)];
-            if !(li > 0.0) || !li.is_finite() {
+            if li.is_nan() || li <= 0.0 || !li.is_finite() {
                 return None;
             }
             log_det_m += 2.0 * li.ln();

@@ -454,8 +454,8 @@ fn assemble(
             for (s, &v) in sites.iter().enumerate() {
                 effects.site[s * n_eff + col] = v;
             }
-            for t in 0..lay.n_years {
-                effects.year[t * n_eff + col] = u[t];
+            for (t, &b) in u[..lay.n_years].iter().enumerate() {
+                effects.year[t * n_eff + col] = b;
             }
             for (k, (&off, &size)) in lay.group_offsets.iter().zip(&lay.group_sizes).enumerate() {
                 for l in 0..size {
@@ -654,7 +654,7 @@ pub fn location_conditional(
 ) -> Result<LocationConditional, ModelError> {
     let stats = SuffStats::new(data);
     let sd_names = data.sd_names();
-    if sds.len() != sd_names.len() || sds.iter().any(|s| !(*s > 0.0)) {
+    if sds.len() != sd_names.len() || sds.iter().any(|s| s.is_nan() || *s <= 0.0) {
         return Err(ModelError::InvalidSettings(format!(
             "expected {} positive standard deviations",
             sd_names.len()

@@ -39,11 +39,46 @@ pub enum Command {
         #[arg(value_name = "FILE")]
         files: Vec<PathBuf>,
     },
+    /// Refit series whose data changed since their last version; publish those that pass the gate
+    Refit {
+        /// Only this series
+        #[arg(long, value_name = "NAME")]
+        series: Option<String>,
+        /// Start cold instead of from the latest published version
+        #[arg(long)]
+        cold: bool,
+        /// Refit even when the data did not change
+        #[arg(long)]
+        force: bool,
+    },
+    /// Rewrite the forecasts of the latest published version from its stored draws
+    Forecast {
+        /// Only this series
+        #[arg(long, value_name = "NAME")]
+        series: Option<String>,
+    },
+    /// One scheduled run: ingest the inbox, refit what changed, write forecasts
+    RunOnce,
     /// Show recent runs and batches, and the latest version of each series
     Status {
         /// Print one JSON document instead of text
         #[arg(long)]
         json: bool,
+    },
+    /// REML estimates of the variance components on the data now in the store
+    Reml {
+        /// The series to estimate
+        #[arg(long, value_name = "NAME")]
+        series: String,
+        /// Print one JSON document instead of text
+        #[arg(long)]
+        json: bool,
+    },
+    /// Replay the demo feed (an invented lake network) season by season through the pipeline
+    Demo {
+        /// Folder for the demo's config, feed folders and database [default: ./vigil-demo]
+        #[arg(long, value_name = "DIR")]
+        out: Option<PathBuf>,
     },
 }
 
@@ -86,8 +121,21 @@ pub fn run() -> ExitCode {
 
 /// Run one parsed command.
 pub async fn dispatch(cli: Cli) -> anyhow::Result<()> {
+    // The demo brings its own configuration.
+    if let Command::Demo { out } = cli.command {
+        return commands::demo::run(out).await;
+    }
     let ctx = Context::load(cli.config.as_deref())?;
     match cli.command {
+        Command::Demo { .. } => unreachable!("handled above"),
+        Command::Refit {
+            series,
+            cold,
+            force,
+        } => commands::refit::run(&ctx, series, cold, force).await,
+        Command::Forecast { series } => commands::forecast::run(&ctx, series).await,
+        Command::RunOnce => commands::run_once::run(&ctx).await,
+        Command::Reml { series, json } => commands::reml::run(&ctx, &series, json).await,
         Command::Init => commands::init::run(&ctx).await,
         Command::Ingest { files } => commands::ingest::run(&ctx, &files).await,
         Command::Status { json } => commands::status::run(&ctx, json).await,

@@ -139,8 +139,10 @@ pub struct SamplerConfig {
     pub chains: u32,
     /// Saved draws per chain.
     pub draws: u32,
-    /// Warm-up iterations per chain of a cold start; warm starts may use fewer.
+    /// Warm-up iterations per chain of a cold start.
     pub warmup: u32,
+    /// Warm-up iterations per chain when starting from the previous version.
+    pub warm_warmup: u32,
     pub seed: u64,
     pub max_rhat: f64,
     pub min_ess: f64,
@@ -152,6 +154,7 @@ impl Default for SamplerConfig {
             chains: 4,
             draws: 1000,
             warmup: 1000,
+            warm_warmup: 150,
             seed: 1,
             max_rhat: 1.01,
             min_ess: 400.0,

@@ -21,6 +21,7 @@ pub mod cli;
 pub mod commands;
 pub mod config;
 pub mod ingest;
+pub mod pipeline;
 pub mod schedule;
 pub mod store;
 pub mod telemetry;

@@ -1,8 +1,13 @@
 //! One module per command. Each takes the loaded [`Context`] and prints its own output to
 //! stdout; errors go back to `cli` as `anyhow::Error` with context naming what failed.
 
+pub mod demo;
+pub mod forecast;
 pub mod ingest;
 pub mod init;
+pub mod refit;
+pub mod reml;
+pub mod run_once;
 pub mod status;
 
 use std::path::Path;

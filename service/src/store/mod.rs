@@ -7,6 +7,7 @@
 //!
 //! Invariant: only this module writes SQL (checked by `tests/e2e_store.rs::only_the_store_writes_sql`).
 
+mod fits;
 mod ingest;
 mod series;
 mod status;
@@ -21,6 +22,7 @@ use sqlx::sqlite::{
 };
 use sqlx::Row;
 
+pub use fits::{NewExclusion, NewFit, PublishedFit, RecordedFit};
 pub use ingest::{
     BatchContent, BatchFile, BatchOutcome, BatchRecord, BatchValues, Cell, NewRejection, NewValue,
 };

@@ -1,0 +1,163 @@
+//! `vigil demo [--out DIR]`: replay the demo feed (an invented lake network, embedded in
+//! the binary from `demo-feed/`) season by season through the whole pipeline, printing a
+//! compact table per season, and leave the database in DIR for SQL clients.
+
+use std::io::IsTerminal;
+use std::path::{Path, PathBuf};
+use std::sync::atomic::AtomicBool;
+use std::sync::Arc;
+
+use anyhow::Context as _;
+
+use crate::config::Config;
+use crate::pipeline::run::run_once;
+use crate::pipeline::SeriesOutcome;
+use crate::store::Store;
+
+macro_rules! seasons {
+    ($($year:literal),*) => {
+        &[$(($year, include_str!(concat!("../../../demo-feed/seasons/", stringify!($year), ".csv")))),*]
+    };
+}
+
+/// The demo feed, one file per season.
+const SEASONS: &[(i32, &str)] = seasons!(
+    2011, 2012, 2013, 2014, 2015, 2016, 2017, 2018, 2019, 2020, 2021, 2022, 2023, 2024, 2025, 2026
+);
+const CONFIG: &str = include_str!("../../../demo-feed/vigil.toml");
+
+fn prepare(out: &Path) -> anyhow::Result<()> {
+    if out.exists() {
+        let mut entries =
+            std::fs::read_dir(out).with_context(|| format!("cannot read {}", out.display()))?;
+        if entries.next().is_some() {
+            anyhow::bail!(
+                "{} is not empty; choose a new or empty folder with --out, or delete it to replay the demo",
+                out.display()
+            );
+        }
+    }
+    std::fs::create_dir_all(out).with_context(|| format!("cannot create {}", out.display()))?;
+    std::fs::write(out.join("vigil.toml"), CONFIG)
+        .with_context(|| format!("cannot write {}/vigil.toml", out.display()))?;
+    Ok(())
+}
+
+pub async fn run(out: Option<PathBuf>) -> anyhow::Result<()> {
+    let out = out.unwrap_or_else(|| PathBuf::from("vigil-demo"));
+    prepare(&out)?;
+    let config = Config::load(&out.join("vigil.toml"))?;
+    let store = Store::init(&config.database).await?;
+    for dir in [
+        &config.feed.inbox,
+        &config.feed.archive,
+        &config.feed.quarantine,
+    ] {
+        std::fs::create_dir_all(dir).with_context(|| format!("cannot create {}", dir.display()))?;
+    }
+    let terminal = std::io::stdout().is_terminal();
+    let bar = terminal.then(|| {
+        let bar = indicatif::ProgressBar::new(SEASONS.len() as u64);
+        bar.set_style(
+            indicatif::ProgressStyle::with_template(
+                "{spinner} season {pos}/{len} [{bar:30}] {msg}",
+            )
+            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
+        );
+        bar
+    });
+    println!(
+        "Replaying {} seasons of an invented lake network into {} (ingest -> refit -> forecast)\n",
+        SEASONS.len(),
+        out.display()
+    );
+    let header = format!(
+        "{:<6} {:<12} {:>4} {:>5} {:>8} {:>8} {:>8} {:>8}   {:>9} {:>9} {:>9} {:>9}",
+        "season",
+        "series",
+        "ver",
+        "obs",
+        "sd_site",
+        "sd_year",
+        "sd_grp",
+        "sd_resid",
+        "w80 KK",
+        "w80 KN",
+        "w80 NK",
+        "w80 NN"
+    );
+    println!("{header}");
+    let mut published = 0usize;
+    for (year, text) in SEASONS {
+        let name = format!("{year}.csv");
+        std::fs::write(config.feed.inbox.join(&name), text)
+            .with_context(|| format!("cannot write {name} to the inbox"))?;
+        if let Some(b) = &bar {
+            b.set_message(format!("fitting {year}"));
+        }
+        let report = run_once(&store, &config, "demo", Arc::new(AtomicBool::new(false))).await?;
+        let mut lines = Vec::new();
+        for s in &report.series {
+            if s.outcome == SeriesOutcome::Published {
+                published += 1;
+            }
+            let sd = |n: &str| s.sd_q50.iter().find(|(t, _)| t == n).map(|(_, v)| *v);
+            let group_sd = s
+                .sd_q50
+                .iter()
+                .filter(|(t, _)| !["residual", "site", "year"].contains(&t.as_str()))
+                .map(|(_, v)| *v)
+                .next();
+            let fmt = |v: Option<f64>| v.map_or("-".to_string(), |v| format!("{v:.3}"));
+            let w = |t: &str| s.width80.iter().find(|(n, _)| n == t).map(|(_, v)| *v);
+            lines.push(format!(
+                "{:<6} {:<12} {:>4} {:>5} {:>8} {:>8} {:>8} {:>8}   {:>9} {:>9} {:>9} {:>9}{}",
+                year,
+                s.series,
+                s.version.map_or("-".into(), |v| v.to_string()),
+                s.n_obs.map_or("-".into(), |n| n.to_string()),
+                fmt(sd("site")),
+                fmt(sd("year")),
+                fmt(group_sd),
+                fmt(sd("residual")),
+                fmt(w("known_site_known_year")),
+                fmt(w("known_site_new_year")),
+                fmt(w("new_site_known_year")),
+                fmt(w("new_site_new_year")),
+                match &s.outcome {
+                    SeriesOutcome::Published => String::new(),
+                    other => format!("  ({}: {})", other.as_str(), s.message),
+                }
+            ));
+        }
+        match &bar {
+            Some(b) => {
+                for l in lines {
+                    b.println(l);
+                }
+                b.inc(1);
+            }
+            None => {
+                for l in lines {
+                    println!("{l}");
+                }
+            }
+        }
+    }
+    if let Some(b) = bar {
+        b.finish_and_clear();
+    }
+    store.close().await;
+    let db = config.database.display();
+    println!(
+        "\nw80 = mean width of the 80% forecast interval (response units: µg/L for chlorophyll, m for Secchi)\n\
+         KK known site, known year | KN known site, next year | NK new site, known year | NN new site, next year\n\
+         {published} versions published. The database is {db}; query it with any SQL client, e.g.\n\n  \
+         sqlite3 {db} \"SELECT series, target, site, year, round(q50,2) AS median, round(lo80,2) AS lo80, round(hi80,2) AS hi80 FROM latest_forecasts WHERE target LIKE 'new_site%' ORDER BY series, year DESC LIMIT 8\"\n  \
+         sqlite3 {db} \"SELECT series, version, term, round(q05,3), round(q50,3), round(q95,3) FROM variance_drift WHERE series = 'chlorophyll' ORDER BY version, term\"\n\n\
+         Forecasts are statistical estimates. Decisions that touch people, such as recreational-water or drinking-water\n\
+         advisories after algal blooms, follow the responsible agency's own sampling, testing and notification rules and\n\
+         are made by qualified staff."
+    );
+    Ok(())
+}

@@ -1,0 +1,55 @@
+//! `vigil forecast [--series NAME]`: rewrite the forecasts of each series' latest published
+//! version from its stored draws.
+
+use anyhow::Context as _;
+use vigil_model::forecast_baseline;
+
+use super::Context;
+use crate::pipeline::draws;
+use crate::pipeline::input::model_transform;
+
+pub async fn run(ctx: &Context, series: Option<String>) -> anyhow::Result<()> {
+    let store = ctx.open_store().await?;
+    let names: Vec<&crate::config::SeriesConfig> = match &series {
+        Some(name) => vec![ctx
+            .config
+            .series
+            .iter()
+            .find(|s| &s.name == name)
+            .ok_or_else(|| {
+                anyhow::anyhow!("no series named {name:?} in {}", ctx.config.path.display())
+            })?],
+        None => ctx.config.series.iter().collect(),
+    };
+    for s in names {
+        let Some(latest) = store.latest_published(&s.name).await? else {
+            println!("{}: no published version yet", s.name);
+            continue;
+        };
+        let (_, blob) = store.fit_draws(latest.fit_id).await?.with_context(|| {
+            format!(
+                "series {}: fit {} has no stored draws",
+                s.name, latest.fit_id
+            )
+        })?;
+        let decoded = draws::decode(&blob)
+            .with_context(|| format!("series {}: fit {}", s.name, latest.fit_id))?;
+        // The transform the version was fitted with, not today's config.
+        let transform = match latest.transform.as_deref() {
+            Some("log") => vigil_model::Transform::Log,
+            Some("none") => vigil_model::Transform::None,
+            _ => model_transform(s.transform),
+        };
+        let rows = forecast_baseline(&decoded.basis, transform);
+        store.replace_forecasts(latest.fit_id, &rows).await?;
+        println!(
+            "{}: wrote {} forecasts for version {} (fit {})",
+            s.name,
+            rows.len(),
+            latest.version,
+            latest.fit_id
+        );
+    }
+    store.close().await;
+    Ok(())
+}

@@ -1,0 +1,354 @@
+//! The draws of a version as one Arrow IPC file: every saved draw of the standard
+//! deviations and coefficients, and a thinned set of joint draws of the random effects
+//! (the forecast basis). Any Arrow reader can open it; Vigil reads it back for warm starts
+//! and for `vigil forecast`.
+//!
+//! One row per quantity, with columns `kind` (`sd`, `coef`, `effect`, `basis`, `data`),
+//! `term`, `level` (nullable), `chains`, `draws_per_chain` and `values` (a list of
+//! `chains x draws_per_chain` numbers, chain after chain). `basis/draw_index` holds, per
+//! kept joint draw, its index into the full `sd`/`coef` draws (chain-major); `data`
+//! rows hold the covariate means (`covariate_mean`, level = covariate) and each site's
+//! latest observed year (`site_last_year`, level = site).
+
+use std::sync::Arc;
+
+use arrow_array::builder::{Float64Builder, ListBuilder, StringBuilder, UInt32Builder};
+use arrow_array::{Array, Float64Array, ListArray, RecordBatch, StringArray, UInt32Array};
+use arrow_ipc::reader::FileReader;
+use arrow_ipc::writer::FileWriter;
+use arrow_schema::{ArrowError, DataType, Field, Schema};
+use vigil_model::{ForecastBasis, Posterior, WarmStart};
+
+/// Format tag stored in `fit_draws.format`.
+pub const FORMAT: &str = "arrow-ipc-file";
+
+fn schema() -> Schema {
+    Schema::new(vec![
+        Field::new("kind", DataType::Utf8, false),
+        Field::new("term", DataType::Utf8, false),
+        Field::new("level", DataType::Utf8, true),
+        Field::new("chains", DataType::UInt32, false),
+        Field::new("draws_per_chain", DataType::UInt32, false),
+        Field::new(
+            "values",
+            DataType::List(Arc::new(Field::new("item", DataType::Float64, true))),
+            false,
+        ),
+    ])
+}
+
+struct Rows {
+    kind: StringBuilder,
+    term: StringBuilder,
+    level: StringBuilder,
+    chains: UInt32Builder,
+    draws: UInt32Builder,
+    values: ListBuilder<Float64Builder>,
+}
+
+impl Rows {
+    fn new() -> Self {
+        Rows {
+            kind: StringBuilder::new(),
+            term: StringBuilder::new(),
+            level: StringBuilder::new(),
+            chains: UInt32Builder::new(),
+            draws: UInt32Builder::new(),
+            values: ListBuilder::new(Float64Builder::new()),
+        }
+    }
+
+    fn push(
+        &mut self,
+        kind: &str,
+        term: &str,
+        level: Option<&str>,
+        chains: usize,
+        draws: usize,
+        values: impl Iterator<Item = f64>,
+    ) {
+        self.kind.append_value(kind);
+        self.term.append_value(term);
+        self.level.append_option(level);
+        self.chains.append_value(chains as u32);
+        self.draws.append_value(draws as u32);
+        self.values
+            .values()
+            .append_slice(&values.collect::<Vec<f64>>());
+        self.values.append(true);
+    }
+}
+
+/// Encode a posterior's draws, keeping `basis_per_chain` joint effect draws per chain.
+pub fn encode(post: &Posterior, basis: &ForecastBasis) -> Result<Vec<u8>, ArrowError> {
+    let mut rows = Rows::new();
+    let (c, d) = (post.chains, post.draws);
+    let m = post.sd_names.len();
+    let p = post.coef_names.len();
+    for (k, name) in post.sd_names.iter().enumerate() {
+        rows.push(
+            "sd",
+            name,
+            None,
+            c,
+            d,
+            (0..c * d).map(|i| post.sd_draws[i * m + k]),
+        );
+    }
+    for (j, name) in post.coef_names.iter().enumerate() {
+        rows.push(
+            "coef",
+            name,
+            None,
+            c,
+            d,
+            (0..c * d).map(|i| post.coef_draws[i * p + j]),
+        );
+    }
+    let n = basis.n;
+    let per_chain = n / c.max(1);
+    for (s, label) in basis.site_labels.iter().enumerate() {
+        rows.push(
+            "effect",
+            "site",
+            Some(label),
+            c,
+            per_chain,
+            basis.site[s * n..(s + 1) * n].iter().copied(),
+        );
+    }
+    for (t, year) in basis.year_labels.iter().enumerate() {
+        rows.push(
+            "effect",
+            "year",
+            Some(&year.to_string()),
+            c,
+            per_chain,
+            basis.year[t * n..(t + 1) * n].iter().copied(),
+        );
+    }
+    for ((name, labels), values) in basis
+        .group_names
+        .iter()
+        .zip(&basis.group_labels)
+        .zip(&basis.groups)
+    {
+        for (l, label) in labels.iter().enumerate() {
+            rows.push(
+                "effect",
+                name,
+                Some(label),
+                c,
+                per_chain,
+                values[l * n..(l + 1) * n].iter().copied(),
+            );
+        }
+    }
+    rows.push(
+        "basis",
+        "draw_index",
+        None,
+        c,
+        per_chain,
+        basis.draw_index.iter().map(|&i| i as f64),
+    );
+    for (name, mean) in post.coef_names[1..].iter().zip(&basis.covariate_means) {
+        rows.push(
+            "data",
+            "covariate_mean",
+            Some(name),
+            1,
+            1,
+            std::iter::once(*mean),
+        );
+    }
+    for (label, year) in basis.site_labels.iter().zip(&basis.site_last_year) {
+        rows.push(
+            "data",
+            "site_last_year",
+            Some(label),
+            1,
+            1,
+            std::iter::once(*year as f64),
+        );
+    }
+
+    let schema = Arc::new(schema());
+    let batch = RecordBatch::try_new(
+        schema.clone(),
+        vec![
+            Arc::new(rows.kind.finish()),
+            Arc::new(rows.term.finish()),
+            Arc::new(rows.level.finish()),
+            Arc::new(rows.chains.finish()),
+            Arc::new(rows.draws.finish()),
+            Arc::new(rows.values.finish()),
+        ],
+    )?;
+    let mut buf = Vec::new();
+    {
+        let mut writer = FileWriter::try_new(&mut buf, &schema)?;
+        writer.write(&batch)?;
+        writer.finish()?;
+    }
+    Ok(buf)
+}
+
+/// What a stored draws file gives back.
+#[derive(Debug, Clone)]
+pub struct Decoded {
+    pub warm_start: WarmStart,
+    pub basis: ForecastBasis,
+}
+
+fn bad(msg: &str) -> ArrowError {
+    ArrowError::InvalidArgumentError(format!("stored draws: {msg}"))
+}
+
+/// Decode a file written by [`encode`].
+pub fn decode(blob: &[u8]) -> Result<Decoded, ArrowError> {
+    let reader = FileReader::try_new(std::io::Cursor::new(blob), None)?;
+    let mut sd: Vec<(String, Vec<f64>)> = Vec::new();
+    let mut coef: Vec<(String, Vec<f64>)> = Vec::new();
+    let mut effects: Vec<(String, String, Vec<f64>)> = Vec::new();
+    let mut draw_index: Vec<f64> = Vec::new();
+    let mut covariate_means = Vec::new();
+    let mut site_last_year: Vec<(String, i32)> = Vec::new();
+    let (mut chains, mut draws) = (0usize, 0usize);
+    for batch in reader {
+        let batch = batch?;
+        let col = |i: usize| batch.column(i);
+        let kind = col(0)
+            .as_any()
+            .downcast_ref::<StringArray>()
+            .ok_or_else(|| bad("kind"))?;
+        let term = col(1)
+            .as_any()
+            .downcast_ref::<StringArray>()
+            .ok_or_else(|| bad("term"))?;
+        let level = col(2)
+            .as_any()
+            .downcast_ref::<StringArray>()
+            .ok_or_else(|| bad("level"))?;
+        let n_chains = col(3)
+            .as_any()
+            .downcast_ref::<UInt32Array>()
+            .ok_or_else(|| bad("chains"))?;
+        let n_draws = col(4)
+            .as_any()
+            .downcast_ref::<UInt32Array>()
+            .ok_or_else(|| bad("draws"))?;
+        let values = col(5)
+            .as_any()
+            .downcast_ref::<ListArray>()
+            .ok_or_else(|| bad("values"))?;
+        for r in 0..batch.num_rows() {
+            let list = values.value(r);
+            let v = list
+                .as_any()
+                .downcast_ref::<Float64Array>()
+                .ok_or_else(|| bad("values items"))?;
+            let v: Vec<f64> = v.values().to_vec();
+            let lvl = (!level.is_null(r)).then(|| level.value(r).to_string());
+            match kind.value(r) {
+                "sd" => {
+                    chains = n_chains.value(r) as usize;
+                    draws = n_draws.value(r) as usize;
+                    sd.push((term.value(r).to_string(), v));
+                }
+                "coef" => coef.push((term.value(r).to_string(), v)),
+                "effect" => effects.push((term.value(r).to_string(), lvl.unwrap_or_default(), v)),
+                "basis" => draw_index = v,
+                "data" if term.value(r) == "covariate_mean" => covariate_means.push(v[0]),
+                "data" if term.value(r) == "site_last_year" => {
+                    site_last_year.push((lvl.unwrap_or_default(), v[0] as i32))
+                }
+                _ => {}
+            }
+        }
+    }
+    if sd.is_empty() || coef.is_empty() {
+        return Err(bad("no sd or coef draws"));
+    }
+    let m = sd.len();
+    let p = coef.len();
+    let total = chains * draws;
+    let sd_names: Vec<String> = sd.iter().map(|(n, _)| n.clone()).collect();
+    let mut sd_draws = vec![0.0; total * m];
+    for (k, (_, v)) in sd.iter().enumerate() {
+        for i in 0..total.min(v.len()) {
+            sd_draws[i * m + k] = v[i];
+        }
+    }
+    let warm_start = WarmStart::from_draws(&sd_names, chains, draws, &sd_draws);
+    let n = draw_index.len();
+    let idx: Vec<usize> = draw_index
+        .iter()
+        .map(|&i| {
+            if i.is_finite() && (i as usize) < total {
+                i as usize
+            } else {
+                0
+            }
+        })
+        .collect();
+    let mut group_names: Vec<String> = Vec::new();
+    let mut group_labels: Vec<Vec<String>> = Vec::new();
+    let mut groups: Vec<Vec<f64>> = Vec::new();
+    let (mut site_labels, mut site, mut year_labels, mut year) =
+        (Vec::new(), Vec::new(), Vec::new(), Vec::new());
+    for (term, level, v) in effects {
+        match term.as_str() {
+            "site" => {
+                site_labels.push(level);
+                site.extend(v);
+            }
+            "year" => {
+                year_labels.push(level.parse::<i32>().map_err(|_| bad("year label"))?);
+                year.extend(v);
+            }
+            _ => {
+                let k = match group_names.iter().position(|g| *g == term) {
+                    Some(k) => k,
+                    None => {
+                        group_names.push(term.clone());
+                        group_labels.push(Vec::new());
+                        groups.push(Vec::new());
+                        group_names.len() - 1
+                    }
+                };
+                group_labels[k].push(level);
+                groups[k].extend(v);
+            }
+        }
+    }
+    let last: std::collections::HashMap<String, i32> = site_last_year.into_iter().collect();
+    let basis = ForecastBasis {
+        coef_names: coef.iter().map(|(n, _)| n.clone()).collect(),
+        site_last_year: site_labels
+            .iter()
+            .map(|s| last.get(s).copied().unwrap_or(0))
+            .collect(),
+        site_labels,
+        year_labels,
+        group_names,
+        group_labels,
+        covariate_means,
+        n,
+        draw_index: idx.clone(),
+        site,
+        year,
+        groups,
+        sd: idx
+            .iter()
+            .flat_map(|&i| sd_draws[i * m..(i + 1) * m].to_vec())
+            .collect(),
+        coef: idx
+            .iter()
+            .flat_map(|&i| coef.iter().map(move |(_, v)| v[i]))
+            .collect(),
+        sd_names,
+    };
+    let _ = p;
+    Ok(Decoded { warm_start, basis })
+}

@@ -1,0 +1,456 @@
+//! Refit one series or all: change detection, warm start, the gate with its fallbacks,
+//! and publishing.
+//!
+//! Attempts, in order, until one passes the gate (max R-hat and min bulk/tail ESS from the
+//! config): warm start from the latest published version (skipped with `--cold` or when
+//! there is none), then a cold start, then one extended cold start with twice the draws
+//! and warm-up. If none passes, the last attempt is recorded as `rejected` with its
+//! diagnostics and the previous version keeps serving.
+
+use std::sync::atomic::AtomicBool;
+use std::sync::Arc;
+use std::time::Instant;
+
+use tracing::{info, info_span, warn, Instrument};
+use vigil_model::{
+    forecast_baseline, sample, Controls, FitDiagnostics, Posterior, SamplerSettings, SummaryKind,
+    WarmStart,
+};
+
+use super::{draws, input};
+use crate::config::{Config, LocationPrior, SdPrior, SeriesConfig};
+use crate::store::{NewExclusion, NewFit, Store};
+
+/// Joint effect draws per chain kept with a version for forecasts (the forecast basis).
+pub const BASIS_DRAWS_PER_CHAIN: usize = 25;
+
+/// What the caller asks of a refit.
+#[derive(Debug, Clone, Default)]
+pub struct RefitOptions {
+    /// Only this series.
+    pub series: Option<String>,
+    /// Do not warm-start.
+    pub cold: bool,
+    /// Refit even when the data did not change.
+    pub force: bool,
+    /// The run this refit belongs to.
+    pub run_id: Option<i64>,
+    /// Raised to stop at the next safe point.
+    pub cancel: Arc<AtomicBool>,
+}
+
+/// The outcome of one series.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum SeriesOutcome {
+    Published,
+    Rejected,
+    Failed,
+    Unchanged,
+}
+
+impl SeriesOutcome {
+    pub fn as_str(&self) -> &'static str {
+        match self {
+            SeriesOutcome::Published => "published",
+            SeriesOutcome::Rejected => "rejected",
+            SeriesOutcome::Failed => "failed",
+            SeriesOutcome::Unchanged => "unchanged",
+        }
+    }
+}
+
+/// What happened to one series.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct SeriesReport {
+    pub series: String,
+    pub outcome: SeriesOutcome,
+    pub fit_id: Option<i64>,
+    pub version: Option<i64>,
+    pub message: String,
+    pub sd_q50: Vec<(String, f64)>,
+    pub diagnostics: Option<FitDiagnostics>,
+    pub wall_seconds: f64,
+    pub warm_start_from: Option<i64>,
+    pub n_obs: Option<i64>,
+    /// Mean 80% interval width per forecast target (response scale).
+    pub width80: Vec<(String, f64)>,
+}
+
+/// Refit every series named by `opts` (all when `opts.series` is `None`).
+pub async fn refit(
+    store: &Store,
+    config: &Config,
+    opts: &RefitOptions,
+) -> anyhow::Result<Vec<SeriesReport>> {
+    let selected: Vec<&SeriesConfig> = match &opts.series {
+        Some(name) => {
+            let s = config
+                .series
+                .iter()
+                .find(|s| &s.name == name)
+                .ok_or_else(|| {
+                    anyhow::anyhow!(
+                        "no series named {name:?} in {}; configured: {}",
+                        config.path.display(),
+                        config
+                            .series
+                            .iter()
+                            .map(|s| s.name.as_str())
+                            .collect::<Vec<_>>()
+                            .join(", ")
+                    )
+                })?;
+            vec![s]
+        }
+        None => config.series.iter().collect(),
+    };
+    let mut reports = Vec::new();
+    for series in selected {
+        let span = info_span!("refit", series = %series.name);
+        let report = refit_series(store, series, opts).instrument(span).await?;
+        reports.push(report);
+        if opts.cancel.load(std::sync::atomic::Ordering::Relaxed) {
+            break;
+        }
+    }
+    Ok(reports)
+}
+
+pub(crate) fn model_priors(series: &SeriesConfig) -> vigil_model::Priors {
+    let sd = |p: Option<SdPrior>| {
+        p.map(|p| match p {
+            SdPrior::HalfNormal(scale) => vigil_model::SdPrior::HalfNormal { scale },
+            SdPrior::HalfStudentT { df, scale } => vigil_model::SdPrior::HalfStudentT { df, scale },
+            SdPrior::Exponential(rate) => vigil_model::SdPrior::Exponential { rate },
+        })
+    };
+    let loc = |p: Option<LocationPrior>| {
+        p.map(|LocationPrior::Normal { mean, sd }| vigil_model::NormalPrior { mean, sd })
+    };
+    let pr = &series.priors;
+    vigil_model::Priors {
+        residual_sd: sd(pr.residual_sd),
+        site_sd: sd(pr.site_sd),
+        year_sd: sd(pr.year_sd),
+        group_sd: sd(pr.group_sd),
+        intercept: loc(pr.intercept),
+        coefficients: loc(pr.coefficients),
+    }
+}
+
+fn settings(series: &SeriesConfig) -> SamplerSettings {
+    let s = &series.sampler;
+    SamplerSettings {
+        chains: s.chains as usize,
+        draws: s.draws as usize,
+        warmup: s.warmup as usize,
+        warm_warmup: s.warm_warmup as usize,
+        seed: s.seed,
+        ..SamplerSettings::default()
+    }
+}
+
+fn passes(d: &FitDiagnostics, series: &SeriesConfig) -> bool {
+    d.max_rhat <= series.sampler.max_rhat
+        && d.min_ess_bulk >= series.sampler.min_ess
+        && d.min_ess_tail >= series.sampler.min_ess
+}
+
+fn gate_message(d: &FitDiagnostics, series: &SeriesConfig) -> String {
+    format!(
+        "max R-hat {:.4} (gate {}), min bulk-ESS {:.0}, min tail-ESS {:.0} (gate {})",
+        d.max_rhat, series.sampler.max_rhat, d.min_ess_bulk, d.min_ess_tail, series.sampler.min_ess
+    )
+}
+
+/// One try at a fit: its label, its settings, and the version it warm-starts from.
+type Attempt = (&'static str, SamplerSettings, Option<(i64, WarmStart)>);
+
+/// Run the sampler off the async threads.
+async fn run_sampler(
+    data: Arc<vigil_model::Data>,
+    priors: vigil_model::Priors,
+    settings: SamplerSettings,
+    warm: Option<WarmStart>,
+    cancel: Arc<AtomicBool>,
+) -> anyhow::Result<Posterior> {
+    let joined = tokio::task::spawn_blocking(move || {
+        let controls = Controls {
+            cancel: Some(&cancel),
+            progress: None,
+        };
+        sample(&data, &priors, &settings, warm.as_ref(), controls)
+    })
+    .await?;
+    Ok(joined?)
+}
+
+async fn refit_series(
+    store: &Store,
+    series: &SeriesConfig,
+    opts: &RefitOptions,
+) -> anyhow::Result<SeriesReport> {
+    let started = Instant::now();
+    let watermark = store.series_watermark(&series.columns()).await?;
+    let mut report = SeriesReport {
+        series: series.name.clone(),
+        outcome: SeriesOutcome::Unchanged,
+        fit_id: None,
+        version: None,
+        message: String::new(),
+        sd_q50: Vec::new(),
+        diagnostics: None,
+        wall_seconds: 0.0,
+        warm_start_from: None,
+        n_obs: None,
+        width80: Vec::new(),
+    };
+    if !opts.force {
+        if let Some(last) = store.latest_attempt_watermark(&series.name).await? {
+            if last >= watermark {
+                report.message = "no new data since the last fit".into();
+                return Ok(report);
+            }
+        }
+    }
+    let mut fit = NewFit {
+        series: series.name.clone(),
+        watermark,
+        run_id: opts.run_id,
+        response: Some(series.response.clone()),
+        transform: Some(series.transform.to_string()),
+        seed: Some(series.sampler.seed as i64),
+        chains: Some(series.sampler.chains as i64),
+        draws: Some(series.sampler.draws as i64),
+        ..NewFit::default()
+    };
+    let rows = store
+        .load_series_rows(&series.response, &series.covariates, &series.groups)
+        .await?;
+    let built = match input::build(series, &rows) {
+        Ok(b) => b,
+        Err(e) => {
+            fit.status = "failed".into();
+            fit.message = Some(e.to_string());
+            fit.wall_seconds = Some(started.elapsed().as_secs_f64());
+            let recorded = store.record_fit(&fit, &[], None, &[], &[]).await?;
+            warn!(fit_id = recorded.fit_id, "{e}");
+            report.outcome = SeriesOutcome::Failed;
+            report.fit_id = Some(recorded.fit_id);
+            report.message = e.to_string();
+            return Ok(report);
+        }
+    };
+    let exclusions: Vec<NewExclusion> = built
+        .excluded
+        .iter()
+        .map(|e| NewExclusion {
+            site: e.site.clone(),
+            year: e.year,
+            visit: e.visit.clone(),
+            reason: e.reason.clone(),
+        })
+        .collect();
+    let data = Arc::new(built.data);
+    fit.n_obs = Some(data.n_obs() as i64);
+    fit.n_sites = Some(data.n_sites() as i64);
+    fit.n_years = Some(data.n_years() as i64);
+    fit.data_through_year = data.year_labels().last().map(|&y| y as i64);
+
+    // Warm start from the latest published version, when its draws decode.
+    let mut warm: Option<(i64, WarmStart)> = None;
+    if !opts.cold {
+        if let Some(published) = store.latest_published(&series.name).await? {
+            if let Some((_, blob)) = store.fit_draws(published.fit_id).await? {
+                match draws::decode(&blob) {
+                    Ok(decoded) => warm = Some((published.fit_id, decoded.warm_start)),
+                    Err(e) => warn!(
+                        fit_id = published.fit_id,
+                        "cannot read the draws of the last version, starting cold: {e}"
+                    ),
+                }
+            }
+        }
+    }
+
+    let priors = model_priors(series);
+    let base = settings(series);
+    let mut attempts: Vec<Attempt> = Vec::new();
+    if let Some(w) = warm {
+        attempts.push(("warm start", base.clone(), Some(w)));
+    }
+    attempts.push(("cold start", base.clone(), None));
+    attempts.push((
+        "extended cold start",
+        SamplerSettings {
+            draws: base.draws * 2,
+            warmup: base.warmup * 2,
+            ..base.clone()
+        },
+        None,
+    ));
+    let mut notes: Vec<String> = Vec::new();
+    let mut last: Option<(Posterior, SamplerSettings, Option<i64>)> = None;
+    for (label, settings, warm) in attempts {
+        let (from, warm_state) = match warm {
+            Some((id, w)) => (Some(id), Some(w)),
+            None => (None, None),
+        };
+        let post = match run_sampler(
+            data.clone(),
+            priors.clone(),
+            settings.clone(),
+            warm_state,
+            opts.cancel.clone(),
+        )
+        .await
+        {
+            Ok(p) => p,
+            Err(e) => {
+                if matches!(
+                    e.downcast_ref::<vigil_model::ModelError>(),
+                    Some(vigil_model::ModelError::Cancelled)
+                ) {
+                    return Err(e.context(format!(
+                        "refit of series {} was cancelled; nothing was recorded",
+                        series.name
+                    )));
+                }
+                fit.status = "failed".into();
+                fit.message = Some(format!("{label}: {e:#}"));
+                fit.wall_seconds = Some(started.elapsed().as_secs_f64());
+                let recorded = store.record_fit(&fit, &[], None, &[], &exclusions).await?;
+                report.outcome = SeriesOutcome::Failed;
+                report.fit_id = Some(recorded.fit_id);
+                report.message = fit.message.clone().unwrap_or_default();
+                return Ok(report);
+            }
+        };
+        let ok = passes(&post.diagnostics, series);
+        info!(
+            attempt = label,
+            passed = ok,
+            "{}",
+            gate_message(&post.diagnostics, series)
+        );
+        if !ok {
+            notes.push(format!(
+                "{label} failed the gate: {}",
+                gate_message(&post.diagnostics, series)
+            ));
+        }
+        last = Some((post, settings, from));
+        if ok {
+            break;
+        }
+    }
+    let Some((post, used, from)) = last else {
+        anyhow::bail!("no fit attempt was made for series {}", series.name);
+    };
+    let published = passes(&post.diagnostics, series);
+    let d = post.diagnostics.clone();
+    fit.status = if published { "published" } else { "rejected" }.into();
+    fit.warm_start_from = from;
+    fit.draws = Some(used.draws as i64);
+    fit.warmup = Some(d.warmup as i64);
+    fit.max_rhat = Some(d.max_rhat);
+    fit.min_ess_bulk = Some(d.min_ess_bulk);
+    fit.min_ess_tail = Some(d.min_ess_tail);
+    fit.acceptance_rate = Some(d.acceptance_rate);
+    fit.priors_json = serde_json::to_string(&post.priors).ok();
+    let mut message: Vec<String> = post.warnings.clone();
+    message.extend(notes);
+    if !exclusions.is_empty() {
+        message.push(format!(
+            "{} visit(s) excluded (see fit_exclusions)",
+            exclusions.len()
+        ));
+    }
+    if !published {
+        message.push("rejected by the convergence gate; the previous version keeps serving".into());
+    }
+    fit.message = (!message.is_empty()).then(|| message.join("; "));
+    fit.diagnostics_json = serde_json::to_string(&serde_json::json!({
+        "diagnostics": &d,
+        "warnings": post.warnings,
+        "excluded": exclusions.len(),
+        "max_rhat_effects": d.max_rhat_effects,
+    }))
+    .ok();
+
+    let transform = input::model_transform(series.transform);
+    let (summaries, blob, forecasts) = if published {
+        let post = Arc::new(post);
+        let p2 = post.clone();
+        let (blob, forecasts) = tokio::task::spawn_blocking(move || {
+            let basis = p2.forecast_basis(BASIS_DRAWS_PER_CHAIN);
+            let forecasts = forecast_baseline(&basis, transform);
+            (draws::encode(&p2, &basis), forecasts)
+        })
+        .await?;
+        let blob = blob?;
+        (post.summaries.clone(), Some(blob), forecasts)
+    } else {
+        // A rejected fit keeps its diagnostics, not its effects or draws.
+        let kept = post
+            .summaries
+            .iter()
+            .filter(|s| s.kind != SummaryKind::Effect)
+            .cloned()
+            .collect();
+        (kept, None, Vec::new())
+    };
+    fit.wall_seconds = Some(started.elapsed().as_secs_f64());
+    let recorded = store
+        .record_fit(
+            &fit,
+            &summaries,
+            blob.as_deref().map(|b| (draws::FORMAT, b)),
+            &forecasts,
+            &exclusions,
+        )
+        .await?;
+    report.outcome = if published {
+        SeriesOutcome::Published
+    } else {
+        SeriesOutcome::Rejected
+    };
+    report.fit_id = Some(recorded.fit_id);
+    report.version = published.then_some(recorded.version);
+    report.message = fit.message.clone().unwrap_or_default();
+    report.sd_q50 = summaries
+        .iter()
+        .filter(|s| s.kind == SummaryKind::Sd)
+        .map(|s| (s.term.clone(), s.q50))
+        .collect();
+    report.diagnostics = Some(d);
+    report.warm_start_from = from;
+    report.n_obs = fit.n_obs;
+    report.wall_seconds = fit.wall_seconds.unwrap_or_default();
+    for target in [
+        "known_site_known_year",
+        "known_site_new_year",
+        "new_site_known_year",
+        "new_site_new_year",
+    ] {
+        let widths: Vec<f64> = forecasts
+            .iter()
+            .filter(|f| f.target.as_str() == target)
+            .map(|f| f.hi80 - f.lo80)
+            .collect();
+        if !widths.is_empty() {
+            report.width80.push((
+                target.to_string(),
+                widths.iter().sum::<f64>() / widths.len() as f64,
+            ));
+        }
+    }
+    info!(
+        fit_id = recorded.fit_id,
+        version = recorded.version,
+        outcome = report.outcome.as_str(),
+        "fit recorded"
+    );
+    Ok(report)
+}

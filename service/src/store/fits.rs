@@ -1,0 +1,343 @@
+//! Writing fits: a version (fit row, summaries, draws, forecasts) in one transaction;
+//! rewriting the forecasts of the latest version; runs and their per-series outcomes.
+//!
+//! Invariant: everything a version consists of becomes visible in one transaction, or not
+//! at all (`tests/e2e_pipeline.rs`).
+
+use sqlx::{QueryBuilder, Row, Sqlite, Transaction};
+use vigil_model::{ForecastRow, Summary};
+
+use super::{now_utc, Store, StoreError};
+
+/// Everything about a fit attempt except its summaries, draws and forecasts.
+#[derive(Debug, Clone, Default)]
+pub struct NewFit {
+    pub series: String,
+    /// `published`, `rejected` or `failed`.
+    pub status: String,
+    pub data_through_year: Option<i64>,
+    pub watermark: i64,
+    pub n_obs: Option<i64>,
+    pub n_sites: Option<i64>,
+    pub n_years: Option<i64>,
+    pub warm_start_from: Option<i64>,
+    pub chains: Option<i64>,
+    pub draws: Option<i64>,
+    pub warmup: Option<i64>,
+    pub wall_seconds: Option<f64>,
+    pub max_rhat: Option<f64>,
+    pub min_ess_bulk: Option<f64>,
+    pub min_ess_tail: Option<f64>,
+    pub seed: Option<i64>,
+    pub message: Option<String>,
+    pub run_id: Option<i64>,
+    pub response: Option<String>,
+    pub transform: Option<String>,
+    pub priors_json: Option<String>,
+    pub diagnostics_json: Option<String>,
+    pub acceptance_rate: Option<f64>,
+}
+
+/// A visit a fit left out, and why (stored in `fit_exclusions`).
+#[derive(Debug, Clone, PartialEq)]
+pub struct NewExclusion {
+    pub site: String,
+    pub year: i64,
+    pub visit: String,
+    pub reason: String,
+}
+
+/// Where a recorded fit landed.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct RecordedFit {
+    pub fit_id: i64,
+    pub version: i64,
+}
+
+/// The latest published version of a series, as the pipeline needs it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct PublishedFit {
+    pub fit_id: i64,
+    pub version: i64,
+    pub watermark: i64,
+    pub transform: Option<String>,
+}
+
+/// Rows per multi-row INSERT: well under SQLite's limit of 32766 bound parameters.
+const CHUNK: usize = 1000;
+
+async fn insert_summaries(
+    tx: &mut Transaction<'_, Sqlite>,
+    fit_id: i64,
+    rows: &[Summary],
+) -> Result<(), sqlx::Error> {
+    for chunk in rows.chunks(CHUNK) {
+        let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
+            "INSERT INTO posterior_summary (fit_id, kind, term, level, mean, sd, q05, q25, q50, q75, q95, rhat, ess_bulk, ess_tail) ",
+        );
+        q.push_values(chunk, |mut b, s| {
+            b.push_bind(fit_id)
+                .push_bind(s.kind.as_str())
+                .push_bind(&s.term)
+                .push_bind(&s.level)
+                .push_bind(finite(s.mean))
+                .push_bind(finite(s.sd))
+                .push_bind(finite(s.q05))
+                .push_bind(finite(s.q25))
+                .push_bind(finite(s.q50))
+                .push_bind(finite(s.q75))
+                .push_bind(finite(s.q95))
+                .push_bind(finite(s.rhat))
+                .push_bind(finite(s.ess_bulk))
+                .push_bind(finite(s.ess_tail));
+        });
+        q.build().execute(&mut **tx).await?;
+    }
+    Ok(())
+}
+
+async fn insert_forecasts(
+    tx: &mut Transaction<'_, Sqlite>,
+    fit_id: i64,
+    rows: &[ForecastRow],
+) -> Result<(), sqlx::Error> {
+    for chunk in rows.chunks(CHUNK) {
+        let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
+            "INSERT INTO forecasts (fit_id, target, site, year, scenario, mean, sd, q50, lo50, hi50, lo80, hi80, lo95, hi95, \
+             share_site, share_year, share_groups, share_residual, share_estimation) ",
+        );
+        q.push_values(chunk, |mut b, f| {
+            b.push_bind(fit_id)
+                .push_bind(f.target.as_str())
+                .push_bind(&f.site)
+                .push_bind(f.year)
+                .push_bind(&f.scenario)
+                .push_bind(finite(f.mean))
+                .push_bind(finite(f.sd))
+                .push_bind(finite(f.q50))
+                .push_bind(finite(f.lo50))
+                .push_bind(finite(f.hi50))
+                .push_bind(finite(f.lo80))
+                .push_bind(finite(f.hi80))
+                .push_bind(finite(f.lo95))
+                .push_bind(finite(f.hi95))
+                .push_bind(finite(f.share_site))
+                .push_bind(finite(f.share_year))
+                .push_bind(finite(f.share_groups))
+                .push_bind(finite(f.share_residual))
+                .push_bind(finite(f.share_estimation));
+        });
+        q.build().execute(&mut **tx).await?;
+    }
+    Ok(())
+}
+
+/// SQLite has no NaN or infinity: a non-finite figure is stored as NULL.
+fn finite(v: f64) -> Option<f64> {
+    v.is_finite().then_some(v)
+}
+
+impl Store {
+    /// Record a fit attempt and, for a published one, its summaries, draws and forecasts,
+    /// all in one transaction. A published fit takes the next version number of its
+    /// series; a rejected or failed attempt is recorded under the version it tried to
+    /// become, so published versions count 1, 2, 3… without gaps.
+    pub async fn record_fit(
+        &self,
+        fit: &NewFit,
+        summaries: &[Summary],
+        draws: Option<(&str, &[u8])>,
+        forecasts: &[ForecastRow],
+        exclusions: &[NewExclusion],
+    ) -> Result<RecordedFit, StoreError> {
+        let run = async {
+            let mut tx = self.pool.begin().await?;
+            let version: i64 = sqlx::query_scalar(
+                "SELECT COALESCE(MAX(version), 0) + 1 FROM fits WHERE series = ?1 AND status = 'published'",
+            )
+            .bind(&fit.series)
+            .fetch_one(&mut *tx)
+            .await?;
+            let fit_id: i64 = sqlx::query_scalar(
+                "INSERT INTO fits (series, version, status, created_at, data_through_year, watermark, n_obs, n_sites, n_years,
+                                   warm_start_from, chains, draws, warmup, wall_seconds, max_rhat, min_ess_bulk, min_ess_tail,
+                                   seed, message, run_id, response, transform, priors_json, diagnostics_json, acceptance_rate)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20, ?21, ?22, ?23, ?24, ?25)
+                 RETURNING fit_id",
+            )
+            .bind(&fit.series)
+            .bind(version)
+            .bind(&fit.status)
+            .bind(now_utc())
+            .bind(fit.data_through_year)
+            .bind(fit.watermark)
+            .bind(fit.n_obs)
+            .bind(fit.n_sites)
+            .bind(fit.n_years)
+            .bind(fit.warm_start_from)
+            .bind(fit.chains)
+            .bind(fit.draws)
+            .bind(fit.warmup)
+            .bind(fit.wall_seconds)
+            .bind(fit.max_rhat.and_then(finite))
+            .bind(fit.min_ess_bulk.and_then(finite))
+            .bind(fit.min_ess_tail.and_then(finite))
+            .bind(fit.seed)
+            .bind(&fit.message)
+            .bind(fit.run_id)
+            .bind(&fit.response)
+            .bind(&fit.transform)
+            .bind(&fit.priors_json)
+            .bind(&fit.diagnostics_json)
+            .bind(fit.acceptance_rate.and_then(finite))
+            .fetch_one(&mut *tx)
+            .await?;
+            insert_summaries(&mut tx, fit_id, summaries).await?;
+            for chunk in exclusions.chunks(CHUNK) {
+                let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
+                    "INSERT INTO fit_exclusions (fit_id, site, year, visit, reason) ",
+                );
+                q.push_values(chunk, |mut b, e| {
+                    b.push_bind(fit_id)
+                        .push_bind(&e.site)
+                        .push_bind(e.year)
+                        .push_bind(&e.visit)
+                        .push_bind(&e.reason);
+                });
+                q.build().execute(&mut *tx).await?;
+            }
+            if let Some((format, blob)) = draws {
+                sqlx::query("INSERT INTO fit_draws (fit_id, format, blob) VALUES (?1, ?2, ?3)")
+                    .bind(fit_id)
+                    .bind(format)
+                    .bind(blob)
+                    .execute(&mut *tx)
+                    .await?;
+            }
+            if fit.status == "published" {
+                insert_forecasts(&mut tx, fit_id, forecasts).await?;
+            }
+            tx.commit().await?;
+            Ok::<_, sqlx::Error>(RecordedFit { fit_id, version })
+        };
+        run.await.map_err(|e| self.sql(e))
+    }
+
+    /// The latest published version of `series`, if any.
+    pub async fn latest_published(&self, series: &str) -> Result<Option<PublishedFit>, StoreError> {
+        let row = sqlx::query(
+            "SELECT fit_id, version, watermark, transform FROM fits
+             WHERE series = ?1 AND status = 'published' ORDER BY version DESC LIMIT 1",
+        )
+        .bind(series)
+        .fetch_optional(&self.pool)
+        .await
+        .map_err(|e| self.sql(e))?;
+        row.map(|r| {
+            Ok(PublishedFit {
+                fit_id: r.try_get("fit_id")?,
+                version: r.try_get("version")?,
+                watermark: r.try_get("watermark")?,
+                transform: r.try_get("transform")?,
+            })
+        })
+        .transpose()
+        .map_err(|e| self.sql(e))
+    }
+
+    /// The watermark of the latest fit attempt of `series` (published or not).
+    pub async fn latest_attempt_watermark(&self, series: &str) -> Result<Option<i64>, StoreError> {
+        sqlx::query_scalar(
+            "SELECT watermark FROM fits WHERE series = ?1 ORDER BY fit_id DESC LIMIT 1",
+        )
+        .bind(series)
+        .fetch_optional(&self.pool)
+        .await
+        .map_err(|e| self.sql(e))
+    }
+
+    /// The stored draws of a fit: `(format, blob)`.
+    pub async fn fit_draws(&self, fit_id: i64) -> Result<Option<(String, Vec<u8>)>, StoreError> {
+        let row = sqlx::query("SELECT format, blob FROM fit_draws WHERE fit_id = ?1")
+            .bind(fit_id)
+            .fetch_optional(&self.pool)
+            .await
+            .map_err(|e| self.sql(e))?;
+        row.map(|r| Ok((r.try_get("format")?, r.try_get("blob")?)))
+            .transpose()
+            .map_err(|e| self.sql(e))
+    }
+
+    /// Replace the forecasts of a published fit in one transaction.
+    pub async fn replace_forecasts(
+        &self,
+        fit_id: i64,
+        forecasts: &[ForecastRow],
+    ) -> Result<(), StoreError> {
+        let run = async {
+            let mut tx = self.pool.begin().await?;
+            sqlx::query("DELETE FROM forecasts WHERE fit_id = ?1")
+                .bind(fit_id)
+                .execute(&mut *tx)
+                .await?;
+            insert_forecasts(&mut tx, fit_id, forecasts).await?;
+            tx.commit().await
+        };
+        run.await.map_err(|e| self.sql(e))
+    }
+
+    /// Open a run record; returns its id.
+    pub async fn start_run(&self, trigger: &str) -> Result<i64, StoreError> {
+        sqlx::query_scalar(
+            "INSERT INTO runs (trigger, started_at, status) VALUES (?1, ?2, 'running') RETURNING run_id",
+        )
+        .bind(trigger)
+        .bind(now_utc())
+        .fetch_one(&self.pool)
+        .await
+        .map_err(|e| self.sql(e))
+    }
+
+    /// Close a run record.
+    pub async fn finish_run(
+        &self,
+        run_id: i64,
+        status: &str,
+        message: Option<&str>,
+    ) -> Result<(), StoreError> {
+        sqlx::query(
+            "UPDATE runs SET finished_at = ?2, status = ?3, message = ?4 WHERE run_id = ?1",
+        )
+        .bind(run_id)
+        .bind(now_utc())
+        .bind(status)
+        .bind(message)
+        .execute(&self.pool)
+        .await
+        .map_err(|e| self.sql(e))?;
+        Ok(())
+    }
+
+    /// Record what a run did for one series.
+    pub async fn record_run_series(
+        &self,
+        run_id: i64,
+        series: &str,
+        outcome: &str,
+        fit_id: Option<i64>,
+        message: Option<&str>,
+    ) -> Result<(), StoreError> {
+        sqlx::query(
+            "INSERT OR REPLACE INTO run_series (run_id, series, outcome, fit_id, message) VALUES (?1, ?2, ?3, ?4, ?5)",
+        )
+        .bind(run_id)
+        .bind(series)
+        .bind(outcome)
+        .bind(fit_id)
+        .bind(message)
+        .execute(&self.pool)
+        .await
+        .map_err(|e| self.sql(e))?;
+        Ok(())
+    }
+}

@@ -1,0 +1,340 @@
+//! End-to-end: refit, forecasts, the gate, `reml --json`, and the demo, through the real
+//! binary on temporary databases, read back with sqlx and the sqlite3 client.
+
+mod common;
+
+use common::{Network, Value};
+use vigil_model::simulate::{simulate_rows, NetworkSpec};
+
+/// One series on the log scale with a covariate; a small sampler for speed.
+fn config(max_rhat: f64) -> String {
+    format!(
+        r#"
+[store]
+database = "vigil.db"
+
+[feed]
+inbox = "inbox"
+archive = "archive"
+quarantine = "quarantine"
+
+[[series]]
+name = "chlorophyll"
+response = "chl_ug_l"
+transform = "log"
+site = "lake"
+year = "season"
+visit = "visit"
+covariates = ["surface_temp_c"]
+
+[series.sampler]
+chains = 4
+draws = 500
+warmup = 300
+seed = 3
+max_rhat = {max_rhat}
+min_ess = 200
+"#
+    )
+}
+
+const AWKWARD: &str = "S6';DROP TABLE fits;--";
+
+/// Invented test data: a generated network, written as feed CSV for the given years, with
+/// one awkward site code, one non-positive reading and one missing covariate.
+fn feed(years: std::ops::Range<i32>) -> String {
+    let spec = NetworkSpec {
+        sites: 15,
+        years: 8,
+        visits: 2,
+        missing: 0.1,
+        covariates: 1,
+        sd_residual: 0.3,
+        sd_site: 0.5,
+        sd_year: 0.3,
+        intercept: 1.0,
+        coef: 0.05,
+        first_year: 2015,
+        seed: 21,
+    };
+    let (rows, _) = simulate_rows(&spec);
+    let mut out = String::from("lake,season,visit,surface_temp_c,chl_ug_l\n");
+    let mut visit = std::collections::HashMap::new();
+    let mut defects = (false, false);
+    for r in rows.iter().filter(|r| years.contains(&r.year)) {
+        let v = visit.entry((r.site, r.year)).or_insert(0);
+        *v += 1;
+        let lake = if r.site == 6 {
+            format!("\"{AWKWARD}\"")
+        } else {
+            format!("Lake {:02}", r.site)
+        };
+        let mut chl = format!("{:.4}", r.y.exp());
+        let mut temp = format!("{:.2}", r.covariates[0]);
+        // The first row of lakes 2 and 3 after 2015 carries a defect.
+        if r.site == 2 && r.year > 2015 && !defects.0 {
+            chl = "-0.5".into();
+            defects.0 = true;
+        }
+        if r.site == 3 && r.year > 2015 && !defects.1 {
+            temp = String::new();
+            defects.1 = true;
+        }
+        out.push_str(&format!("{lake},{},{},{temp},{chl}\n", r.year, v));
+    }
+    out
+}
+
+fn published_versions(net: &Network) -> i64 {
+    net.scalar("SELECT COUNT(*) FROM fits WHERE status = 'published'")
+        .int()
+}
+
+#[test]
+fn refit_publishes_a_version_with_all_four_targets_and_ordered_intervals() {
+    let net = Network::with_config(&config(1.05));
+    net.ok(&["init"]);
+    net.drop_file("2015-2020.csv", feed(2015..2021));
+    net.ok(&["ingest"]);
+    let out = net.ok(&["refit"]);
+    assert!(out.contains("published version 1"), "{out}");
+    assert_eq!(published_versions(&net), 1);
+    let fit_id = net
+        .scalar("SELECT fit_id FROM latest_fits WHERE series = 'chlorophyll'")
+        .int();
+
+    // All four targets, from the view an analyst would query.
+    let targets = net
+        .sqlite3("SELECT target, COUNT(*) FROM latest_forecasts GROUP BY target ORDER BY target");
+    assert_eq!(
+        targets,
+        "known_site_known_year|15\nknown_site_new_year|15\nnew_site_known_year|6\nnew_site_new_year|1\n",
+        "{targets}"
+    );
+    let disordered = net.scalar(
+        "SELECT COUNT(*) FROM latest_forecasts WHERE NOT (lo95 <= lo80 AND lo80 <= lo50 AND lo50 <= q50 AND q50 <= hi50
+         AND hi50 <= hi80 AND hi80 <= hi95) OR lo95 <= 0",
+    );
+    assert_eq!(disordered, Value::Int(0));
+    let bad_shares = net.scalar(
+        "SELECT COUNT(*) FROM latest_forecasts
+         WHERE abs(share_site + share_year + share_groups + share_residual + share_estimation - 1) > 1e-9",
+    );
+    assert_eq!(bad_shares, Value::Int(0));
+    // Next year is one past the data; new-site rows have no site.
+    assert_eq!(
+        net.scalar("SELECT MIN(year) FROM latest_forecasts WHERE target = 'known_site_new_year'"),
+        Value::Int(2021)
+    );
+    assert_eq!(net.scalar("SELECT COUNT(*) FROM latest_forecasts WHERE target LIKE 'new_site%' AND site IS NOT NULL"), Value::Int(0));
+
+    // Summaries of every kind, shares summing to one at the median level too.
+    for kind in ["sd", "share", "coef", "effect"] {
+        let n = net.scalar(&format!(
+            "SELECT COUNT(*) FROM posterior_summary WHERE fit_id = {fit_id} AND kind = '{kind}'"
+        ));
+        assert!(n.int() > 0, "no {kind} summaries");
+    }
+    assert_eq!(
+        net.scalar(&format!(
+            "SELECT COUNT(*) FROM fit_draws WHERE fit_id = {fit_id}"
+        )),
+        Value::Int(1)
+    );
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM variance_drift WHERE series = 'chlorophyll'"),
+        Value::Int(3)
+    );
+
+    // The awkward code round-trips verbatim into forecasts and effects.
+    let via_cli = net.sqlite3("SELECT site FROM latest_forecasts WHERE target = 'known_site_new_year' AND site LIKE 'S6%'");
+    assert_eq!(via_cli.trim_end(), AWKWARD);
+    let via_sqlx = net.scalar(&format!(
+        "SELECT COUNT(*) FROM posterior_summary WHERE kind = 'effect' AND term = 'site' AND level = '{}'",
+        AWKWARD.replace('\'', "''")
+    ));
+    assert_eq!(via_sqlx, Value::Int(1));
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM sqlite_master WHERE name = 'fits'"),
+        Value::Int(1)
+    );
+
+    // The non-positive reading and the visit without its covariate are excluded, with reasons.
+    let reasons = net.sqlite3(&format!(
+        "SELECT site, reason FROM fit_exclusions WHERE fit_id = {fit_id} ORDER BY site"
+    ));
+    assert_eq!(
+        reasons,
+        "Lake 02|chl_ug_l = -0.5 is not positive, so its log is undefined\nLake 03|covariate surface_temp_c is missing\n"
+    );
+
+    // No new data: nothing to do. `--force` refits.
+    let again = net.ok(&["refit"]);
+    assert!(again.contains("unchanged"), "{again}");
+    assert_eq!(published_versions(&net), 1);
+    net.ok(&["refit", "--force"]);
+    assert_eq!(published_versions(&net), 2);
+
+    // `forecast` rewrites the latest version's forecasts from its stored draws, identically.
+    let before = net.sqlite3("SELECT target, site, year, q50, lo80, hi80 FROM latest_forecasts ORDER BY target, site, year");
+    net.ok(&["forecast"]);
+    let after = net.sqlite3("SELECT target, site, year, q50, lo80, hi80 FROM latest_forecasts ORDER BY target, site, year");
+    assert_eq!(before, after);
+}
+
+#[test]
+fn a_new_season_warm_starts_from_the_last_version() {
+    let net = Network::with_config(&config(1.05));
+    net.ok(&["init"]);
+    net.drop_file("a.csv", feed(2015..2021));
+    net.ok(&["run-once"]);
+    net.drop_file("b.csv", feed(2021..2022));
+    let out = net.ok(&["run-once"]);
+    assert!(out.contains("published version 2"), "{out}");
+    let rows = net.sql("SELECT version, warm_start_from, warmup, data_through_year FROM fits WHERE status = 'published' ORDER BY version");
+    assert_eq!(rows.len(), 2);
+    assert!(rows[0][1].is_null());
+    let first_fit = net
+        .scalar("SELECT fit_id FROM fits WHERE version = 1")
+        .int();
+    assert_eq!(
+        rows[1][1],
+        Value::Int(first_fit),
+        "second version starts from the first"
+    );
+    assert!(
+        rows[1][2].int() < rows[0][2].int(),
+        "warm start uses a shorter warm-up: {rows:?}"
+    );
+    assert_eq!(rows[1][3], Value::Int(2021));
+    // `--cold` forces a cold start.
+    net.ok(&["refit", "--force", "--cold"]);
+    assert!(net
+        .scalar("SELECT warm_start_from FROM latest_fits")
+        .is_null());
+    // Runs are recorded with their per-series outcome.
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM runs WHERE status = 'succeeded'"),
+        Value::Int(2)
+    );
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM run_series WHERE outcome = 'published'"),
+        Value::Int(2)
+    );
+}
+
+#[test]
+fn a_fit_failing_the_gate_is_rejected_and_latest_forecasts_stay() {
+    let net = Network::with_config(&config(1.05));
+    net.ok(&["init"]);
+    net.drop_file("a.csv", feed(2015..2021));
+    net.ok(&["run-once"]);
+    let before = net.sqlite3("SELECT fit_id, target, site, year, q50, lo95, hi95 FROM latest_forecasts ORDER BY target, site, year");
+
+    // An unreachable R-hat gate: every attempt fails it.
+    std::fs::write(net.config_path(), config(1.000_000_1)).unwrap();
+    net.drop_file("b.csv", feed(2021..2022));
+    let out = net.vigil(&["run-once"]);
+    assert!(
+        !out.status.success(),
+        "run-once must exit non-zero when a series is rejected"
+    );
+    let rejected =
+        net.sql("SELECT status, version, message FROM fits ORDER BY fit_id DESC LIMIT 1");
+    assert_eq!(rejected[0][0], Value::Text("rejected".into()));
+    assert_eq!(
+        rejected[0][1],
+        Value::Int(2),
+        "a rejected attempt carries the version it tried to become"
+    );
+    assert!(
+        rejected[0][2].text().contains("gate"),
+        "{:?}",
+        rejected[0][2]
+    );
+    let after = net.sqlite3("SELECT fit_id, target, site, year, q50, lo95, hi95 FROM latest_forecasts ORDER BY target, site, year");
+    assert_eq!(before, after, "the last published version keeps serving");
+    assert_eq!(net.scalar("SELECT COUNT(*) FROM forecasts f JOIN fits USING (fit_id) WHERE fits.status <> 'published'"), Value::Int(0));
+    assert_eq!(
+        net.scalar("SELECT status FROM runs ORDER BY run_id DESC LIMIT 1"),
+        Value::Text("partial".into())
+    );
+}
+
+#[test]
+fn reml_json_has_the_contract_fields() {
+    let net = Network::with_config(&config(1.05));
+    net.ok(&["init"]);
+    net.drop_file("a.csv", feed(2015..2021));
+    net.ok(&["ingest"]);
+    let out = net.ok(&["reml", "--series", "chlorophyll", "--json"]);
+    let doc: serde_json::Value = serde_json::from_str(&out).expect("one JSON document");
+    assert_eq!(doc["series"], "chlorophyll");
+    assert!(doc["n_obs"].as_u64().unwrap() > 100);
+    for term in ["residual", "site", "year"] {
+        assert!(doc["sd"][term].as_f64().unwrap() > 0.0, "{doc}");
+    }
+    for coef in ["intercept", "surface_temp_c"] {
+        assert!(
+            doc["coef"][coef]["estimate"].is_f64()
+                && doc["coef"][coef]["se"].as_f64().unwrap() > 0.0
+        );
+    }
+    assert!(doc["reml_criterion"].is_f64());
+    let unknown = net.vigil(&["reml", "--series", "nitrogen"]);
+    assert!(!unknown.status.success());
+    assert!(String::from_utf8_lossy(&unknown.stderr).contains("no series named"));
+}
+
+#[test]
+fn the_demo_publishes_a_version_per_season() {
+    let dir = tempfile::tempdir().unwrap();
+    let out_dir = dir.path().join("demo");
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_vigil"))
+        .args(["demo", "--out"])
+        .arg(&out_dir)
+        .current_dir(dir.path())
+        .env_remove("VIGIL_CONFIG")
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "{stdout}\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(
+        stdout.contains("sqlite3"),
+        "the demo ends by saying how to query: {stdout}"
+    );
+    assert!(stdout.contains("qualified staff"));
+    let net = Network {
+        dir: tempfile::tempdir().unwrap(),
+    };
+    let db = out_dir.join("vigil.db");
+    let query = |q: &str| {
+        let o = std::process::Command::new("sqlite3")
+            .arg(&db)
+            .arg(q)
+            .output()
+            .unwrap();
+        String::from_utf8_lossy(&o.stdout).trim().to_string()
+    };
+    let _ = net;
+    assert_eq!(query("SELECT series || ':' || COUNT(*) FROM fits WHERE status = 'published' GROUP BY series ORDER BY series"), "chlorophyll:16\nsecchi:16");
+    assert_eq!(
+        query("SELECT MAX(data_through_year) FROM latest_fits"),
+        "2026"
+    );
+    assert_eq!(
+        query("SELECT COUNT(DISTINCT target) FROM latest_forecasts"),
+        "4"
+    );
+    // The deliberate defects of the demo feed were recorded, not lost.
+    assert!(
+        query("SELECT COUNT(*) FROM rejections")
+            .parse::<i64>()
+            .unwrap()
+            >= 5
+    );
+}
