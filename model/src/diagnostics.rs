@@ -7,7 +7,7 @@
 //! the paper's reference implementation; the numbers agree with ArviZ (checked in
 //! `tests/reference_diagnostics.rs`).
 
-use statrs::distribution::{ContinuousCDF, Normal};
+use crate::normal::inverse_normal;
 
 /// Diagnostics of one scalar quantity.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -39,14 +39,13 @@ pub(crate) struct ZTable {
 
 impl ZTable {
     pub(crate) fn new(total: usize) -> Self {
-        let normal = Normal::new(0.0, 1.0).expect("standard normal");
         // Ranks start at 1, so entries 0 and 1 are never read.
         let by_twice_rank = (0..=2 * total)
             .map(|k| {
                 if k < 2 {
                     f64::NAN
                 } else {
-                    normal.inverse_cdf((k as f64 / 2.0 - 0.375) / (total as f64 + 0.25))
+                    inverse_normal((k as f64 / 2.0 - 0.375) / (total as f64 + 0.25))
                 }
             })
             .collect();

@@ -14,9 +14,9 @@
 //! The predictive variance `E[v_d] + Var(m_d)` is split into shares by source: each
 //! unknown effect's variance, residual noise, and `Var(m_d)` as the estimation share.
 
+use crate::normal::{inverse_normal, norm_cdf};
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
-use statrs::function::erf::erfc;
 
 /// What forecasts need from a posterior: thinned joint draws of every effect with the
 /// standard deviations and coefficients of the same draws, and the data's labels. It is
@@ -156,11 +156,6 @@ pub struct ForecastRow {
 const PROBS: [f64; 7] = [0.5, 0.25, 0.75, 0.1, 0.9, 0.025, 0.975];
 
 #[inline]
-fn norm_cdf(z: f64) -> f64 {
-    0.5 * erfc(-z / std::f64::consts::SQRT_2)
-}
-
-#[inline]
 fn norm_pdf(z: f64) -> f64 {
     (-0.5 * z * z).exp() / (2.0 * std::f64::consts::PI).sqrt()
 }
@@ -181,27 +176,42 @@ pub fn mixture_quantile(means: &[f64], sds: &[f64], p: f64) -> f64 {
     let s_max = sds.iter().cloned().fold(0.0, f64::max);
     let mut lo = means.iter().cloned().fold(f64::INFINITY, f64::min) - 12.0 * s_max;
     let mut hi = means.iter().cloned().fold(f64::NEG_INFINITY, f64::max) + 12.0 * s_max;
-    // Start from the normal with the mixture's mean and variance.
+    // Start from the Cornish-Fisher expansion with the mixture's exact first four moments
+    // (a normal mixture is close to normal, so one or two Newton steps then suffice).
     let mean = means.iter().sum::<f64>() / n;
-    let var = means
-        .iter()
-        .zip(sds)
-        .map(|(m, s)| s * s + (m - mean).powi(2))
-        .sum::<f64>()
-        / n;
-    let z_p = crate::forecast::inverse_normal(p);
-    let mut z = mean + z_p * var.sqrt();
-    let tol = 1e-9 * s_max.max(1e-300);
+    let (mut m2, mut m3, mut m4) = (0.0, 0.0, 0.0);
+    for (&m, &s) in means.iter().zip(sds) {
+        let (d, v) = (m - mean, s * s);
+        m2 += d * d + v;
+        m3 += d * d * d + 3.0 * d * v;
+        m4 += d.powi(4) + 6.0 * d * d * v + 3.0 * v * v;
+    }
+    let (m2, m3, m4) = (m2 / n, m3 / n, m4 / n);
+    let skew = m3 / m2.powf(1.5);
+    let excess = m4 / (m2 * m2) - 3.0;
+    let z_p = inverse_normal(p);
+    let cf = z_p + (z_p * z_p - 1.0) * skew / 6.0 + (z_p.powi(3) - 3.0 * z_p) * excess / 24.0
+        - (2.0 * z_p.powi(3) - 5.0 * z_p) * skew * skew / 36.0;
+    let mut z = mean + cf * m2.sqrt();
+    if !(z > lo && z < hi) {
+        z = mean + z_p * m2.sqrt();
+    }
+    // Forecasts are reported to a few significant digits; 1e-8 of the widest component's
+    // sd is far below that and typically reached in two or three Newton steps.
+    let tol = 1e-8 * s_max.max(1e-300);
     for _ in 0..100 {
         let (f, dens) = cdf_pdf(z);
         let err = f - p;
+        if err == 0.0 {
+            return z;
+        }
         if err > 0.0 {
             hi = hi.min(z);
         } else {
             lo = lo.max(z);
         }
         let mut next = if dens > 0.0 { z - err / dens } else { f64::NAN };
-        if !(next > lo && next < hi) {
+        if !(next >= lo && next <= hi) {
             next = 0.5 * (lo + hi);
         }
         if (next - z).abs() < tol || hi - lo < tol {
@@ -210,14 +220,6 @@ pub fn mixture_quantile(means: &[f64], sds: &[f64], p: f64) -> f64 {
         z = next;
     }
     z
-}
-
-/// Standard normal quantile.
-pub(crate) fn inverse_normal(p: f64) -> f64 {
-    use statrs::distribution::{ContinuousCDF, Normal};
-    Normal::new(0.0, 1.0)
-        .expect("standard normal")
-        .inverse_cdf(p)
 }
 
 struct Components {

@@ -21,6 +21,7 @@
 mod data;
 mod error;
 mod marginal;
+mod normal;
 mod optimize;
 mod priors;
 mod reml;
