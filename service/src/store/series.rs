@@ -51,6 +51,12 @@ impl Store {
     ///
     /// Group columns are read as labels; a numeric cell stored under a group column (the
     /// column was configured differently when it arrived) is read as its decimal text.
+    ///
+    /// The values come back as one JSON array per site, built by SQLite while it walks the
+    /// `observations_current` index in order: a few thousand rows instead of one per
+    /// value, which keeps reading a large network to about the cost of the scan itself.
+    /// Numbers travel as text with 17 significant digits (`%!.17g`), which round-trips
+    /// every double exactly; SQLite's own JSON rendering of a REAL keeps only 15.
     pub async fn load_series_rows(
         &self,
         response: &str,
@@ -61,26 +67,14 @@ impl Store {
             .chain(covariates.iter().map(String::as_str))
             .chain(groups.iter().map(String::as_str))
             .collect();
-        let mut select = Vec::with_capacity(columns.len());
-        for (i, _) in columns.iter().enumerate() {
-            let p = i + 1;
-            if i <= covariates.len() {
-                select.push(format!(
-                    "MAX(CASE WHEN o.column_name = ?{p} THEN o.num_value END) AS c{i}"
-                ));
-            } else {
-                select.push(format!(
-                    "MAX(CASE WHEN o.column_name = ?{p} THEN COALESCE(o.text_value, CAST(o.num_value AS TEXT)) END) AS c{i}"
-                ));
-            }
-        }
         let sql = format!(
-            "SELECT s.code AS site, o.year AS year, o.visit AS visit, {}
-             FROM observations o JOIN sites s ON s.site_id = o.site_id
+            "SELECT s.code AS site,
+                    json_group_array(json_array(o.year, o.visit, o.column_name,
+                        CASE WHEN o.num_value IS NOT NULL THEN printf('%!.17g', o.num_value) END, o.text_value)) AS cells
+             FROM observations o INDEXED BY observations_current
+             JOIN sites s ON s.site_id = o.site_id
              WHERE o.superseded_by IS NULL AND o.column_name IN ({})
-             GROUP BY o.site_id, o.year, o.visit
-             ORDER BY s.code, o.year, o.visit",
-            select.join(", "),
+             GROUP BY o.site_id",
             placeholders(1, columns.len())
         );
         let mut q = sqlx::query(&sql);
@@ -88,34 +82,50 @@ impl Store {
             q = q.bind(*c);
         }
         let rows = q.fetch_all(&self.pool).await.map_err(|e| self.sql(e))?;
-        let mut out = Vec::with_capacity(rows.len());
+        type Cell = (i64, String, String, Option<String>, Option<String>);
+        let role = |name: &str| columns.iter().position(|c| *c == name);
+        let mut out = Vec::new();
         for r in rows {
-            let response: Option<f64> = r.try_get("c0").map_err(|e| self.sql(e))?;
-            let mut cov = Vec::with_capacity(covariates.len());
-            for i in 1..=covariates.len() {
-                let name = format!("c{i}");
-                cov.push(
-                    r.try_get::<Option<f64>, _>(name.as_str())
-                        .map_err(|e| self.sql(e))?,
-                );
+            let site: String = r.try_get("site").map_err(|e| self.sql(e))?;
+            let text: String = r.try_get("cells").map_err(|e| self.sql(e))?;
+            let mut cells: Vec<Cell> = serde_json::from_str(&text).map_err(|e| {
+                self.sql(sqlx::Error::Decode(format!("values of site {site:?}: {e}").into()))
+            })?;
+            cells.sort_by(|a, b| (a.0, &a.1).cmp(&(b.0, &b.1)));
+            let mut i = 0;
+            while i < cells.len() {
+                let (year, visit) = (cells[i].0, cells[i].1.clone());
+                let mut row = SeriesRow {
+                    site: site.clone(),
+                    year,
+                    visit,
+                    response: None,
+                    covariates: vec![None; covariates.len()],
+                    groups: vec![None; groups.len()],
+                };
+                while i < cells.len() && cells[i].0 == row.year && cells[i].1 == row.visit {
+                    let (_, _, column, num_text, label) = &cells[i];
+                    let num = match num_text {
+                        Some(t) => Some(t.parse::<f64>().map_err(|e| {
+                            self.sql(sqlx::Error::Decode(format!("value {t:?} of site {site:?}: {e}").into()))
+                        })?),
+                        None => None,
+                    };
+                    match role(column) {
+                        Some(0) => row.response = num,
+                        Some(k) if k <= covariates.len() => row.covariates[k - 1] = num,
+                        Some(k) => {
+                            row.groups[k - 1 - covariates.len()] =
+                                label.clone().or_else(|| num.map(|v| v.to_string()))
+                        }
+                        None => {}
+                    }
+                    i += 1;
+                }
+                out.push(row);
             }
-            let mut grp = Vec::with_capacity(groups.len());
-            for j in 0..groups.len() {
-                let name = format!("c{}", 1 + covariates.len() + j);
-                grp.push(
-                    r.try_get::<Option<String>, _>(name.as_str())
-                        .map_err(|e| self.sql(e))?,
-                );
-            }
-            out.push(SeriesRow {
-                site: r.try_get("site").map_err(|e| self.sql(e))?,
-                year: r.try_get("year").map_err(|e| self.sql(e))?,
-                visit: r.try_get("visit").map_err(|e| self.sql(e))?,
-                response,
-                covariates: cov,
-                groups: grp,
-            });
         }
+        out.sort_by(|a, b| (&a.site, a.year, &a.visit).cmp(&(&b.site, b.year, &b.visit)));
         Ok(out)
     }
 }
