@@ -451,7 +451,14 @@ fn series_rows_and_watermarks_follow_the_current_values() {
 fn series_rows_round_trip_every_double_exactly() {
     use vigil_service::store::Store;
     let net = Network::initialised();
-    let values: [f64; 6] = [0.1 + 0.2, 1.0 / 3.0, 123_456_789.123_456_79, 1e-300, -2.5e300, 7.0];
+    let values: [f64; 6] = [
+        0.1 + 0.2,
+        1.0 / 3.0,
+        123_456_789.123_456_79,
+        1e-300,
+        -2.5e300,
+        7.0,
+    ];
     let mut csv = String::from("lake,season,visit,chl_ug_l\n");
     for (i, v) in values.iter().enumerate() {
         // The visit label `v"0]\` needs JSON escaping twice over.
@@ -459,14 +466,23 @@ fn series_rows_round_trip_every_double_exactly() {
     }
     net.drop_file("exact.csv", csv);
     net.ok(&["ingest"]);
-    let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().expect("runtime");
+    let rt = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .expect("runtime");
     let rows = rt.block_on(async {
         let store = Store::open(&net.db_path()).await.expect("open");
-        let rows = store.load_series_rows("chl_ug_l", &[], &[]).await.expect("rows");
+        let rows = store
+            .load_series_rows("chl_ug_l", &[], &[])
+            .await
+            .expect("rows");
         store.close().await;
         rows
     });
     let got: Vec<f64> = rows.iter().map(|r| r.response.unwrap()).collect();
-    assert_eq!(got.iter().map(|v| v.to_bits()).collect::<Vec<_>>(), values.iter().map(|v| v.to_bits()).collect::<Vec<_>>());
+    assert_eq!(
+        got.iter().map(|v| v.to_bits()).collect::<Vec<_>>(),
+        values.iter().map(|v| v.to_bits()).collect::<Vec<_>>()
+    );
     assert_eq!(rows[0].visit, "v\"0]\\");
 }

@@ -89,7 +89,9 @@ impl Store {
             let site: String = r.try_get("site").map_err(|e| self.sql(e))?;
             let text: String = r.try_get("cells").map_err(|e| self.sql(e))?;
             let mut cells: Vec<Cell> = serde_json::from_str(&text).map_err(|e| {
-                self.sql(sqlx::Error::Decode(format!("values of site {site:?}: {e}").into()))
+                self.sql(sqlx::Error::Decode(
+                    format!("values of site {site:?}: {e}").into(),
+                ))
             })?;
             cells.sort_by(|a, b| (a.0, &a.1).cmp(&(b.0, &b.1)));
             let mut i = 0;
@@ -107,7 +109,9 @@ impl Store {
                     let (_, _, column, num_text, label) = &cells[i];
                     let num = match num_text {
                         Some(t) => Some(t.parse::<f64>().map_err(|e| {
-                            self.sql(sqlx::Error::Decode(format!("value {t:?} of site {site:?}: {e}").into()))
+                            self.sql(sqlx::Error::Decode(
+                                format!("value {t:?} of site {site:?}: {e}").into(),
+                            ))
                         })?),
                         None => None,
                     };
