@@ -48,4 +48,5 @@ pub use forecast::{
     forecast, forecast_baseline, mixture_quantile, ForecastBasis, ForecastRow, ForecastTarget,
     Scenario, Transform,
 };
+pub mod calibration;
 pub mod sbc;
