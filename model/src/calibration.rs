@@ -137,7 +137,7 @@ pub fn calibration_replicate(
     let last = spec.years - 1;
     let mut builder = DataBuilder::new(vec!["x".into()], vec![]);
     let mut held = Vec::new();
-    for s in 0..spec.sites {
+    for (s, a) in site.iter().enumerate() {
         let new_site = s < n_new;
         for (t, b) in year.iter().enumerate() {
             let hold_one = !new_site && t < last && rng.gen::<f64>() < spec.holdout_visits;
