@@ -143,8 +143,7 @@ pub fn calibration_replicate(
             let hold_one = !new_site && t < last && rng.gen::<f64>() < spec.holdout_visits;
             for v in 0..spec.visits {
                 let x = 10.0 + 2.0 * z(&mut rng);
-                let y =
-                    spec.intercept + spec.coef * x + site[s] + b + spec.sd_residual * z(&mut rng);
+                let y = spec.intercept + spec.coef * x + a + b + spec.sd_residual * z(&mut rng);
                 let target = match (new_site, t == last) {
                     (false, false) if hold_one && v == 0 => Some(0),
                     (false, false) => None,
