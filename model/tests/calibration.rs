@@ -94,7 +94,7 @@ fn forecasts_cover_like_the_true_model_and_the_partition_flips_the_widths() {
                 "{name}: too few held-out values for {}",
                 TARGETS[t].as_str()
             );
-            for l in 0..LEVELS.len() {
+            for (l, level) in LEVELS.iter().enumerate() {
                 let (fit, truth) = c.rate(l);
                 // Overconfidence is the failure to catch: the fitted intervals must not cover
                 // clearly less than the true model's on the same values. (They may cover
