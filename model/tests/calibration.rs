@@ -104,7 +104,7 @@ fn forecasts_cover_like_the_true_model_and_the_partition_flips_the_widths() {
                     fit > truth - 0.08,
                     "{name} {} at {}: fit {fit:.3} vs truth {truth:.3}\n{report}",
                     TARGETS[t].as_str(),
-                    LEVELS[l]
+                    level
                 );
             }
             // Known-year targets have many nearly independent held-out values: their 80%
