@@ -5,9 +5,8 @@ use nalgebra::{DMatrix, DVector};
 use vigil_model::simulate::{simulate, NetworkSpec};
 use vigil_model::*;
 
-/// A small crossed design with a covariate and one further grouping factor.
-fn small_design() -> Data {
-    let spec = NetworkSpec {
+fn small_spec() -> NetworkSpec {
+    NetworkSpec {
         sites: 9,
         years: 6,
         visits: 2,
@@ -15,8 +14,12 @@ fn small_design() -> Data {
         covariates: 1,
         seed: 11,
         ..Default::default()
-    };
-    let (rows, _) = vigil_model::simulate::simulate_rows(&spec);
+    }
+}
+
+/// A small crossed design with a covariate and one further grouping factor.
+fn small_design() -> Data {
+    let (rows, _) = vigil_model::simulate::simulate_rows(&small_spec());
     let mut b = DataBuilder::new(vec!["x1".into()], vec!["crew".into()]);
     for (i, r) in rows.iter().enumerate() {
         let crew = ["north", "south", "east"][i % 3];
@@ -64,16 +67,7 @@ fn dense_design(
 fn conditional_of_location_parameters_equals_a_dense_solve() {
     let data = small_design();
     // Rebuild the raw rows in the same way as `small_design`.
-    let spec = NetworkSpec {
-        sites: 9,
-        years: 6,
-        visits: 2,
-        missing: 0.25,
-        covariates: 1,
-        seed: 11,
-        ..Default::default()
-    };
-    let (raw, _) = vigil_model::simulate::simulate_rows(&spec);
+    let (raw, _) = vigil_model::simulate::simulate_rows(&small_spec());
     let rows: Vec<(String, i32, String, f64, f64)> = raw
         .iter()
         .enumerate()
@@ -163,7 +157,7 @@ fn conditional_of_location_parameters_equals_a_dense_solve() {
 /// `log|V| + log|X'V^-1 X| + r'V^-1 r + (n-p) log 2pi` (DESIGN §5) at the estimate.
 #[test]
 fn reml_criterion_equals_the_dense_formula() {
-    let (data, _) = simulate(&NetworkSpec {
+    let spec = NetworkSpec {
         sites: 12,
         years: 7,
         visits: 1,
@@ -171,17 +165,10 @@ fn reml_criterion_equals_the_dense_formula() {
         covariates: 2,
         seed: 3,
         ..Default::default()
-    });
+    };
+    let (data, _) = simulate(&spec);
     let fit = fit_point(&data, Method::Reml).unwrap();
-    let (rows, _) = vigil_model::simulate::simulate_rows(&NetworkSpec {
-        sites: 12,
-        years: 7,
-        visits: 1,
-        missing: 0.2,
-        covariates: 2,
-        seed: 3,
-        ..Default::default()
-    });
+    let (rows, _) = vigil_model::simulate::simulate_rows(&spec);
     let n = rows.len();
     let sd = |name: &str| fit.sd_of(name).unwrap();
     let mut v = DMatrix::from_diagonal_element(n, n, sd("residual").powi(2));

@@ -27,61 +27,41 @@ fn settings(threads: usize) -> SamplerSettings {
     }
 }
 
+fn fit(data: &Data, settings: &SamplerSettings, warm: Option<&WarmStart>) -> Posterior {
+    sample(
+        data,
+        &Priors::default(),
+        settings,
+        warm,
+        Controls::default(),
+    )
+    .unwrap()
+}
+
 #[test]
 fn draws_are_identical_for_a_seed_whatever_the_thread_count() {
     let data = network();
-    let one = sample(
-        &data,
-        &Priors::default(),
-        &settings(1),
-        None,
-        Controls::default(),
-    )
-    .unwrap();
-    let four = sample(
-        &data,
-        &Priors::default(),
-        &settings(4),
-        None,
-        Controls::default(),
-    )
-    .unwrap();
+    let one = fit(&data, &settings(1), None);
+    let four = fit(&data, &settings(4), None);
     assert_eq!(one.sd_draws, four.sd_draws);
     assert_eq!(one.coef_draws, four.coef_draws);
     assert_eq!(one.effects.site, four.effects.site);
-    let other_seed = sample(
+    let other_seed = fit(
         &data,
-        &Priors::default(),
         &SamplerSettings {
             seed: 100,
             ..settings(1)
         },
         None,
-        Controls::default(),
-    )
-    .unwrap();
+    );
     assert_ne!(one.sd_draws, other_seed.sd_draws);
 }
 
 #[test]
 fn a_warm_start_uses_the_short_warmup_and_agrees_with_a_cold_fit() {
     let data = network();
-    let cold = sample(
-        &data,
-        &Priors::default(),
-        &settings(0),
-        None,
-        Controls::default(),
-    )
-    .unwrap();
-    let warm = sample(
-        &data,
-        &Priors::default(),
-        &settings(0),
-        Some(&cold.warm_start),
-        Controls::default(),
-    )
-    .unwrap();
+    let cold = fit(&data, &settings(0), None);
+    let warm = fit(&data, &settings(0), Some(&cold.warm_start));
     assert!(!cold.diagnostics.warm_started && warm.diagnostics.warm_started);
     assert_eq!(warm.diagnostics.warmup, settings(0).warm_warmup);
     assert!(warm.diagnostics.max_rhat < 1.02, "{:?}", warm.diagnostics);
@@ -99,14 +79,7 @@ fn a_warm_start_uses_the_short_warmup_and_agrees_with_a_cold_fit() {
     // A warm state for other components (a new grouping factor) is ignored, not misused.
     let mut foreign = cold.warm_start.clone();
     foreign.sd_names.push("crew".into());
-    let fallback = sample(
-        &data,
-        &Priors::default(),
-        &settings(0),
-        Some(&foreign),
-        Controls::default(),
-    )
-    .unwrap();
+    let fallback = fit(&data, &settings(0), Some(&foreign));
     assert!(!fallback.diagnostics.warm_started);
 }
 
@@ -125,14 +98,7 @@ fn a_raised_cancel_flag_stops_the_fit() {
 #[test]
 fn forecasts_cover_the_four_targets_with_ordered_intervals_and_shares_summing_to_one() {
     let data = network();
-    let post = sample(
-        &data,
-        &Priors::default(),
-        &settings(0),
-        None,
-        Controls::default(),
-    )
-    .unwrap();
+    let post = fit(&data, &settings(0), None);
     for transform in [Transform::None, Transform::Log] {
         let rows = forecast_baseline(&post.forecast_basis(usize::MAX), transform);
         let count = |t: ForecastTarget| rows.iter().filter(|r| r.target == t).count();
