@@ -98,12 +98,18 @@ JOIN sites s ON s.site_id = o.site_id
 WHERE o.superseded_by IS NULL;
 
 -- Scheduled or manual runs of the pipeline.
+-- trigger: 'schedule' (a tick of `serve`), 'catch-up' (`serve` at start, for a tick missed
+-- while it was down), 'manual' (`run-once`), 'demo'.
+-- status: 'running' until it ends; 'succeeded'; 'partial' (a file or series had a
+-- problem); 'failed' (the run itself failed); 'abandoned' (stopped by a shutdown request,
+-- or found still 'running' after its process died); 'skipped' (a tick of `serve` that
+-- came while the previous run was still going: no work was done, the message says why).
 CREATE TABLE runs (
     run_id      INTEGER PRIMARY KEY,
-    trigger     TEXT NOT NULL,          -- 'schedule', 'manual', 'demo'
+    trigger     TEXT NOT NULL,
     started_at  TEXT NOT NULL,
     finished_at TEXT,
-    status      TEXT NOT NULL CHECK (status IN ('running', 'succeeded', 'partial', 'failed', 'abandoned')),
+    status      TEXT NOT NULL CHECK (status IN ('running', 'succeeded', 'partial', 'failed', 'abandoned', 'skipped')),
     message     TEXT
 );
 
@@ -255,6 +261,23 @@ CREATE TABLE instance_lease (
     host         TEXT    NOT NULL,
     acquired_at  TEXT    NOT NULL,
     heartbeat_at TEXT    NOT NULL
+);
+
+-- How the lease changed hands: 'acquired' (it was free), 'taken_over' (the previous
+-- holder was stale: its process is gone or its heartbeat stopped), 'released'. The
+-- previous_* columns describe the stale holder of a takeover.
+CREATE TABLE lease_events (
+    event_id              INTEGER PRIMARY KEY,
+    at                    TEXT    NOT NULL,
+    event                 TEXT    NOT NULL CHECK (event IN ('acquired', 'taken_over', 'released')),
+    holder                TEXT    NOT NULL,
+    pid                   INTEGER NOT NULL,
+    host                  TEXT    NOT NULL,
+    previous_holder       TEXT,
+    previous_pid          INTEGER,
+    previous_host         TEXT,
+    previous_heartbeat_at TEXT,
+    reason                TEXT
 );
 
 CREATE VIEW latest_fits AS

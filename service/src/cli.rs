@@ -59,6 +59,8 @@ pub enum Command {
     },
     /// One scheduled run: ingest the inbox, refit what changed, write forecasts
     RunOnce,
+    /// Run on the configured schedule until SIGTERM/SIGINT (one instance per database)
+    Serve,
     /// Show recent runs and batches, and the latest version of each series
     Status {
         /// Print one JSON document instead of text
@@ -96,7 +98,14 @@ pub fn run() -> ExitCode {
             };
         }
     };
-    telemetry::init(cli.log_format);
+    // The service's journal gets one line per run and lease change; commands a person
+    // runs stay quiet unless something needs attention.
+    let level = if matches!(cli.command, Command::Serve) {
+        "warn,vigil_service=info"
+    } else {
+        "warn"
+    };
+    telemetry::init_with(cli.log_format, level);
     let runtime = match tokio::runtime::Builder::new_multi_thread()
         .worker_threads(2)
         .enable_all()
@@ -108,7 +117,10 @@ pub fn run() -> ExitCode {
             return ExitCode::FAILURE;
         }
     };
-    match runtime.block_on(dispatch(cli)) {
+    let outcome = runtime.block_on(dispatch(cli));
+    // A fit thread still winding down after a shutdown request must not hold the exit.
+    runtime.shutdown_timeout(std::time::Duration::from_secs(1));
+    match outcome {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) => {
             let reason = format!("{e:#}").replace('\n', " ");
@@ -135,6 +147,7 @@ pub async fn dispatch(cli: Cli) -> anyhow::Result<()> {
         } => commands::refit::run(&ctx, series, cold, force).await,
         Command::Forecast { series } => commands::forecast::run(&ctx, series).await,
         Command::RunOnce => commands::run_once::run(&ctx).await,
+        Command::Serve => commands::serve::run(&ctx).await,
         Command::Reml { series, json } => commands::reml::run(&ctx, &series, json).await,
         Command::Init => commands::init::run(&ctx).await,
         Command::Ingest { files } => commands::ingest::run(&ctx, &files).await,

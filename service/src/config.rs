@@ -212,12 +212,14 @@ impl Default for RawFeed {
 struct RawSchedule {
     cron: String,
     timezone: String,
+    catch_up: bool,
 }
 impl Default for RawSchedule {
     fn default() -> Self {
         RawSchedule {
             cron: "30 2 * * *".into(),
             timezone: "UTC".into(),
+            catch_up: true,
         }
     }
 }
@@ -336,8 +338,9 @@ impl Config {
             archive: resolve("feed.archive", &raw.feed.archive)?,
             quarantine: resolve("feed.quarantine", &raw.feed.quarantine)?,
         };
-        let schedule = Schedule::parse(&raw.schedule.cron, &raw.schedule.timezone)
+        let mut schedule = Schedule::parse(&raw.schedule.cron, &raw.schedule.timezone)
             .map_err(|e| invalid(e.key, e.message))?;
+        schedule.catch_up = raw.schedule.catch_up;
 
         if raw.series.is_empty() {
             return Err(invalid(
@@ -737,6 +740,16 @@ draws = 500
         assert!(m.starts_with("vigil.toml: schedule.cron:"), "{m}");
         let m = message(&GOOD.replace("Europe/Helsinki", "Mars/Olympus"));
         assert!(m.starts_with("vigil.toml: schedule.timezone:"), "{m}");
+        assert!(parse(GOOD).unwrap().schedule.catch_up);
+        let off = GOOD.replace(
+            "timezone = \"Europe/Helsinki\"",
+            "timezone = \"UTC\"\ncatch_up = false",
+        );
+        assert!(!parse(&off).unwrap().schedule.catch_up);
+        let m = message(&off.replace("catch_up = false", "catch_up = \"yes\""));
+        assert!(m.starts_with("vigil.toml: schedule.catch_up"), "{m}");
+        let m = message(&off.replace("catch_up = false", "catchup = false"));
+        assert!(m.contains("catchup"), "{m}");
     }
 
     #[test]

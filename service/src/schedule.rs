@@ -16,6 +16,9 @@ use chrono_tz::Tz;
 pub struct Schedule {
     pub cron: String,
     pub timezone: Tz,
+    /// Whether `serve` makes one catch-up run at start when a tick was missed while it was
+    /// down (`[schedule] catch_up`, default true).
+    pub catch_up: bool,
     parsed: cron::Schedule,
 }
 
@@ -59,8 +62,26 @@ impl Schedule {
         Ok(Schedule {
             cron: cron_text.to_string(),
             timezone,
+            catch_up: true,
             parsed,
         })
+    }
+
+    /// The scheduled tick missed since `last_run` (when the newest finished run started),
+    /// if one is due by `now`. With no run recorded yet, nothing was missed.
+    pub fn missed_since(
+        &self,
+        last_run: Option<DateTime<Utc>>,
+        now: DateTime<Utc>,
+    ) -> Option<DateTime<Utc>> {
+        let tick = self.next_after(last_run?)?;
+        (tick <= now).then_some(tick)
+    }
+
+    /// `t` as wall-clock time in the schedule's time zone (RFC 3339 with its offset).
+    pub fn local(&self, t: DateTime<Utc>) -> String {
+        t.with_timezone(&self.timezone)
+            .to_rfc3339_opts(chrono::SecondsFormat::Secs, false)
     }
 
     /// The first scheduled instant strictly after `now`.
@@ -146,6 +167,23 @@ mod tests {
         // Helsinki is UTC+2 in winter.
         let t = next("30 2 * * *", "Europe/Helsinki", now);
         assert_eq!((t.hour(), t.minute()), (0, 30));
+    }
+
+    #[test]
+    fn a_tick_is_missed_only_when_it_fell_between_the_last_run_and_now() {
+        let s = Schedule::parse("30 2 * * *", "UTC").unwrap();
+        let last = Utc.with_ymd_and_hms(2026, 3, 1, 2, 30, 4).unwrap();
+        let same_day = Utc.with_ymd_and_hms(2026, 3, 1, 23, 0, 0).unwrap();
+        assert_eq!(s.missed_since(Some(last), same_day), None);
+        let after_tick = Utc.with_ymd_and_hms(2026, 3, 3, 9, 0, 0).unwrap();
+        assert_eq!(
+            s.missed_since(Some(last), after_tick),
+            Some(Utc.with_ymd_and_hms(2026, 3, 2, 2, 30, 0).unwrap())
+        );
+        assert_eq!(s.missed_since(None, after_tick), None);
+        let t = Utc.with_ymd_and_hms(2026, 1, 10, 0, 30, 0).unwrap();
+        let helsinki = Schedule::parse("30 2 * * *", "Europe/Helsinki").unwrap();
+        assert_eq!(helsinki.local(t), "2026-01-10T02:30:00+02:00");
     }
 
     #[test]

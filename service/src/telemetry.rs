@@ -2,7 +2,9 @@
 //!
 //! Human-readable text when stderr is a terminal, JSON lines otherwise (or when asked with
 //! `--log-format json`), so a scheduler's journal gets machine-readable records. Quiet by
-//! default (warnings and errors only); `RUST_LOG` selects more, e.g. `RUST_LOG=vigil_service=info`.
+//! default (warnings and errors only; `serve` adds one info line per run and lease change);
+//! `RUST_LOG` selects more, e.g. `RUST_LOG=vigil_service=info`. Progress bars are not logs:
+//! see `progress`.
 
 use std::io::IsTerminal;
 
@@ -15,10 +17,17 @@ pub enum LogFormat {
     Json,
 }
 
-/// Install the subscriber. Safe to call more than once (later calls do nothing), which
-/// keeps tests that run the CLI in-process quiet and correct.
+/// Install the subscriber (warnings and errors unless `RUST_LOG` is set). Safe to call
+/// more than once (later calls do nothing), which keeps tests that run the CLI in-process
+/// quiet and correct.
 pub fn init(format: Option<LogFormat>) {
-    let filter = EnvFilter::try_from_default_env().unwrap_or_else(|_| EnvFilter::new("warn"));
+    init_with(format, "warn");
+}
+
+/// [`init`] with another filter for when `RUST_LOG` is not set.
+pub fn init_with(format: Option<LogFormat>, default_filter: &str) {
+    let filter =
+        EnvFilter::try_from_default_env().unwrap_or_else(|_| EnvFilter::new(default_filter));
     let format = format.unwrap_or(if std::io::stderr().is_terminal() {
         LogFormat::Text
     } else {

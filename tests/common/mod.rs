@@ -247,3 +247,50 @@ pub fn line_for<'a>(stdout: &'a str, name: &str) -> &'a str {
 pub fn assert_exists(p: &Path) {
     assert!(p.exists(), "{} should exist", p.display());
 }
+
+/// Start the real binary in the background (`--config` pointing at this network). Its
+/// stdout is discarded and its stderr goes to `log` in the network's folder, so a chatty
+/// service can never block on a full pipe.
+pub fn spawn_logged(net: &Network, args: &[&str], log: &str) -> std::process::Child {
+    let err = std::fs::File::create(net.path(log)).expect("log file");
+    Command::new(env!("CARGO_BIN_EXE_vigil"))
+        .arg("--config")
+        .arg(net.config_path())
+        .args(args)
+        .current_dir(net.dir.path())
+        .env_remove("RUST_LOG")
+        .env_remove("VIGIL_CONFIG")
+        .stdin(std::process::Stdio::null())
+        .stdout(std::process::Stdio::null())
+        .stderr(err)
+        .spawn()
+        .expect("spawn vigil")
+}
+
+/// Poll `cond` every 50 ms until it holds or `limit` passes; true when it held.
+pub fn wait_until(limit: std::time::Duration, mut cond: impl FnMut() -> bool) -> bool {
+    let start = std::time::Instant::now();
+    while start.elapsed() < limit {
+        if cond() {
+            return true;
+        }
+        std::thread::sleep(std::time::Duration::from_millis(50));
+    }
+    cond()
+}
+
+/// The pid of a process that has exited and been reaped: no process has it now.
+pub fn dead_pid() -> u32 {
+    let mut child = Command::new("true").spawn().expect("spawn true");
+    let pid = child.id();
+    child.wait().expect("wait for true");
+    pid
+}
+
+/// This machine's host name, as vigil records it in the lease.
+pub fn host_name() -> String {
+    std::fs::read_to_string("/proc/sys/kernel/hostname")
+        .expect("read the host name")
+        .trim()
+        .to_string()
+}

@@ -8,6 +8,7 @@ pub mod init;
 pub mod refit;
 pub mod reml;
 pub mod run_once;
+pub mod serve;
 pub mod status;
 
 use std::path::Path;

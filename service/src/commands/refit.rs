@@ -1,8 +1,14 @@
 //! `vigil refit [--series NAME] [--cold] [--force]`: refit series whose data changed,
 //! publish those that pass the gate, and write their forecasts.
 
+use std::sync::atomic::AtomicBool;
+use std::sync::Arc;
+
 use super::Context;
+use crate::lease::Lease;
 use crate::pipeline::{refit, RefitOptions, SeriesOutcome, SeriesReport};
+use crate::progress::FitProgress;
+use crate::signals::cancel_on_shutdown;
 
 /// One line per series, for people.
 pub fn describe(r: &SeriesReport) -> String {
@@ -51,13 +57,21 @@ pub async fn run(
     force: bool,
 ) -> anyhow::Result<()> {
     let store = ctx.open_store().await?;
+    let cancel = Arc::new(AtomicBool::new(false));
+    let watcher = cancel_on_shutdown(cancel.clone())?;
+    let lease = Lease::acquire(&store, cancel.clone()).await?;
     let opts = RefitOptions {
         series,
         cold,
         force,
+        cancel,
+        progress: FitProgress::on_terminal(),
         ..RefitOptions::default()
     };
-    let reports = refit(&store, &ctx.config, &opts).await?;
+    let outcome = refit(&store, &ctx.config, &opts).await;
+    watcher.abort();
+    lease.release().await?;
+    let reports = outcome?;
     for r in &reports {
         println!("{}", describe(r));
     }

@@ -1,23 +1,33 @@
-//! `vigil run-once`: one scheduled run (ingest, refit, forecast). Exits non-zero when a
-//! file could not be ingested or a series failed or was rejected, so that cron, systemd
-//! or a cluster scheduler can alert.
+//! `vigil run-once`: one scheduled run (ingest, refit, forecast) under the lease. Exits
+//! non-zero when a file could not be ingested, a series failed or was rejected, or the run
+//! was cut short, so that cron, systemd or a cluster scheduler can alert.
 
 use std::sync::atomic::AtomicBool;
 use std::sync::Arc;
 
 use super::Context;
 use crate::commands::refit::describe;
-use crate::pipeline::run::run_once;
+use crate::lease::Lease;
+use crate::pipeline::run::run_once_with_progress;
+use crate::progress::FitProgress;
+use crate::signals::cancel_on_shutdown;
 
 pub async fn run(ctx: &Context) -> anyhow::Result<()> {
     let store = ctx.open_store().await?;
-    let report = run_once(
+    let cancel = Arc::new(AtomicBool::new(false));
+    let watcher = cancel_on_shutdown(cancel.clone())?;
+    let lease = Lease::acquire(&store, cancel.clone()).await?;
+    let outcome = run_once_with_progress(
         &store,
         &ctx.config,
         "manual",
-        Arc::new(AtomicBool::new(false)),
+        cancel,
+        FitProgress::on_terminal(),
     )
-    .await?;
+    .await;
+    watcher.abort();
+    lease.release().await?;
+    let report = outcome?;
     for f in &report.files {
         println!("{f}");
     }
@@ -29,7 +39,7 @@ pub async fn run(ctx: &Context) -> anyhow::Result<()> {
     }
     println!("run {}: {}", report.run_id, report.status);
     store.close().await;
-    if report.has_problems() {
+    if report.has_problems() || report.status != "succeeded" {
         anyhow::bail!(
             "run {} finished {}: see the lines above and `vigil status`",
             report.run_id,

@@ -4,7 +4,8 @@ use serde::Serialize;
 
 use super::Context;
 use crate::ingest;
-use crate::store::{BatchSummary, FitSummary, RunSummary};
+use crate::lease::{own_claim, stale_reason};
+use crate::store::{BatchSummary, FitSummary, LeaseHolder, RunSummary};
 
 /// How many recent runs and batches are shown.
 const RECENT: u32 = 10;
@@ -12,6 +13,9 @@ const RECENT: u32 = 10;
 /// The `status --json` document (fields documented in README.md).
 #[derive(Debug, Serialize)]
 pub struct StatusReport {
+    /// What needs a person: rejected or failed latest fit attempts, a last run that did
+    /// not succeed, a stale lease. Empty when all is well.
+    pub attention: Vec<Attention>,
     pub config: String,
     pub database: String,
     pub schema_version: i64,
@@ -21,13 +25,42 @@ pub struct StatusReport {
     pub series_without_fit: Vec<String>,
     pub runs: Vec<RunSummary>,
     pub batches: Vec<BatchSummary>,
+    /// The process holding the single-instance lease, or null.
+    pub lease: Option<LeaseStatus>,
+}
+
+/// One thing that needs a person.
+#[derive(Debug, Serialize)]
+pub struct Attention {
+    /// `fit` (the latest attempt of a series was rejected or failed), `run` (the last run
+    /// did not succeed) or `lease` (the holder looks stale).
+    pub kind: &'static str,
+    pub series: Option<String>,
+    pub fit_id: Option<i64>,
+    pub run_id: Option<i64>,
+    /// The fit's or run's status (`rejected`, `failed`, `partial`, `abandoned`), or `stale`.
+    pub status: String,
+    pub at: String,
+    pub message: String,
+}
+
+#[derive(Debug, Serialize)]
+pub struct LeaseStatus {
+    #[serde(flatten)]
+    pub holder: LeaseHolder,
+    /// Why the holder counts as stale (the next start takes the lease over), or null.
+    pub stale: Option<String>,
 }
 
 #[derive(Debug, Serialize)]
 pub struct ScheduleStatus {
     pub cron: String,
     pub timezone: String,
+    /// UTC.
     pub next_run: Option<String>,
+    /// The same instant in the schedule's time zone, with its offset.
+    pub next_run_local: Option<String>,
+    pub catch_up: bool,
 }
 
 #[derive(Debug, Serialize)]
@@ -61,17 +94,23 @@ pub async fn run(ctx: &Context, json: bool) -> anyhow::Result<()> {
             data_changed,
         });
     }
+    let runs = store.recent_runs(RECENT).await?;
+    let lease = store.lease_holder().await?.map(|holder| {
+        let stale = stale_reason(&holder, &own_claim(), chrono::Utc::now());
+        LeaseStatus { holder, stale }
+    });
+    let next_run = config.schedule.next_after(chrono::Utc::now());
     let report = StatusReport {
+        attention: attention(&series, &runs, lease.as_ref()),
         config: config.path.display().to_string(),
         database: config.database.display().to_string(),
         schema_version: store.schema_version().await?,
         schedule: ScheduleStatus {
             cron: config.schedule.cron.clone(),
             timezone: config.schedule.timezone.name().to_string(),
-            next_run: config
-                .schedule
-                .next_after(chrono::Utc::now())
-                .map(|t| t.to_rfc3339_opts(chrono::SecondsFormat::Secs, true)),
+            next_run: next_run.map(|t| t.to_rfc3339_opts(chrono::SecondsFormat::Secs, true)),
+            next_run_local: next_run.map(|t| config.schedule.local(t)),
+            catch_up: config.schedule.catch_up,
         },
         inbox_waiting: ingest::inbox_files(&config.feed.inbox)
             .ok()
@@ -82,8 +121,9 @@ pub async fn run(ctx: &Context, json: bool) -> anyhow::Result<()> {
             .map(|s| s.name.clone())
             .collect(),
         series,
-        runs: store.recent_runs(RECENT).await?,
+        runs,
         batches: store.recent_batches(RECENT).await?,
+        lease,
     };
     store.close().await;
     if json {
@@ -92,6 +132,74 @@ pub async fn run(ctx: &Context, json: bool) -> anyhow::Result<()> {
         print!("{}", render_text(&report));
     }
     Ok(())
+}
+
+fn attention(
+    series: &[SeriesStatus],
+    runs: &[RunSummary],
+    lease: Option<&LeaseStatus>,
+) -> Vec<Attention> {
+    let mut out = Vec::new();
+    for s in series {
+        let Some(f) = &s.latest_fit else { continue };
+        if f.status != "rejected" && f.status != "failed" {
+            continue;
+        }
+        let serving = s
+            .latest_published
+            .as_ref()
+            .map_or("no version is published yet".to_string(), |p| {
+                format!("version {} (fit {}) keeps serving", p.version, p.fit_id)
+            });
+        out.push(Attention {
+            kind: "fit",
+            series: Some(s.name.clone()),
+            fit_id: Some(f.fit_id),
+            run_id: None,
+            status: f.status.clone(),
+            at: f.created_at.clone(),
+            message: format!(
+                "{}; {serving}",
+                f.message.as_deref().unwrap_or("no message recorded")
+            ),
+        });
+    }
+    // Skipped ticks did no work; the newest run that did decides.
+    if let Some(r) = runs.iter().find(|r| r.status != "skipped") {
+        if matches!(r.status.as_str(), "failed" | "partial" | "abandoned") {
+            out.push(Attention {
+                kind: "run",
+                series: None,
+                fit_id: None,
+                run_id: Some(r.run_id),
+                status: r.status.clone(),
+                at: r
+                    .finished_at
+                    .clone()
+                    .unwrap_or_else(|| r.started_at.clone()),
+                message: r.message.clone().unwrap_or_default(),
+            });
+        }
+    }
+    if let Some(LeaseStatus {
+        holder,
+        stale: Some(why),
+    }) = lease
+    {
+        out.push(Attention {
+            kind: "lease",
+            series: None,
+            fit_id: None,
+            run_id: None,
+            status: "stale".into(),
+            at: holder.heartbeat_at.clone(),
+            message: format!(
+                "pid {} on {} holds the lease but {why}; the next serve, run-once or refit takes it over",
+                holder.pid, holder.host
+            ),
+        });
+    }
+    out
 }
 
 fn fit_line(f: &FitSummary) -> String {
@@ -114,6 +222,23 @@ fn fit_line(f: &FitSummary) -> String {
 fn render_text(r: &StatusReport) -> String {
     use std::fmt::Write as _;
     let mut out = String::new();
+    if !r.attention.is_empty() {
+        let _ = writeln!(out, "ATTENTION");
+        for a in &r.attention {
+            let what = match (a.kind, &a.series, a.fit_id, a.run_id) {
+                ("fit", Some(s), Some(f), _) => {
+                    format!(
+                        "{s}: latest fit attempt {} (fit {f})",
+                        a.status.to_uppercase()
+                    )
+                }
+                ("run", _, _, Some(id)) => format!("run {id}: {}", a.status.to_uppercase()),
+                _ => format!("lease: {}", a.status.to_uppercase()),
+            };
+            let _ = writeln!(out, "  {what} at {}: {}", a.at, a.message);
+        }
+        let _ = writeln!(out);
+    }
     let _ = writeln!(
         out,
         "database   {} (schema version {})",
@@ -121,11 +246,39 @@ fn render_text(r: &StatusReport) -> String {
     );
     let _ = writeln!(
         out,
-        "schedule   \"{}\" {}; next run {}",
+        "schedule   \"{}\" {}; next run {}{}",
         r.schedule.cron,
         r.schedule.timezone,
-        r.schedule.next_run.as_deref().unwrap_or("never")
+        r.schedule.next_run_local.as_deref().unwrap_or("never"),
+        if r.schedule.catch_up {
+            ""
+        } else {
+            " (no catch-up after downtime)"
+        }
     );
+    match &r.lease {
+        Some(l) => {
+            let _ = writeln!(
+                out,
+                "lease      held by pid {} on {} (holder {}, since {}, last heartbeat {}){}",
+                l.holder.pid,
+                l.holder.host,
+                l.holder.holder,
+                l.holder.acquired_at,
+                l.holder.heartbeat_at,
+                l.stale
+                    .as_deref()
+                    .map(|w| format!("; STALE: {w}"))
+                    .unwrap_or_default()
+            );
+        }
+        None => {
+            let _ = writeln!(
+                out,
+                "lease      free (no serve, run-once or refit is running)"
+            );
+        }
+    }
     if let Some(n) = r.inbox_waiting {
         let _ = writeln!(out, "inbox      {n} file(s) waiting");
     }

@@ -19,6 +19,7 @@ use vigil_model::{
 
 use super::{draws, input};
 use crate::config::{Config, LocationPrior, SdPrior, SeriesConfig};
+use crate::progress::{ChainBars, FitProgress};
 use crate::store::{NewExclusion, NewFit, Store};
 
 /// Joint effect draws per chain kept with a version for forecasts (the forecast basis).
@@ -37,6 +38,8 @@ pub struct RefitOptions {
     pub run_id: Option<i64>,
     /// Raised to stop at the next safe point.
     pub cancel: Arc<AtomicBool>,
+    /// Progress bars for the chains (a terminal only; never under `serve`).
+    pub progress: Option<FitProgress>,
 }
 
 /// The outcome of one series.
@@ -174,11 +177,19 @@ async fn run_sampler(
     settings: SamplerSettings,
     warm: Option<WarmStart>,
     cancel: Arc<AtomicBool>,
+    bars: Option<ChainBars>,
 ) -> anyhow::Result<Posterior> {
     let joined = tokio::task::spawn_blocking(move || {
+        let report = |p: vigil_model::Progress| {
+            if let Some(b) = &bars {
+                b.update(p);
+            }
+        };
         let controls = Controls {
             cancel: Some(&cancel),
-            progress: None,
+            progress: bars
+                .as_ref()
+                .map(|_| &report as &(dyn Fn(vigil_model::Progress) + Sync)),
         };
         sample(&data, &priors, &settings, warm.as_ref(), controls)
     })
@@ -303,6 +314,9 @@ async fn refit_series(
             settings.clone(),
             warm_state,
             opts.cancel.clone(),
+            opts.progress
+                .as_ref()
+                .map(|p| p.chains(&series.name, label, settings.chains)),
         )
         .await
         {

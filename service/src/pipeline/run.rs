@@ -9,13 +9,14 @@ use tracing::{info, info_span, warn, Instrument};
 use super::{refit, RefitOptions, SeriesOutcome, SeriesReport};
 use crate::config::Config;
 use crate::ingest;
+use crate::progress::FitProgress;
 use crate::store::Store;
 
 /// What a run did.
 #[derive(Debug, Clone, serde::Serialize)]
 pub struct RunReport {
     pub run_id: i64,
-    /// `succeeded`, `partial` or `failed`.
+    /// `succeeded`, `partial`, `failed` or `abandoned` (cut short by the cancel flag).
     pub status: String,
     pub files: Vec<String>,
     pub file_errors: Vec<String>,
@@ -40,6 +41,17 @@ pub async fn run_once(
     config: &Config,
     trigger: &str,
     cancel: Arc<AtomicBool>,
+) -> anyhow::Result<RunReport> {
+    run_once_with_progress(store, config, trigger, cancel, None).await
+}
+
+/// [`run_once`], drawing the fits' progress on a terminal.
+pub async fn run_once_with_progress(
+    store: &Store,
+    config: &Config,
+    trigger: &str,
+    cancel: Arc<AtomicBool>,
+    progress: Option<FitProgress>,
 ) -> anyhow::Result<RunReport> {
     let run_id = store.start_run(trigger).await?;
     let span = info_span!("run", run_id, trigger);
@@ -78,6 +90,7 @@ pub async fn run_once(
         let opts = RefitOptions {
             run_id: Some(run_id),
             cancel: cancel.clone(),
+            progress,
             ..RefitOptions::default()
         };
         let outcome = refit(store, config, &opts).await;
@@ -107,6 +120,15 @@ pub async fn run_once(
                 report.status = "failed".into();
                 format!("{e:#}")
             }
+        };
+        // A shutdown request (or a lost lease) stopped the run before every series was
+        // done: what was recorded is whole, the rest waits for the next run.
+        let cut_short = report.series.len() < config.series.len() || report.status == "failed";
+        let message = if cancel.load(std::sync::atomic::Ordering::Relaxed) && cut_short {
+            report.status = "abandoned".into();
+            format!("abandoned: stopped at a safe point by a shutdown request; {message}")
+        } else {
+            message
         };
         store.finish_run(run_id, &report.status, Some(&message)).await?;
         info!(status = %report.status, "{message}");

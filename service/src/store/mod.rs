@@ -9,6 +9,8 @@
 
 mod fits;
 mod ingest;
+mod lease;
+mod runs;
 mod series;
 mod status;
 
@@ -26,6 +28,7 @@ pub use fits::{NewExclusion, NewFit, PublishedFit, RecordedFit};
 pub use ingest::{
     BatchContent, BatchFile, BatchOutcome, BatchRecord, BatchValues, Cell, NewRejection, NewValue,
 };
+pub use lease::{LeaseAttempt, LeaseClaim, LeaseHolder};
 pub use series::SeriesRow;
 pub use status::{BatchSummary, FitSummary, RunSummary};
 

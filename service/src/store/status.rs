@@ -143,7 +143,7 @@ impl Store {
     /// The newest fit attempt of `series`, whatever its status.
     pub async fn latest_fit_attempt(&self, series: &str) -> Result<Option<FitSummary>, StoreError> {
         let sql = format!(
-            "SELECT {FIT_COLUMNS} FROM fits WHERE series = ?1 ORDER BY version DESC LIMIT 1"
+            "SELECT {FIT_COLUMNS} FROM fits WHERE series = ?1 ORDER BY fit_id DESC LIMIT 1"
         );
         self.one_fit(&sql, series).await
     }

@@ -1,0 +1,203 @@
+//! The single-instance lease (`instance_lease`, at most one row) and its history
+//! (`lease_events`).
+//!
+//! Claiming happens in one `BEGIN IMMEDIATE` transaction: it takes SQLite's write lock
+//! before reading the row, so two processes starting at the same moment cannot both see
+//! the lease free. Whether a holder is stale is the caller's judgement (process liveness
+//! is not the store's business); the store records the takeover with the stale holder's
+//! identity. In the same transaction, runs still marked `running` are marked
+//! `abandoned`: every writer of runs holds the lease, so whoever held it before is gone.
+
+use serde::Serialize;
+use sqlx::sqlite::SqliteRow;
+use sqlx::{Row, Sqlite, Transaction};
+
+use super::{now_utc, Store, StoreError};
+
+/// Who holds the lease, as stored.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+pub struct LeaseHolder {
+    pub holder: String,
+    pub pid: i64,
+    pub host: String,
+    pub acquired_at: String,
+    pub heartbeat_at: String,
+}
+
+/// The identity a process claims the lease with.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct LeaseClaim {
+    /// A random id per process.
+    pub holder: String,
+    pub pid: i64,
+    pub host: String,
+}
+
+/// What a claim came to.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum LeaseAttempt {
+    /// The lease is ours. `taken_over` names the stale holder it was taken from and why;
+    /// `abandoned_runs` are runs left `running` by a process that died.
+    Acquired {
+        taken_over: Option<(LeaseHolder, String)>,
+        abandoned_runs: Vec<i64>,
+    },
+    /// Someone else holds it and is not stale.
+    Held(LeaseHolder),
+}
+
+fn holder_from_row(r: &SqliteRow) -> Result<LeaseHolder, sqlx::Error> {
+    Ok(LeaseHolder {
+        holder: r.try_get("holder")?,
+        pid: r.try_get("pid")?,
+        host: r.try_get("host")?,
+        acquired_at: r.try_get("acquired_at")?,
+        heartbeat_at: r.try_get("heartbeat_at")?,
+    })
+}
+
+async fn current(tx: &mut Transaction<'_, Sqlite>) -> Result<Option<LeaseHolder>, sqlx::Error> {
+    let row = sqlx::query(
+        "SELECT holder, pid, host, acquired_at, heartbeat_at FROM instance_lease WHERE lease_id = 1",
+    )
+    .fetch_optional(&mut **tx)
+    .await?;
+    row.as_ref().map(holder_from_row).transpose()
+}
+
+async fn event(
+    tx: &mut Transaction<'_, Sqlite>,
+    kind: &str,
+    claim: &LeaseClaim,
+    previous: Option<&LeaseHolder>,
+    reason: Option<&str>,
+) -> Result<(), sqlx::Error> {
+    sqlx::query(
+        "INSERT INTO lease_events (at, event, holder, pid, host, previous_holder, previous_pid,
+                                   previous_host, previous_heartbeat_at, reason)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10)",
+    )
+    .bind(now_utc())
+    .bind(kind)
+    .bind(&claim.holder)
+    .bind(claim.pid)
+    .bind(&claim.host)
+    .bind(previous.map(|p| p.holder.as_str()))
+    .bind(previous.map(|p| p.pid))
+    .bind(previous.map(|p| p.host.as_str()))
+    .bind(previous.map(|p| p.heartbeat_at.as_str()))
+    .bind(reason)
+    .execute(&mut **tx)
+    .await?;
+    Ok(())
+}
+
+impl Store {
+    /// Claim the lease. `stale` is asked about a current holder other than `claim`: it
+    /// returns the reason the holder is stale (then the lease is taken over), or `None`
+    /// (then the claim is refused with the holder's identity).
+    pub async fn acquire_lease(
+        &self,
+        claim: &LeaseClaim,
+        stale: impl FnOnce(&LeaseHolder) -> Option<String>,
+    ) -> Result<LeaseAttempt, StoreError> {
+        let run = async {
+            let mut tx = self.pool.begin_with("BEGIN IMMEDIATE").await?;
+            let taken_over = match current(&mut tx).await? {
+                Some(h) if h.holder == claim.holder => None,
+                Some(h) => match stale(&h) {
+                    Some(reason) => Some((h, reason)),
+                    None => {
+                        tx.rollback().await?;
+                        return Ok(LeaseAttempt::Held(h));
+                    }
+                },
+                None => None,
+            };
+            let now = now_utc();
+            sqlx::query(
+                "INSERT OR REPLACE INTO instance_lease (lease_id, holder, pid, host, acquired_at, heartbeat_at)
+                 VALUES (1, ?1, ?2, ?3, ?4, ?4)",
+            )
+            .bind(&claim.holder)
+            .bind(claim.pid)
+            .bind(&claim.host)
+            .bind(&now)
+            .execute(&mut *tx)
+            .await?;
+            match &taken_over {
+                Some((h, reason)) => {
+                    event(&mut tx, "taken_over", claim, Some(h), Some(reason)).await?
+                }
+                None => event(&mut tx, "acquired", claim, None, None).await?,
+            }
+            let message = match &taken_over {
+                Some((h, reason)) => format!(
+                    "abandoned: its process stopped before the run finished (lease holder {} pid {} on {}: {reason})",
+                    h.holder, h.pid, h.host
+                ),
+                None => "abandoned: its process stopped before the run finished".to_string(),
+            };
+            let abandoned_runs: Vec<i64> = sqlx::query_scalar(
+                "UPDATE runs SET status = 'abandoned', finished_at = ?1,
+                        message = COALESCE(message || '; ', '') || ?2
+                 WHERE status = 'running' RETURNING run_id",
+            )
+            .bind(&now)
+            .bind(&message)
+            .fetch_all(&mut *tx)
+            .await?;
+            tx.commit().await?;
+            Ok(LeaseAttempt::Acquired {
+                taken_over,
+                abandoned_runs,
+            })
+        };
+        run.await.map_err(|e: sqlx::Error| self.sql(e))
+    }
+
+    /// Renew the heartbeat. False when the lease is no longer ours (it was taken over).
+    pub async fn heartbeat_lease(&self, holder: &str) -> Result<bool, StoreError> {
+        let done = sqlx::query(
+            "UPDATE instance_lease SET heartbeat_at = ?2 WHERE lease_id = 1 AND holder = ?1",
+        )
+        .bind(holder)
+        .bind(now_utc())
+        .execute(&self.pool)
+        .await
+        .map_err(|e| self.sql(e))?;
+        Ok(done.rows_affected() == 1)
+    }
+
+    /// Give the lease up (only if it is still ours) and record it.
+    pub async fn release_lease(&self, claim: &LeaseClaim) -> Result<bool, StoreError> {
+        let run = async {
+            let mut tx = self.pool.begin_with("BEGIN IMMEDIATE").await?;
+            let done = sqlx::query("DELETE FROM instance_lease WHERE lease_id = 1 AND holder = ?1")
+                .bind(&claim.holder)
+                .execute(&mut *tx)
+                .await?;
+            let released = done.rows_affected() == 1;
+            if released {
+                event(&mut tx, "released", claim, None, None).await?;
+            }
+            tx.commit().await?;
+            Ok(released)
+        };
+        run.await.map_err(|e: sqlx::Error| self.sql(e))
+    }
+
+    /// The current holder, if any.
+    pub async fn lease_holder(&self) -> Result<Option<LeaseHolder>, StoreError> {
+        let row = sqlx::query(
+            "SELECT holder, pid, host, acquired_at, heartbeat_at FROM instance_lease WHERE lease_id = 1",
+        )
+        .fetch_optional(&self.pool)
+        .await
+        .map_err(|e| self.sql(e))?;
+        row.as_ref()
+            .map(holder_from_row)
+            .transpose()
+            .map_err(|e| self.sql(e))
+    }
+}
