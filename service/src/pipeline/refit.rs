@@ -76,6 +76,12 @@ pub struct SeriesReport {
     pub wall_seconds: f64,
     pub warm_start_from: Option<i64>,
     pub n_obs: Option<i64>,
+    /// Seconds spent reading the series from the store and building the model input.
+    pub load_seconds: f64,
+    /// Seconds spent sampling (all attempts).
+    pub fit_seconds: f64,
+    /// Seconds spent after the fit: forecasts, draws file, the publishing transaction.
+    pub publish_seconds: f64,
     /// Mean 80% interval width per forecast target (response scale).
     pub width80: Vec<(String, f64)>,
 }
@@ -215,6 +221,9 @@ async fn refit_series(
         wall_seconds: 0.0,
         warm_start_from: None,
         n_obs: None,
+        load_seconds: 0.0,
+        fit_seconds: 0.0,
+        publish_seconds: 0.0,
         width80: Vec::new(),
     };
     if !opts.force {
@@ -264,6 +273,7 @@ async fn refit_series(
         })
         .collect();
     let data = Arc::new(built.data);
+    report.load_seconds = started.elapsed().as_secs_f64();
     fit.n_obs = Some(data.n_obs() as i64);
     fit.n_sites = Some(data.n_sites() as i64);
     fit.n_years = Some(data.n_years() as i64);
@@ -303,6 +313,7 @@ async fn refit_series(
     ));
     let mut notes: Vec<String> = Vec::new();
     let mut last: Option<(Posterior, SamplerSettings, Option<i64>)> = None;
+    let sampling = Instant::now();
     for (label, settings, warm) in attempts {
         let (from, warm_state) = match warm {
             Some((id, w)) => (Some(id), Some(w)),
@@ -362,6 +373,8 @@ async fn refit_series(
     let Some((post, used, from)) = last else {
         anyhow::bail!("no fit attempt was made for series {}", series.name);
     };
+    report.fit_seconds = sampling.elapsed().as_secs_f64();
+    let publishing = Instant::now();
     let published = passes(&post.diagnostics, series);
     let d = post.diagnostics.clone();
     fit.status = if published { "published" } else { "rejected" }.into();
@@ -425,6 +438,7 @@ async fn refit_series(
             &exclusions,
         )
         .await?;
+    report.publish_seconds = publishing.elapsed().as_secs_f64();
     report.outcome = if published {
         SeriesOutcome::Published
     } else {
