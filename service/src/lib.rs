@@ -20,8 +20,10 @@
 pub mod cli;
 pub mod commands;
 pub mod config;
+pub mod drift;
 pub mod ingest;
 pub mod pipeline;
+pub mod report;
 pub mod schedule;
 pub mod store;
 pub mod telemetry;
