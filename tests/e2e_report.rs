@@ -220,6 +220,12 @@ fn drift_flags_a_partition_that_moves_and_not_one_that_holds() {
     assert!(block[0].trim_start().starts_with("1    2020") && block[0].trim_end().ends_with('-'));
     assert!(!block[1].trim_end().ends_with('*'), "{}", block[1]);
     assert!(block[2].trim_end().ends_with('*'), "{}", block[2]);
+    let help = net.ok(&["drift", "--help"]);
+    assert!(
+        help.contains("excludes the previous version's median")
+            && help.contains("screening rule, not a statistical test"),
+        "{help}"
+    );
     // `--series` selects; an unknown name is refused with the names there are.
     assert_eq!(
         net.ok(&["drift", "--series", "phosphorus", "--json"]),
