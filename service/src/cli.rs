@@ -76,6 +76,37 @@ pub enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Variance components of every published version and how they moved
+    ///
+    /// Per series and published version: the data-through year, q05/q50/q95 of each
+    /// standard deviation (model scale) and each variance share, and the change of the
+    /// median from the previous version. A quantity is flagged (*) when the new version's
+    /// 90% interval [q05, q95] excludes the previous version's median. This is a
+    /// screening rule, not a statistical test: successive versions share most of their
+    /// data, and with many quantities some flags arise by chance; a flag asks a person to
+    /// look.
+    Drift {
+        /// Only this series
+        #[arg(long, value_name = "NAME")]
+        series: Option<String>,
+        /// Print one JSON document instead of text
+        #[arg(long)]
+        json: bool,
+    },
+    /// Write one self-contained HTML page with charts of the published versions
+    ///
+    /// Per series: variance components across versions with their 90% intervals, the
+    /// widths of the latest version's 80% forecast intervals by target, and its site
+    /// effects ranked with 90% intervals; then the run history and the cautions. The page
+    /// has no external resources and needs no JavaScript. The file is replaced atomically.
+    Report {
+        /// The HTML file to write
+        #[arg(long, value_name = "FILE.html")]
+        out: PathBuf,
+        /// Only this series
+        #[arg(long, value_name = "NAME")]
+        series: Option<String>,
+    },
     /// Replay the demo feed (an invented lake network) season by season through the pipeline
     Demo {
         /// Folder for the demo's config, feed folders and database [default: ./vigil-demo]
@@ -152,5 +183,7 @@ pub async fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Init => commands::init::run(&ctx).await,
         Command::Ingest { files } => commands::ingest::run(&ctx, &files).await,
         Command::Status { json } => commands::status::run(&ctx, json).await,
+        Command::Drift { series, json } => commands::drift::run(&ctx, series, json).await,
+        Command::Report { out, series } => commands::report::run(&ctx, &out, series).await,
     }
 }

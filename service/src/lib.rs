@@ -20,10 +20,12 @@
 pub mod cli;
 pub mod commands;
 pub mod config;
+pub mod drift;
 pub mod ingest;
 pub mod lease;
 pub mod pipeline;
 pub mod progress;
+pub mod report;
 pub mod schedule;
 pub mod serve;
 pub mod signals;

@@ -2,11 +2,13 @@
 //! stdout; errors go back to `cli` as `anyhow::Error` with context naming what failed.
 
 pub mod demo;
+pub mod drift;
 pub mod forecast;
 pub mod ingest;
 pub mod init;
 pub mod refit;
 pub mod reml;
+pub mod report;
 pub mod run_once;
 pub mod serve;
 pub mod status;
@@ -37,5 +39,34 @@ impl Context {
         Store::open(&self.config.database)
             .await
             .with_context(|| format!("config {}", self.config.path.display()))
+    }
+}
+
+/// Refuse a `--series NAME` that the configuration does not define.
+pub fn require_series(ctx: &Context, name: &str) -> anyhow::Result<()> {
+    if ctx.config.series.iter().any(|s| s.name == name) {
+        return Ok(());
+    }
+    let known: Vec<&str> = ctx.config.series.iter().map(|s| s.name.as_str()).collect();
+    anyhow::bail!(
+        "no series named {name:?} in {} (it defines: {})",
+        ctx.config.path.display(),
+        known.join(", ")
+    )
+}
+
+/// Print `text` to stdout; a reader that stopped early (`vigil drift | head`) is not an
+/// error.
+pub fn print_out(text: &str) -> anyhow::Result<()> {
+    use std::io::Write as _;
+    let mut stdout = std::io::stdout().lock();
+    match stdout
+        .write_all(text.as_bytes())
+        .and_then(|()| stdout.flush())
+    {
+        Err(e) if e.kind() != std::io::ErrorKind::BrokenPipe => {
+            Err(anyhow::Error::new(e).context("cannot write to stdout"))
+        }
+        _ => Ok(()),
     }
 }

@@ -7,10 +7,12 @@
 //!
 //! Invariant: only this module writes SQL (checked by `tests/e2e_store.rs::only_the_store_writes_sql`).
 
+mod drift;
 mod fits;
 mod ingest;
 mod lease;
 mod runs;
+mod report;
 mod series;
 mod status;
 
@@ -24,11 +26,13 @@ use sqlx::sqlite::{
 };
 use sqlx::Row;
 
+pub use drift::ComponentRow;
 pub use fits::{NewExclusion, NewFit, PublishedFit, RecordedFit};
 pub use ingest::{
     BatchContent, BatchFile, BatchOutcome, BatchRecord, BatchValues, Cell, NewRejection, NewValue,
 };
 pub use lease::{LeaseAttempt, LeaseClaim, LeaseHolder};
+pub use report::{ForecastInterval, RunHistoryEntry, RunSeriesOutcome, SiteEffect};
 pub use series::SeriesRow;
 pub use status::{BatchSummary, FitSummary, RunSummary};
 

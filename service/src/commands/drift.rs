@@ -1,0 +1,24 @@
+//! `vigil drift [--series NAME] [--json]`: the variance components of every published
+//! version, the change from the previous version, and the screening flag
+//! (rule in [`crate::drift`]).
+
+use super::Context;
+use crate::drift;
+
+pub async fn run(ctx: &Context, series: Option<String>, json: bool) -> anyhow::Result<()> {
+    if let Some(name) = &series {
+        super::require_series(ctx, name)?;
+    }
+    let store = ctx.open_store().await?;
+    let rows = store.variance_components(series.as_deref()).await?;
+    store.close().await;
+    let report = drift::build(&rows);
+    let text = if json {
+        serde_json::to_string_pretty(&report)? + "\n"
+    } else if report.series.is_empty() {
+        "no published version yet; run `vigil run-once` (or `vigil refit`) first\n".to_string()
+    } else {
+        drift::render_text(&report)
+    };
+    super::print_out(&text)
+}

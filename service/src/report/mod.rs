@@ -1,0 +1,269 @@
+//! `vigil report`: one self-contained HTML page about the published versions — what it
+//! contains (`Report`, read from the store), how it is drawn (`charts`, plotters SVG),
+//! how the page is put together and escaped (`page`), and how it reaches the disk
+//! (atomically: a temporary file in the target directory, then a rename).
+//!
+//! Invariant: the page loads nothing from outside (no URL, no script) and every piece of
+//! user text in it (series names, site codes, messages) is escaped —
+//! `tests/e2e_report.rs::the_report_is_one_self_contained_page_with_escaped_codes`.
+
+mod charts;
+mod page;
+
+use std::io::Write as _;
+use std::path::{Path, PathBuf};
+
+use crate::drift::{self, SeriesDrift};
+use crate::store::{FitSummary, RunHistoryEntry, SiteEffect, Store, StoreError};
+
+pub use page::CAUTION;
+
+/// At most this many site effects are drawn; beyond it the lowest and highest halves are.
+pub const MAX_SITES_SHOWN: usize = 60;
+
+/// How many recent runs the history table lists.
+pub const RUNS_SHOWN: u32 = 50;
+
+/// The four forecast targets, in the order the page shows them.
+pub const TARGETS: [&str; 4] = [
+    "known_site_known_year",
+    "known_site_new_year",
+    "new_site_known_year",
+    "new_site_new_year",
+];
+
+#[derive(Debug, thiserror::Error)]
+pub enum ReportError {
+    #[error(transparent)]
+    Store(#[from] StoreError),
+    #[error("drawing the {chart} chart failed: {message}")]
+    Chart {
+        chart: &'static str,
+        message: String,
+    },
+    #[error(
+        "cannot write the report {path}: {source}; check that the folder exists and is writable"
+    )]
+    Write {
+        path: PathBuf,
+        source: std::io::Error,
+    },
+}
+
+/// Summary of the 80% interval widths (`hi80 - lo80`, response scale) of one target.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TargetWidths {
+    pub target: String,
+    pub n: usize,
+    pub min: f64,
+    pub q25: f64,
+    pub median: f64,
+    pub q75: f64,
+    pub max: f64,
+}
+
+/// What the page shows about one series.
+#[derive(Debug, Clone)]
+pub struct SeriesReport {
+    pub name: String,
+    /// `none` or `log`: the scale of forecast widths is the response's own.
+    pub transform: String,
+    pub response: String,
+    pub latest: Option<FitSummary>,
+    /// The newest attempt when it is not the version served (rejected or failed).
+    pub unserved_attempt: Option<FitSummary>,
+    pub drift: Option<SeriesDrift>,
+    pub widths: Vec<TargetWidths>,
+    /// Every site effect of the latest version, lowest median first.
+    pub site_effects: Vec<SiteEffect>,
+}
+
+/// Everything the page shows.
+#[derive(Debug, Clone)]
+pub struct Report {
+    pub generated_at: String,
+    pub database: String,
+    pub series: Vec<SeriesReport>,
+    pub runs: Vec<RunHistoryEntry>,
+}
+
+/// Quantile of sorted finite values by linear interpolation between order statistics
+/// (Hyndman & Fan 1996, definition 7).
+fn quantile_sorted(sorted: &[f64], p: f64) -> f64 {
+    if sorted.is_empty() {
+        return f64::NAN;
+    }
+    let h = (sorted.len() - 1) as f64 * p;
+    let below = h.floor() as usize;
+    let above = h.ceil() as usize;
+    sorted[below] + (h - below as f64) * (sorted[above] - sorted[below])
+}
+
+/// Width summaries per target from `(target, lo80, hi80)` rows; targets without a row
+/// with both bounds are left out.
+pub fn target_widths(rows: &[(String, Option<f64>, Option<f64>)]) -> Vec<TargetWidths> {
+    TARGETS
+        .iter()
+        .filter_map(|target| {
+            let mut widths: Vec<f64> = rows
+                .iter()
+                .filter(|(t, _, _)| t == target)
+                .filter_map(|(_, lo, hi)| Some(hi.as_ref()? - lo.as_ref()?))
+                .filter(|w| w.is_finite())
+                .collect();
+            if widths.is_empty() {
+                return None;
+            }
+            widths.sort_by(f64::total_cmp);
+            Some(TargetWidths {
+                target: target.to_string(),
+                n: widths.len(),
+                min: widths[0],
+                q25: quantile_sorted(&widths, 0.25),
+                median: quantile_sorted(&widths, 0.5),
+                q75: quantile_sorted(&widths, 0.75),
+                max: widths[widths.len() - 1],
+            })
+        })
+        .collect()
+}
+
+/// The site effects to draw: all of them up to [`MAX_SITES_SHOWN`], else the lowest and
+/// highest halves, with the index after which sites were left out.
+pub fn sites_to_show(effects: &[SiteEffect]) -> (Vec<SiteEffect>, Option<usize>) {
+    if effects.len() <= MAX_SITES_SHOWN {
+        return (effects.to_vec(), None);
+    }
+    let half = MAX_SITES_SHOWN / 2;
+    let mut shown = effects[..half].to_vec();
+    shown.extend_from_slice(&effects[effects.len() - half..]);
+    (shown, Some(half - 1))
+}
+
+impl Report {
+    /// Read what the page shows for `series` (name, response, transform), in that order.
+    pub async fn collect(
+        store: &Store,
+        series: &[(String, String, String)],
+    ) -> Result<Report, ReportError> {
+        let mut out = Vec::new();
+        for (name, response, transform) in series {
+            let latest = store.latest_published_fit(name).await?;
+            let attempt = store.latest_fit_attempt(name).await?;
+            let unserved_attempt = attempt.filter(|a| {
+                a.status != "published" && latest.as_ref().is_none_or(|l| a.version > l.version)
+            });
+            let rows = store.variance_components(Some(name)).await?;
+            let drift = drift::build(&rows).series.into_iter().next();
+            let (widths, site_effects) = match &latest {
+                Some(fit) => {
+                    let intervals = store.forecast_intervals(fit.fit_id).await?;
+                    let rows: Vec<_> = intervals
+                        .into_iter()
+                        .map(|f| (f.target, f.lo80, f.hi80))
+                        .collect();
+                    (target_widths(&rows), store.site_effects(fit.fit_id).await?)
+                }
+                None => (Vec::new(), Vec::new()),
+            };
+            out.push(SeriesReport {
+                name: name.clone(),
+                transform: transform.clone(),
+                response: response.clone(),
+                latest,
+                unserved_attempt,
+                drift,
+                widths,
+                site_effects,
+            });
+        }
+        Ok(Report {
+            generated_at: crate::store::now_utc(),
+            database: store.path().display().to_string(),
+            series: out,
+            runs: store.run_history(RUNS_SHOWN).await?,
+        })
+    }
+
+    /// The whole page as HTML text.
+    pub fn render(&self) -> Result<String, ReportError> {
+        page::render(self)
+    }
+}
+
+/// Write `contents` to `path` atomically: a reader sees the old file or the new one,
+/// never a part. The temporary file lives in the same directory, so the rename does not
+/// cross file systems.
+pub fn write_atomically(path: &Path, contents: &str) -> Result<(), ReportError> {
+    let fail = |source: std::io::Error| ReportError::Write {
+        path: path.to_path_buf(),
+        source,
+    };
+    let dir = match path.parent() {
+        Some(d) if !d.as_os_str().is_empty() => d,
+        _ => Path::new("."),
+    };
+    let mut builder = tempfile::Builder::new();
+    builder.prefix(".vigil-report-").suffix(".tmp");
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt as _;
+        // A report is meant to be read by others; the default of a temporary file is
+        // owner-only.
+        builder.permissions(std::fs::Permissions::from_mode(0o644));
+    }
+    let mut tmp = builder.tempfile_in(dir).map_err(fail)?;
+    tmp.write_all(contents.as_bytes()).map_err(fail)?;
+    tmp.as_file().sync_all().map_err(fail)?;
+    tmp.persist(path).map_err(|e| fail(e.error))?;
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn widths_summarise_each_target_with_interpolated_quartiles() {
+        let rows: Vec<(String, Option<f64>, Option<f64>)> = [1.0, 2.0, 3.0, 4.0, 5.0]
+            .iter()
+            .map(|w| {
+                (
+                    "known_site_new_year".to_string(),
+                    Some(10.0),
+                    Some(10.0 + w),
+                )
+            })
+            .chain(std::iter::once((
+                "new_site_new_year".to_string(),
+                Some(1.0),
+                None,
+            )))
+            .collect();
+        let w = target_widths(&rows);
+        assert_eq!(w.len(), 1, "a target without complete rows is left out");
+        let t = &w[0];
+        assert_eq!((t.n, t.min, t.max), (5, 1.0, 5.0));
+        assert!((t.q25 - 2.0).abs() < 1e-12 && (t.median - 3.0).abs() < 1e-12);
+        assert!((quantile_sorted(&[0.0, 1.0], 0.25) - 0.25).abs() < 1e-12);
+    }
+
+    #[test]
+    fn many_sites_show_the_lowest_and_highest_halves() {
+        let effects: Vec<SiteEffect> = (0..75)
+            .map(|i| SiteEffect {
+                site: format!("L{i}"),
+                q05: None,
+                q50: Some(i as f64),
+                q95: None,
+            })
+            .collect();
+        let (shown, gap) = sites_to_show(&effects);
+        assert_eq!(shown.len(), MAX_SITES_SHOWN);
+        assert_eq!(gap, Some(29));
+        assert_eq!(shown[29].site, "L29");
+        assert_eq!(shown[30].site, "L45");
+        let (all, none) = sites_to_show(&effects[..10]);
+        assert_eq!((all.len(), none), (10, None));
+    }
+}

@@ -1,0 +1,254 @@
+//! The report page: HTML text around the charts. Every piece of text that came from a
+//! feed file, the config or the database goes through [`esc`] (site codes may hold
+//! quotes, `<`, `&` or SQL-looking text; they are shown verbatim, never interpreted).
+
+use std::fmt::Write as _;
+
+use super::{charts, sites_to_show, Report, ReportError, SeriesReport, MAX_SITES_SHOWN};
+use crate::store::FitSummary;
+
+/// The cautions every report carries (README.md § Cautions says the same).
+pub const CAUTION: &str = "Forecasts are statistical estimates from the data given to Vigil. \
+Where they feed decisions that touch people — for example recreational-water or drinking-water \
+advisories after algal blooms — those decisions follow the responsible agency's own sampling, \
+testing and notification rules and are made by qualified staff.";
+
+const STYLE: &str = "
+body { font-family: sans-serif; margin: 1.5em auto; max-width: 1000px; color: #222; padding: 0 1em; }
+h1 { font-size: 1.6em; margin-bottom: 0.2em; }
+h2 { font-size: 1.3em; border-bottom: 1px solid #ccc; padding-bottom: 0.2em; margin-top: 2em; }
+h3 { font-size: 1.05em; margin-bottom: 0.3em; }
+p.meta { color: #555; margin-top: 0; }
+.caution { border-left: 5px solid #d55e00; background: #fff4ec; padding: 0.6em 1em; }
+.warning { border-left: 5px solid #c80000; background: #fdecec; padding: 0.4em 1em; }
+figure { margin: 0.8em 0; }
+figcaption { color: #444; font-size: 0.9em; margin-top: 0.2em; }
+svg { max-width: 100%; height: auto; display: block; }
+table { border-collapse: collapse; font-size: 0.85em; margin: 0.5em 0; }
+th, td { border: 1px solid #ddd; padding: 0.25em 0.5em; text-align: left; vertical-align: top; }
+th { background: #f3f3f3; }
+td.num { text-align: right; font-variant-numeric: tabular-nums; }
+.published, .succeeded { color: #006b3c; }
+.rejected, .failed, .partial, .abandoned { color: #b00000; font-weight: bold; }
+";
+
+/// HTML-escape text for element content and quoted attribute values.
+pub fn esc(text: &str) -> String {
+    html_escape::encode_safe(text).into_owned()
+}
+
+fn num(x: Option<f64>, digits: usize) -> String {
+    x.map_or_else(|| "–".to_string(), |v| format!("{v:.digits$}"))
+}
+
+fn fit_line(f: &FitSummary) -> String {
+    format!(
+        "version {} (fit {}), data through {}, {} observations at {} sites in {} years; \
+         max R-hat {}, min bulk ESS {}, min tail ESS {}; published {}",
+        f.version,
+        f.fit_id,
+        f.data_through_year
+            .map_or_else(|| "–".to_string(), |y| y.to_string()),
+        f.n_obs.map_or_else(|| "–".to_string(), |n| n.to_string()),
+        f.n_sites.map_or_else(|| "–".to_string(), |n| n.to_string()),
+        f.n_years.map_or_else(|| "–".to_string(), |n| n.to_string()),
+        num(f.max_rhat, 3),
+        num(f.min_ess_bulk, 0),
+        num(f.min_ess_tail, 0),
+        f.created_at
+    )
+}
+
+fn section(out: &mut String, s: &SeriesReport) -> Result<(), ReportError> {
+    let _ = writeln!(out, "<section>\n<h2>Series {}</h2>", esc(&s.name));
+    if let Some(a) = &s.unserved_attempt {
+        let _ = writeln!(
+            out,
+            "<p class=\"warning\">The newest attempt, version {} (fit {}), was <b>{}</b>: {}. \
+             The version below keeps serving.</p>",
+            a.version,
+            a.fit_id,
+            esc(&a.status),
+            esc(a.message.as_deref().unwrap_or("no message"))
+        );
+    }
+    let Some(latest) = &s.latest else {
+        let _ = writeln!(
+            out,
+            "<p>No published version yet: there is nothing to chart.</p>\n</section>"
+        );
+        return Ok(());
+    };
+    let _ = writeln!(
+        out,
+        "<p class=\"meta\">Response <code>{}</code> (transform {}). Serving {}.</p>",
+        esc(&s.response),
+        esc(&s.transform),
+        esc(&fit_line(latest))
+    );
+
+    // (a) Variance components across versions.
+    if let Some(drift) = &s.drift {
+        let _ = writeln!(
+            out,
+            "<h3>Variance components across versions</h3>\n<figure>\n{}\n<figcaption>Median and \
+             90% interval of each standard deviation on the model scale, one point per published \
+             version. A red ring marks a flagged version: its 90% interval excludes the previous \
+             version's median. This is a screening rule, not a statistical test; a flag asks a \
+             person to look.</figcaption>\n</figure>",
+            charts::variance_components(drift)?
+        );
+        let flagged: Vec<_> = drift
+            .versions
+            .iter()
+            .flat_map(|v| v.components.iter().filter(|c| c.flag).map(move |c| (v, c)))
+            .collect();
+        if flagged.is_empty() {
+            let _ = writeln!(out, "<p>No flagged change between versions.</p>");
+        } else {
+            let _ = writeln!(
+                out,
+                "<table>\n<caption>Flagged changes ({})</caption>\n<tr><th>version</th>\
+                 <th>data through</th><th>quantity</th><th>previous median</th><th>q05</th>\
+                 <th>q50</th><th>q95</th><th>change</th></tr>",
+                flagged.len()
+            );
+            for (v, c) in flagged {
+                let _ = writeln!(
+                    out,
+                    "<tr><td class=\"num\">{}</td><td class=\"num\">{}</td><td>{}</td>\
+                     <td class=\"num\">{}</td><td class=\"num\">{}</td><td class=\"num\">{}</td>\
+                     <td class=\"num\">{}</td><td class=\"num\">{}</td></tr>",
+                    v.version,
+                    v.data_through_year
+                        .map_or_else(|| "–".to_string(), |y| y.to_string()),
+                    esc(&c.label()),
+                    num(c.previous_q50, 4),
+                    num(c.q05, 4),
+                    num(c.q50, 4),
+                    num(c.q95, 4),
+                    c.change
+                        .map_or_else(|| "–".to_string(), |d| format!("{d:+.4}"))
+                );
+            }
+            let _ = writeln!(out, "</table>");
+        }
+    }
+
+    // (b) Interval widths by target.
+    let units = if s.transform == "log" {
+        "response units, back-transformed"
+    } else {
+        "response units"
+    };
+    if s.widths.is_empty() {
+        let _ = writeln!(out, "<p>The latest version has no forecasts.</p>");
+    } else {
+        let _ = writeln!(
+            out,
+            "<h3>Forecast interval widths by target</h3>\n<figure>\n{}\n<figcaption>Width \
+             (upper minus lower bound) of the 80% forecast interval of every row of the latest \
+             version's forecasts, per target: dot = median, box = middle half, line = range. \
+             A monitored site next year is narrow when years vary little; an unmonitored site \
+             is wide when sites differ a lot.</figcaption>\n</figure>",
+            charts::interval_widths(&s.widths, units)?
+        );
+    }
+
+    // (c) Site effects, ranked.
+    if !s.site_effects.is_empty() {
+        let (shown, gap) = sites_to_show(&s.site_effects);
+        let note = match gap {
+            Some(_) => format!(
+                " Only the {} lowest and {} highest of {} sites are drawn (dashed rule); the \
+                 others are in <code>posterior_summary</code> (kind 'effect', term 'site').",
+                MAX_SITES_SHOWN / 2,
+                MAX_SITES_SHOWN / 2,
+                s.site_effects.len()
+            ),
+            None => String::new(),
+        };
+        let _ = writeln!(
+            out,
+            "<h3>Site effects</h3>\n<figure>\n{}\n<figcaption>Each site's effect in the latest \
+             version, ranked by its median, with its 90% interval.{note}</figcaption>\n</figure>",
+            charts::site_effects(&shown, gap)?
+        );
+    }
+    let _ = writeln!(out, "</section>");
+    Ok(())
+}
+
+fn run_history(out: &mut String, r: &Report) {
+    let _ = writeln!(out, "<section>\n<h2>Run history</h2>");
+    if r.runs.is_empty() {
+        let _ = writeln!(out, "<p>No run recorded yet.</p>\n</section>");
+        return;
+    }
+    let _ = writeln!(
+        out,
+        "<table>\n<tr><th>run</th><th>trigger</th><th>started</th><th>finished</th>\
+         <th>status</th><th>outcome per series</th><th>message</th></tr>"
+    );
+    for entry in &r.runs {
+        let run = &entry.run;
+        let mut outcomes = String::new();
+        for s in &entry.series {
+            let _ = write!(
+                outcomes,
+                "{}: <span class=\"{}\">{}</span>{}{}<br>",
+                esc(&s.series),
+                esc(&s.outcome),
+                esc(&s.outcome),
+                s.fit_id.map(|f| format!(" (fit {f})")).unwrap_or_default(),
+                s.message
+                    .as_deref()
+                    .map(|m| format!(" — {}", esc(m)))
+                    .unwrap_or_default()
+            );
+        }
+        let _ = writeln!(
+            out,
+            "<tr><td class=\"num\">{}</td><td>{}</td><td>{}</td><td>{}</td>\
+             <td class=\"{}\">{}</td><td>{}</td><td>{}</td></tr>",
+            run.run_id,
+            esc(&run.trigger),
+            esc(&run.started_at),
+            esc(run.finished_at.as_deref().unwrap_or("–")),
+            esc(&run.status),
+            esc(&run.status),
+            outcomes,
+            esc(run.message.as_deref().unwrap_or(""))
+        );
+    }
+    let _ = writeln!(out, "</table>\n</section>");
+}
+
+/// The whole page.
+pub fn render(r: &Report) -> Result<String, ReportError> {
+    let mut out = String::with_capacity(256 * 1024);
+    let _ = writeln!(
+        out,
+        "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n\
+         <meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\n\
+         <title>Vigil report</title>\n<style>{STYLE}</style>\n</head>\n<body>\n\
+         <h1>Vigil report</h1>\n<p class=\"meta\">Generated {} from {}.</p>\n\
+         <p class=\"caution\"><b>Caution.</b> {}</p>",
+        esc(&r.generated_at),
+        esc(&r.database),
+        esc(CAUTION)
+    );
+    for s in &r.series {
+        section(&mut out, s)?;
+    }
+    run_history(&mut out, r);
+    let _ = writeln!(
+        out,
+        "<section>\n<h2>Cautions</h2>\n<p class=\"caution\">{}</p>\n<p>Variance components \
+         and effects are on the model scale of each series (after its transform); forecast \
+         widths are on the response's own scale. The drift flag is a screening rule, not a \
+         statistical test.</p>\n</section>\n</body>\n</html>",
+        esc(CAUTION)
+    );
+    Ok(out)
+}

@@ -1,0 +1,129 @@
+//! Reads behind `vigil report`: the latest version's forecast interval widths and site
+//! effects, and the run history with each run's per-series outcomes.
+
+use serde::Serialize;
+use sqlx::Row;
+
+use super::status::RunSummary;
+use super::{Store, StoreError};
+
+/// The 80% interval of one forecast row of a fit.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ForecastInterval {
+    pub target: String,
+    pub lo80: Option<f64>,
+    pub hi80: Option<f64>,
+}
+
+/// The posterior summary of one site effect of a fit.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SiteEffect {
+    pub site: String,
+    pub q05: Option<f64>,
+    pub q50: Option<f64>,
+    pub q95: Option<f64>,
+}
+
+/// What one run did for one series (a `run_series` row).
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct RunSeriesOutcome {
+    pub series: String,
+    pub outcome: String,
+    pub fit_id: Option<i64>,
+    pub message: Option<String>,
+}
+
+/// A run with its per-series outcomes.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct RunHistoryEntry {
+    pub run: RunSummary,
+    pub series: Vec<RunSeriesOutcome>,
+}
+
+impl Store {
+    /// The 80% intervals of every forecast row of `fit_id`.
+    pub async fn forecast_intervals(
+        &self,
+        fit_id: i64,
+    ) -> Result<Vec<ForecastInterval>, StoreError> {
+        let rows = sqlx::query(
+            "SELECT target, lo80, hi80 FROM forecasts WHERE fit_id = ?1 ORDER BY target, site, year",
+        )
+        .bind(fit_id)
+        .fetch_all(&self.pool)
+        .await
+        .map_err(|e| self.sql(e))?;
+        rows.iter()
+            .map(|r| {
+                Ok(ForecastInterval {
+                    target: r.try_get("target")?,
+                    lo80: r.try_get("lo80")?,
+                    hi80: r.try_get("hi80")?,
+                })
+            })
+            .collect::<Result<_, sqlx::Error>>()
+            .map_err(|e| self.sql(e))
+    }
+
+    /// The site effects of `fit_id`, ordered by their median (lowest first).
+    pub async fn site_effects(&self, fit_id: i64) -> Result<Vec<SiteEffect>, StoreError> {
+        let rows = sqlx::query(
+            "SELECT level, q05, q50, q95 FROM posterior_summary
+             WHERE fit_id = ?1 AND kind = 'effect' AND term = 'site' AND level IS NOT NULL
+             ORDER BY q50, level",
+        )
+        .bind(fit_id)
+        .fetch_all(&self.pool)
+        .await
+        .map_err(|e| self.sql(e))?;
+        rows.iter()
+            .map(|r| {
+                Ok(SiteEffect {
+                    site: r.try_get("level")?,
+                    q05: r.try_get("q05")?,
+                    q50: r.try_get("q50")?,
+                    q95: r.try_get("q95")?,
+                })
+            })
+            .collect::<Result<_, sqlx::Error>>()
+            .map_err(|e| self.sql(e))
+    }
+
+    /// The `limit` most recent runs, newest first, each with its per-series outcomes.
+    pub async fn run_history(&self, limit: u32) -> Result<Vec<RunHistoryEntry>, StoreError> {
+        let runs = self.recent_runs(limit).await?;
+        let Some(oldest) = runs.last().map(|r| r.run_id) else {
+            return Ok(Vec::new());
+        };
+        let rows = sqlx::query(
+            "SELECT run_id, series, outcome, fit_id, message FROM run_series
+             WHERE run_id >= ?1 ORDER BY run_id, series",
+        )
+        .bind(oldest)
+        .fetch_all(&self.pool)
+        .await
+        .map_err(|e| self.sql(e))?;
+        let mut outcomes = Vec::with_capacity(rows.len());
+        for r in &rows {
+            let run_id: i64 = r.try_get("run_id").map_err(|e| self.sql(e))?;
+            let outcome = RunSeriesOutcome {
+                series: r.try_get("series").map_err(|e| self.sql(e))?,
+                outcome: r.try_get("outcome").map_err(|e| self.sql(e))?,
+                fit_id: r.try_get("fit_id").map_err(|e| self.sql(e))?,
+                message: r.try_get("message").map_err(|e| self.sql(e))?,
+            };
+            outcomes.push((run_id, outcome));
+        }
+        Ok(runs
+            .into_iter()
+            .map(|run| {
+                let series = outcomes
+                    .iter()
+                    .filter(|(id, _)| *id == run.run_id)
+                    .map(|(_, o)| o.clone())
+                    .collect();
+                RunHistoryEntry { run, series }
+            })
+            .collect())
+    }
+}

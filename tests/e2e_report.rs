@@ -1,0 +1,426 @@
+//! End-to-end: `vigil drift` and `vigil report` on a small generated network delivered in
+//! three parts, through the real binary; the report is also rendered in headless
+//! Chromium and the screenshot checked for content.
+
+mod common;
+
+use std::path::Path;
+use std::process::Command;
+use std::time::{Duration, Instant};
+
+use common::Network;
+use vigil_model::simulate::{simulate_rows, NetworkSpec};
+
+const CONFIG: &str = r#"
+[store]
+database = "vigil.db"
+
+[feed]
+inbox = "inbox"
+archive = "archive"
+quarantine = "quarantine"
+
+[[series]]
+name = "phosphorus"
+response = "tp_ug_l"
+site = "lake"
+year = "season"
+visit = "visit"
+
+[series.sampler]
+chains = 4
+draws = 500
+warmup = 300
+seed = 5
+max_rhat = 1.05
+min_ess = 200
+"#;
+
+/// Site codes that must reach the page verbatim and harmless.
+const SQL_CODE: &str = "S6';DROP TABLE fits;--";
+const MARKUP_CODE: &str = "Lake <b>&\"7";
+
+fn csv_field(text: &str) -> String {
+    format!("\"{}\"", text.replace('"', "\"\""))
+}
+
+/// Invented test data: `spec`'s network as feed CSV for the given years; site codes are
+/// `{prefix} NN`, except sites 6 and 7 of the base network, which get the awkward codes.
+fn feed(spec: &NetworkSpec, prefix: &str, years: std::ops::Range<i32>) -> String {
+    let (rows, _) = simulate_rows(spec);
+    let mut out = String::from("lake,season,visit,tp_ug_l\n");
+    let mut visit = std::collections::HashMap::new();
+    for r in rows.iter().filter(|r| years.contains(&r.year)) {
+        let v = visit.entry((r.site, r.year)).or_insert(0);
+        *v += 1;
+        let code = match (prefix, r.site) {
+            ("Lake", 6) => SQL_CODE.to_string(),
+            ("Lake", 7) => MARKUP_CODE.to_string(),
+            _ => format!("{prefix} {:02}", r.site),
+        };
+        out.push_str(&format!(
+            "{},{},{},{:.4}\n",
+            csv_field(&code),
+            r.year,
+            v,
+            r.y
+        ));
+    }
+    out
+}
+
+fn base() -> NetworkSpec {
+    NetworkSpec {
+        sites: 15,
+        years: 8,
+        visits: 2,
+        missing: 0.1,
+        covariates: 0,
+        sd_residual: 0.3,
+        sd_site: 0.4,
+        sd_year: 0.3,
+        intercept: 20.0,
+        coef: 0.0,
+        first_year: 2015,
+        seed: 31,
+    }
+}
+
+/// Three published versions: 2015–2020 of the base network; one more year of the same
+/// network (the partition holds); then 30 new lakes whose site-to-site spread is ten
+/// times larger (the partition moves: sd site must jump).
+fn three_deliveries() -> Network {
+    let net = Network::with_config(CONFIG);
+    net.ok(&["init"]);
+    net.drop_file("a-2015-2020.csv", feed(&base(), "Lake", 2015..2021));
+    net.ok(&["run-once"]);
+    net.drop_file("b-2021.csv", feed(&base(), "Lake", 2021..2022));
+    net.ok(&["run-once"]);
+    let far = NetworkSpec {
+        sites: 30,
+        sd_site: 4.0,
+        seed: 77,
+        ..base()
+    };
+    net.drop_file("c-far-lakes.csv", feed(&far, "Far", 2015..2022));
+    net.ok(&["run-once"]);
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM fits WHERE status = 'published'")
+            .int(),
+        3
+    );
+    net
+}
+
+fn f(v: &serde_json::Value) -> f64 {
+    v.as_f64()
+        .unwrap_or_else(|| panic!("expected a number, found {v}"))
+}
+
+#[test]
+fn drift_flags_a_partition_that_moves_and_not_one_that_holds() {
+    let net = three_deliveries();
+    let doc: serde_json::Value =
+        serde_json::from_str(&net.ok(&["drift", "--json"])).expect("one JSON document");
+    assert!(doc["rule"].as_str().unwrap().contains("screening rule"));
+    let series = doc["series"].as_array().unwrap();
+    assert_eq!(series.len(), 1);
+    assert_eq!(series[0]["series"], "phosphorus");
+    let versions = series[0]["versions"].as_array().unwrap();
+    assert_eq!(versions.len(), 3);
+    let years: Vec<i64> = versions
+        .iter()
+        .map(|v| v["data_through_year"].as_i64().unwrap())
+        .collect();
+    assert_eq!(years, [2020, 2021, 2021]);
+
+    let component = |v: usize, kind: &str, term: &str| -> serde_json::Value {
+        versions[v]["components"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|c| c["kind"] == kind && c["term"] == term)
+            .unwrap_or_else(|| panic!("version {} has no {kind} {term}", v + 1))
+            .clone()
+    };
+    let mut flagged = 0;
+    for (i, v) in versions.iter().enumerate() {
+        let components = v["components"].as_array().unwrap();
+        let kinds: Vec<(&str, &str)> = components
+            .iter()
+            .map(|c| (c["kind"].as_str().unwrap(), c["term"].as_str().unwrap()))
+            .collect();
+        for term in ["site", "year", "residual"] {
+            assert!(kinds.contains(&("sd", term)) && kinds.contains(&("share", term)));
+        }
+        for c in components {
+            let (q05, q50, q95) = (f(&c["q05"]), f(&c["q50"]), f(&c["q95"]));
+            // The numbers are the stored posterior summaries.
+            let stored = net.sql(&format!(
+                "SELECT q05, q50, q95 FROM posterior_summary WHERE fit_id = {} AND kind = '{}' AND term = '{}'",
+                v["fit_id"], c["kind"].as_str().unwrap(), c["term"].as_str().unwrap()
+            ));
+            // (Parsing JSON without serde_json's float_roundtrip may move the last bit.)
+            let close = |a: f64, b: f64| (a - b).abs() <= 1e-12 * b.abs().max(1.0);
+            for (db, printed) in [
+                (&stored[0][0], q05),
+                (&stored[0][1], q50),
+                (&stored[0][2], q95),
+            ] {
+                assert!(close(db.real(), printed), "{db} vs {printed}");
+            }
+            if i == 0 {
+                assert!(c["previous_q50"].is_null() && c["change"].is_null());
+                assert_eq!(c["flag"], false);
+                continue;
+            }
+            let kind = c["kind"].as_str().unwrap();
+            let term = c["term"].as_str().unwrap();
+            let previous = f(&component(i - 1, kind, term)["q50"]);
+            assert!(close(f(&c["previous_q50"]), previous));
+            assert!((f(&c["change"]) - (q50 - previous)).abs() < 1e-12);
+            // The documented rule, recomputed from the printed numbers.
+            assert_eq!(
+                c["flag"].as_bool().unwrap(),
+                previous < q05 || previous > q95,
+                "{c}"
+            );
+            flagged += usize::from(c["flag"].as_bool().unwrap());
+        }
+    }
+    assert_eq!(series[0]["flagged"].as_u64().unwrap() as usize, flagged);
+
+    // One more year of the same network: nothing moves beyond its own uncertainty.
+    for c in versions[1]["components"].as_array().unwrap() {
+        assert_eq!(c["flag"], false, "version 2 must not be flagged: {c}");
+    }
+    // Thirty lakes with a tenfold site spread: the site sd and its share jump.
+    let site = component(2, "sd", "site");
+    assert_eq!(site["flag"], true, "{site}");
+    assert!(f(&site["change"]) > 0.5, "{site}");
+    assert_eq!(component(2, "share", "site")["flag"], true);
+
+    // The text form: the rule, one block per quantity, the flag on version 3 of sd site.
+    let text = net.ok(&["drift"]);
+    assert!(
+        text.contains("screening rule, not a statistical test"),
+        "{text}"
+    );
+    assert!(
+        text.contains("series phosphorus: 3 published version(s)"),
+        "{text}"
+    );
+    let block: Vec<&str> = text
+        .lines()
+        .skip_while(|l| l.trim() != "sd site")
+        .skip(2)
+        .take(3)
+        .collect();
+    assert_eq!(block.len(), 3, "{text}");
+    assert!(block[0].trim_start().starts_with("1    2020") && block[0].trim_end().ends_with('-'));
+    assert!(!block[1].trim_end().ends_with('*'), "{}", block[1]);
+    assert!(block[2].trim_end().ends_with('*'), "{}", block[2]);
+    let help = net.ok(&["drift", "--help"]);
+    assert!(
+        help.contains("excludes the previous version's median")
+            && help.contains("screening rule, not a statistical test"),
+        "{help}"
+    );
+    // `--series` selects; an unknown name is refused with the names there are.
+    assert_eq!(
+        net.ok(&["drift", "--series", "phosphorus", "--json"]),
+        net.ok(&["drift", "--json"])
+    );
+    let unknown = net.vigil(&["drift", "--series", "nitrogen"]);
+    assert!(!unknown.status.success());
+    let stderr = String::from_utf8_lossy(&unknown.stderr);
+    assert!(stderr.contains("no series named \"nitrogen\"") && stderr.contains("phosphorus"));
+}
+
+fn write_report(net: &Network) -> (std::path::PathBuf, String) {
+    let out = net.path("reports/latest.html");
+    std::fs::create_dir_all(out.parent().unwrap()).unwrap();
+    let stdout = net.ok(&["report", "--out", out.to_str().unwrap()]);
+    assert!(stdout.contains("wrote"), "{stdout}");
+    let html = std::fs::read_to_string(&out).expect("report written");
+    (out, html)
+}
+
+#[test]
+fn the_report_is_one_self_contained_page_with_escaped_codes() {
+    let net = three_deliveries();
+    let (out, html) = write_report(&net);
+    assert_eq!(html.matches("<html").count(), 1);
+    assert!(html.starts_with("<!DOCTYPE html>"));
+    assert!(html.trim_end().ends_with("</html>"));
+    // One series: variance components, interval widths, site effects.
+    assert_eq!(html.matches("<svg").count(), 3, "three charts");
+    assert_eq!(html.matches("</svg>").count(), 3);
+    // Nothing is loaded from anywhere: no URL, no script, no linked resource.
+    for needle in [
+        "http:", "https:", "<script", "<link", "<img", "<iframe", "src=", "url(", "@import",
+    ] {
+        assert!(!html.contains(needle), "the page contains {needle:?}");
+    }
+    // The cautions, in substance.
+    for phrase in [
+        "statistical estimates",
+        "drinking-water",
+        "algal blooms",
+        "sampling, testing and notification rules",
+        "qualified staff",
+    ] {
+        assert!(html.contains(phrase), "caution phrase {phrase:?} missing");
+    }
+    // Awkward site codes appear escaped (in the chart labels at least), never raw.
+    assert!(!html.contains(MARKUP_CODE), "raw markup from a site code");
+    assert!(!html.contains("<b>&"));
+    assert!(!html.contains(SQL_CODE), "raw quote from a site code");
+    let markup_escaped = ["Lake &lt;b&gt;&amp;&quot;7", "Lake &lt;b&gt;&amp;&#x22;7"];
+    assert!(
+        markup_escaped.iter().any(|e| html.contains(e)),
+        "escaped markup code missing"
+    );
+    assert!(
+        html.contains("S6&apos;;DROP TABLE fits;--")
+            || html.contains("S6&#x27;;DROP TABLE fits;--"),
+        "escaped SQL-looking code missing"
+    );
+    // The run history lists every run with its per-series outcome.
+    assert_eq!(
+        html.matches("phosphorus: <span class=\"published\">published</span>")
+            .count(),
+        3
+    );
+    // The database is intact, and the file was replaced atomically (no temporary left).
+    assert_eq!(net.scalar("SELECT COUNT(*) FROM fits").int(), 3);
+    let (_, again) = write_report(&net);
+    assert_eq!(again.matches("<svg").count(), 3);
+    let leftovers: Vec<_> = std::fs::read_dir(out.parent().unwrap())
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .collect();
+    assert_eq!(leftovers, ["latest.html"]);
+    // An unknown series is refused; a folder that does not exist is a clear error.
+    assert!(!net
+        .vigil(&["report", "--out", "x.html", "--series", "nitrogen"])
+        .status
+        .success());
+    let missing = net.vigil(&["report", "--out", "no/such/folder/r.html"]);
+    assert!(!missing.status.success());
+    assert!(String::from_utf8_lossy(&missing.stderr).contains("cannot write the report"));
+}
+
+/// Where Debian's chromium is, or a failure that says how to get it (CI installs it).
+fn chromium() -> String {
+    for name in ["chromium", "chromium-browser"] {
+        let found = Command::new("sh")
+            .arg("-c")
+            .arg(format!("command -v {name}"))
+            .output()
+            .map(|o| o.status.success())
+            .unwrap_or(false);
+        if found {
+            return name.to_string();
+        }
+    }
+    panic!(
+        "headless Chromium is needed to check the report's rendering and was not found on PATH; \
+         install it with `apt-get install chromium` (.ci/run does this on CI)"
+    );
+}
+
+fn screenshot(html: &Path, png: &Path) {
+    let profile = tempfile::tempdir().unwrap();
+    let mut child = Command::new(chromium())
+        .args([
+            "--headless",
+            "--no-sandbox",
+            "--disable-gpu",
+            "--disable-quic",
+            "--no-first-run",
+            "--disable-background-networking",
+            "--disable-component-update",
+            "--disable-sync",
+            "--hide-scrollbars",
+        ])
+        .arg(format!("--user-data-dir={}", profile.path().display()))
+        .arg(format!("--screenshot={}", png.display()))
+        .arg("--window-size=1200,2000")
+        .arg(format!("file://{}", html.display()))
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .expect("start chromium");
+    let start = Instant::now();
+    loop {
+        if let Some(status) = child.try_wait().unwrap() {
+            assert!(status.success(), "chromium exited with {status}");
+            break;
+        }
+        if start.elapsed() > Duration::from_secs(120) {
+            let _ = child.kill();
+            panic!("chromium did not finish the screenshot within 120 s");
+        }
+        std::thread::sleep(Duration::from_millis(100));
+    }
+}
+
+#[test]
+fn the_report_renders_in_headless_chromium() {
+    let net = three_deliveries();
+    let (out, _) = write_report(&net);
+    let png_path = net.path("reports/latest.png");
+    screenshot(&out, &png_path);
+    // To look at the page and the screenshot yourself: VIGIL_KEEP_REPORT=DIR.
+    if let Some(keep) = std::env::var_os("VIGIL_KEEP_REPORT") {
+        let keep = Path::new(&keep);
+        std::fs::create_dir_all(keep).unwrap();
+        for (from, name) in [
+            (&out, "report.html"),
+            (&png_path, "report.png"),
+            (&net.db_path(), "vigil.db"),
+        ] {
+            std::fs::copy(from, keep.join(name)).unwrap();
+        }
+        std::fs::write(keep.join("vigil.toml"), CONFIG).unwrap();
+    }
+
+    let decoder = png::Decoder::new(std::fs::File::open(&png_path).expect("screenshot written"));
+    let mut reader = decoder.read_info().unwrap();
+    let mut buf = vec![0; reader.output_buffer_size()];
+    let info = reader.next_frame(&mut buf).unwrap();
+    assert_eq!((info.width, info.height), (1200, 2000));
+    let channels = info.color_type.samples();
+    assert!(
+        channels >= 3,
+        "unexpected colour type {:?}",
+        info.color_type
+    );
+    let pixels: Vec<[u8; 3]> = buf[..info.buffer_size()]
+        .chunks(channels)
+        .map(|p| [p[0], p[1], p[2]])
+        .collect();
+    let non_white = pixels.iter().filter(|p| p.iter().any(|&c| c < 235)).count();
+    let share = non_white as f64 / pixels.len() as f64;
+    assert!(
+        share > 0.03,
+        "the screenshot is nearly blank: {share:.4} non-white"
+    );
+    let distinct: std::collections::HashSet<[u8; 3]> = pixels.iter().copied().collect();
+    assert!(
+        distinct.len() > 50,
+        "only {} distinct colours",
+        distinct.len()
+    );
+    // The charts were drawn: the palette's blue and vermillion lines are on screen.
+    let near = |c: [u8; 3]| {
+        pixels.iter().any(|p| {
+            p.iter()
+                .zip(c)
+                .all(|(&a, b)| (i32::from(a) - i32::from(b)).abs() <= 12)
+        })
+    };
+    assert!(near([0, 114, 178]), "no chart blue in the screenshot");
+    assert!(near([213, 94, 0]), "no chart vermillion in the screenshot");
+}
