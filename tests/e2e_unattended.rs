@@ -440,6 +440,27 @@ fn a_rejected_fit_is_shown_first_by_status() {
     std::fs::write(net.config_path(), strict).expect("config");
     let out = net.vigil(&["refit", "--force"]);
     assert!(!out.status.success());
+    // The gate's fallbacks, in order: warm start, cold start, one extended attempt with
+    // twice the draws; the last is what is recorded.
+    let rejected =
+        net.sql("SELECT status, draws, warm_start_from, message FROM fits WHERE fit_id = 2");
+    assert_eq!(rejected[0][0].text(), "rejected");
+    assert_eq!(rejected[0][1].int(), 600);
+    assert!(rejected[0][2].is_null());
+    let message = rejected[0][3].text();
+    let order: Vec<usize> = [
+        "warm start failed",
+        "; cold start failed",
+        "extended cold start failed",
+    ]
+    .iter()
+    .map(|m| {
+        message
+            .find(m)
+            .unwrap_or_else(|| panic!("{m:?} not in {message}"))
+    })
+    .collect();
+    assert!(order.windows(2).all(|w| w[0] < w[1]), "{message}");
     let text = net.ok(&["status"]);
     assert!(
         text.starts_with("ATTENTION\n  chlorophyll: latest fit attempt REJECTED (fit 2)"),
