@@ -2,7 +2,8 @@
 //! among posterior draws are uniform when the sampler is exact. The default suite runs a
 //! fast subset; the full study (>= 500 replicates) runs on request:
 //! `cargo test -p vigil-model --release --test sbc -- --ignored --nocapture`
-//! and writes its rank histograms to `target/sbc/` (or `$VIGIL_REPORT_DIR`).
+//! and writes its rank histograms (text and an SVG chart) to `target/sbc/` (or
+//! `$VIGIL_REPORT_DIR`).
 
 use rayon::prelude::*;
 use vigil_model::sbc::{rank_uniformity, sbc_replicate, SbcSpec, SBC_QUANTITIES};
@@ -13,6 +14,54 @@ fn study(replicates: usize, first_seed: u64) -> Vec<Vec<usize>> {
         .into_par_iter()
         .map(|r| sbc_replicate(&spec, first_seed + r).expect("replicate fits"))
         .collect()
+}
+
+/// Rank histograms as one SVG file: a panel per quantity, the expected count as a line.
+fn histogram_svg(all: &[Vec<usize>], kept: usize, bins: usize, path: &str) {
+    use plotters::prelude::*;
+    let root = SVGBackend::new(path, (1000, 260 * SBC_QUANTITIES.len() as u32)).into_drawing_area();
+    root.fill(&WHITE).unwrap();
+    let panels = root.split_evenly((SBC_QUANTITIES.len(), 1));
+    let expected = all.len() as f64 / bins as f64;
+    for (q, (name, panel)) in SBC_QUANTITIES.iter().zip(panels.iter()).enumerate() {
+        let ranks: Vec<usize> = all.iter().map(|r| r[q]).collect();
+        let (counts, stat, p) = rank_uniformity(&ranks, kept, bins);
+        let top = counts.iter().copied().max().unwrap_or(1) as f64 * 1.25;
+        let mut chart = ChartBuilder::on(panel)
+            .caption(
+                format!(
+                    "{name}: chi-square {stat:.1} on {} df, p = {p:.3}",
+                    bins - 1
+                ),
+                ("sans-serif", 18),
+            )
+            .margin(10)
+            .x_label_area_size(30)
+            .y_label_area_size(50)
+            .build_cartesian_2d(0.0..bins as f64, 0.0..top)
+            .unwrap();
+        chart
+            .configure_mesh()
+            .x_desc("rank bin")
+            .y_desc("replicates")
+            .draw()
+            .unwrap();
+        chart
+            .draw_series(counts.iter().enumerate().map(|(b, &c)| {
+                Rectangle::new(
+                    [(b as f64 + 0.05, 0.0), (b as f64 + 0.95, c as f64)],
+                    RGBColor(0, 114, 178).filled(),
+                )
+            }))
+            .unwrap();
+        chart
+            .draw_series(LineSeries::new(
+                [(0.0, expected), (bins as f64, expected)],
+                RGBColor(213, 94, 0).stroke_width(2),
+            ))
+            .unwrap();
+    }
+    root.present().unwrap();
 }
 
 fn report(all: &[Vec<usize>], kept: usize, bins: usize) -> (String, f64) {
@@ -61,6 +110,8 @@ fn sbc_full_study() {
         format!("SBC, {replicates} replicates, 20 bins\n{text}"),
     )
     .unwrap();
-    println!("{text}\nwritten to {path}");
+    let svg = format!("{dir}/sbc_ranks.svg");
+    histogram_svg(&all, SbcSpec::default().kept, 20, &svg);
+    println!("{text}\nwritten to {path} and {svg}");
     assert!(min_p > 0.001, "{text}");
 }
