@@ -411,7 +411,8 @@ fn values_a_log_fit_cannot_use_are_kept_and_excluded_at_fit() {
 /// Stable-Rust stand-in for `fuzz/fuzz_targets/feed_reader.rs`: seeded random mutations
 /// of every corpus case go through the feed readers, which must never panic. Run with
 /// `cargo test -p vigil-service --test e2e_corpus -- --ignored` (`VIGIL_FUZZ_INPUTS`
-/// sets the number of inputs, default 20000).
+/// sets the number of inputs, default 20000; `VIGIL_FUZZ_DUMP=FILE` keeps the input being
+/// parsed, to replay a crash).
 #[test]
 #[ignore = "long: run on request"]
 fn random_mutations_of_the_corpus_never_panic() {
@@ -435,6 +436,10 @@ fn random_mutations_of_the_corpus_never_panic() {
         .ok()
         .and_then(|v| v.parse().ok())
         .unwrap_or(20_000);
+    // The Arrow reader's caught panics (see ingest/arrow_feed.rs) would flood the output.
+    vigil_service::ingest::quiet_caught_panics();
+    // Each input is written here before it is parsed: after a panic, the file holds it.
+    let dump = std::env::var_os("VIGIL_FUZZ_DUMP");
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(2024);
     let interesting: &[&[u8]] = &[
         b",",
@@ -475,6 +480,9 @@ fn random_mutations_of_the_corpus_never_panic() {
                 }
                 _ => {}
             }
+        }
+        if let Some(path) = &dump {
+            std::fs::write(path, &bytes).expect("write VIGIL_FUZZ_DUMP");
         }
         match parse_bytes(&bytes, &layout).1 {
             BatchContent::Unreadable { reason } => {

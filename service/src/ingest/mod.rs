@@ -24,6 +24,7 @@ use tracing::{info, info_span, warn};
 use crate::config::{Config, KeyColumns};
 use crate::store::{BatchContent, BatchFile, BatchOutcome, Store, StoreError};
 
+pub use arrow_feed::quiet_caught_panics;
 pub use collect::{parse_number, parse_year, DEFAULT_VISIT, YEARS};
 use collect::{ColumnKind, Measure};
 
