@@ -22,11 +22,54 @@ pub const FILE_MAGIC: &[u8] = b"ARROW1";
 /// First bytes of an Arrow IPC stream (the continuation marker).
 pub const STREAM_MAGIC: &[u8] = &[0xFF, 0xFF, 0xFF, 0xFF];
 
+/// Read a whole Arrow IPC file or stream. The arrow-ipc reader (55.x) trusts the buffer
+/// offsets and lengths written in the file and panics on some that point outside it; such
+/// a file is broken data like any other, so a panic while decoding quarantines the file
+/// instead of ending the process.
 pub fn read(bytes: &[u8], layout: &FileLayout) -> Result<Collector, Unreadable> {
-    let unreadable =
-        |e: arrow_schema::ArrowError| Unreadable(format!("unreadable Arrow IPC data: {e}"));
+    DECODING.with(|d| d.set(true));
+    let decoded = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| decode(bytes, layout)));
+    DECODING.with(|d| d.set(false));
+    decoded.unwrap_or_else(|payload| {
+        let why = payload
+            .downcast_ref::<String>()
+            .map(String::as_str)
+            .or_else(|| payload.downcast_ref::<&str>().copied())
+            .unwrap_or("the reader gave up");
+        let why: String = why.chars().take(160).collect();
+        Err(Unreadable(format!(
+            "unreadable Arrow IPC data: its layout is inconsistent ({why})"
+        )))
+    })
+}
+
+/// Keep the panics that [`read`] catches off stderr: install once at start-up. Other
+/// panics still reach the previous hook.
+pub fn quiet_caught_panics() {
+    let previous = std::panic::take_hook();
+    std::panic::set_hook(Box::new(move |info| {
+        if !DECODING.with(std::cell::Cell::get) {
+            previous(info);
+        }
+    }));
+}
+
+thread_local! {
+    /// Set while [`read`] decodes, so that the panic hook knows the panic will be caught.
+    static DECODING: std::cell::Cell<bool> = const { std::cell::Cell::new(false) };
+}
+
+fn decode(bytes: &[u8], layout: &FileLayout) -> Result<Collector, Unreadable> {
+    let unreadable = |e: arrow_schema::ArrowError| {
+        // The reader's messages can carry a long flatbuffer trace; the start says enough.
+        let text = e.to_string();
+        let shown: String = text.chars().take(160).collect();
+        let more = if shown.len() < text.len() { "…" } else { "" };
+        Unreadable(format!("unreadable Arrow IPC data: {shown}{more}"))
+    };
     let (schema, batches): (_, Box<dyn Iterator<Item = Result<RecordBatch, _>>>) =
         if bytes.starts_with(FILE_MAGIC) {
+            blocks_fit(bytes)?;
             let r = arrow_ipc::reader::FileReader::try_new(Cursor::new(bytes), None)
                 .map_err(unreadable)?;
             (r.schema(), Box::new(r))
@@ -60,6 +103,45 @@ pub fn read(bytes: &[u8], layout: &FileLayout) -> Result<Collector, Unreadable> 
         }
     }
     Ok(collector)
+}
+
+/// The reader allocates each block of an IPC file at the size its footer states before
+/// reading it, so a footer claiming gigabytes aborts the process (an allocation failure
+/// cannot be caught). Every block must lie inside the file.
+fn blocks_fit(bytes: &[u8]) -> Result<(), Unreadable> {
+    let broken = |why: &str| Unreadable(format!("unreadable Arrow IPC data: {why}"));
+    let n = bytes.len();
+    if n < FILE_MAGIC.len() * 2 + 4 {
+        return Err(broken("the file is too short for an Arrow IPC file"));
+    }
+    let len_at = n - FILE_MAGIC.len() - 4;
+    let mut len_bytes = [0u8; 4];
+    len_bytes.copy_from_slice(&bytes[len_at..len_at + 4]);
+    let footer_len = usize::try_from(i32::from_le_bytes(len_bytes))
+        .ok()
+        .filter(|&l| l <= len_at)
+        .ok_or_else(|| broken("the footer length points outside the file"))?;
+    let footer = arrow_ipc::root_as_footer(&bytes[len_at - footer_len..len_at])
+        .map_err(|_| broken("the footer cannot be read"))?;
+    let blocks = footer
+        .recordBatches()
+        .into_iter()
+        .flatten()
+        .chain(footer.dictionaries().into_iter().flatten());
+    for b in blocks {
+        let end = b
+            .offset()
+            .checked_add(i64::from(b.metaDataLength()))
+            .and_then(|e| e.checked_add(b.bodyLength()));
+        let inside = b.offset() >= 0
+            && b.metaDataLength() >= 0
+            && b.bodyLength() >= 0
+            && end.is_some_and(|e| usize::try_from(e).is_ok_and(|e| e <= n));
+        if !inside {
+            return Err(broken("a record batch in the footer lies outside the file"));
+        }
+    }
+    Ok(())
 }
 
 fn cell(array: &dyn Array, i: usize) -> RawCell<'_> {

@@ -164,6 +164,10 @@ impl Collector {
                     "site column `{}` holds a {ty}; expected text or an integer",
                     self.site_col
                 ),
+                RawCell::Float(_) => format!(
+                    "site column `{}` holds a floating-point number; expected text or an integer",
+                    self.site_col
+                ),
                 _ => format!("row has no site (column `{}` is empty)", self.site_col),
             };
             self.reject_row(line, named(), &reason);
@@ -273,7 +277,17 @@ impl Collector {
             let mut conflicts: Vec<_> = self.conflicts.into_iter().collect();
             conflicts.sort_by_key(|(_, occ)| occ[0].0);
             for (key, occurrences) in conflicts {
-                let lines: Vec<String> = occurrences.iter().map(|(l, _)| l.to_string()).collect();
+                // Each occurrence carries the reason, so the list of lines is capped:
+                // a key repeated n times must not cost n² of text.
+                const LISTED: usize = 10;
+                let mut lines: Vec<String> = occurrences
+                    .iter()
+                    .take(LISTED)
+                    .map(|(l, _)| l.to_string())
+                    .collect();
+                if occurrences.len() > LISTED {
+                    lines.push(format!("and {} more", occurrences.len() - LISTED));
+                }
                 let reason = format!(
                     "conflicting values for the same site, year, visit and column in this file (lines {}); none of them is used",
                     lines.join(", ")
@@ -317,7 +331,7 @@ pub fn parse_number(cell: RawCell<'_>) -> Result<f64, String> {
         RawCell::Text(t) => {
             let t = t.trim();
             match t.parse::<f64>() {
-                Err(_) => Err(format!("`{t}` is not a number")),
+                Err(_) => Err(format!("`{}` is not a number", excerpt(t))),
                 Ok(x) if x.is_nan() => {
                     Err("NaN is not a value; leave the cell empty for a missing value".into())
                 }
@@ -326,12 +340,38 @@ pub fn parse_number(cell: RawCell<'_>) -> Result<f64, String> {
                     if word.starts_with("inf") {
                         Err("infinite values are not accepted".into())
                     } else {
-                        Err(format!("`{t}` overflows a 64-bit floating-point number"))
+                        Err(format!(
+                            "`{}` overflows a 64-bit floating-point number",
+                            excerpt(t)
+                        ))
                     }
                 }
+                // Parsing rounds a non-zero number below the smallest subnormal to zero,
+                // which would turn a small positive concentration into a zero (and drop
+                // it from a log-scale fit) without a word.
+                Ok(x) if x == 0.0 && has_nonzero_digit(t) => Err(format!(
+                    "`{t}` is too small for a 64-bit floating-point number (it would be stored as 0)"
+                )),
                 Ok(x) => Ok(x),
             }
         }
+    }
+}
+
+/// Whether the digits of a decimal number (before any exponent) are not all zero.
+fn has_nonzero_digit(t: &str) -> bool {
+    t.split(['e', 'E'])
+        .next()
+        .is_some_and(|m| m.bytes().any(|b| (b'1'..=b'9').contains(&b)))
+}
+
+/// A cell's text as quoted in a reason: whole when short, else its start (the full text
+/// stays in `rejections.raw_value`).
+fn excerpt(t: &str) -> std::borrow::Cow<'_, str> {
+    const SHOWN: usize = 60;
+    match t.char_indices().nth(SHOWN) {
+        None => t.into(),
+        Some((end, _)) => format!("{}… ({} bytes)", &t[..end], t.len()).into(),
     }
 }
 
@@ -346,7 +386,7 @@ pub fn parse_year(cell: RawCell<'_>) -> Result<i32, String> {
                 Ok(y) => y,
                 Err(_) => match t.parse::<f64>() {
                     Ok(x) if x.is_finite() && x.fract() == 0.0 && x.abs() < 1e9 => x as i64,
-                    _ => return Err(format!("year `{t}` is not an integer")),
+                    _ => return Err(format!("year `{}` is not an integer", excerpt(t))),
                 },
             }
         }
@@ -395,6 +435,14 @@ mod tests {
         assert!(parse_number(RawCell::Text("1e400"))
             .unwrap_err()
             .contains("overflows"));
+        assert!(parse_number(RawCell::Text("1e-400"))
+            .unwrap_err()
+            .contains("too small"));
+        assert_eq!(parse_number(RawCell::Text("0.000e-999")), Ok(0.0));
+        assert_eq!(parse_number(RawCell::Text("-0")), Ok(0.0));
+        assert_eq!(parse_number(RawCell::Text("5e-324")), Ok(5e-324));
+        let long = "y".repeat(100_000);
+        assert!(parse_number(RawCell::Text(&long)).unwrap_err().len() < 100);
         assert!(parse_number(RawCell::Float(f64::NAN)).is_err());
         assert_eq!(parse_number(RawCell::Int(-3)), Ok(-3.0));
     }
@@ -430,6 +478,21 @@ mod tests {
             .iter()
             .all(|r| r.reason.contains("lines 2, 3, 4")));
         assert_eq!(rejections[1].raw.as_deref(), Some("2.0"));
+    }
+
+    #[test]
+    fn a_much_repeated_conflict_lists_a_few_lines() {
+        let mut c = Collector::new("lake", "season", numeric(&["chl"]));
+        let t = RawCell::Text;
+        let values: Vec<String> = (0..50).map(|i| i.to_string()).collect();
+        for (i, v) in values.iter().enumerate() {
+            c.row(i as u64 + 2, t("A"), t("2020"), None, &[t(v)]);
+        }
+        let (_, _, rejections) = c.finish();
+        assert_eq!(rejections.len(), 50);
+        assert!(rejections[0]
+            .reason
+            .contains("lines 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, and 40 more"));
     }
 
     #[test]

@@ -24,6 +24,7 @@ use tracing::{info, info_span, warn};
 use crate::config::{Config, KeyColumns};
 use crate::store::{BatchContent, BatchFile, BatchOutcome, Store, StoreError};
 
+pub use arrow_feed::quiet_caught_panics;
 pub use collect::{parse_number, parse_year, DEFAULT_VISIT, YEARS};
 use collect::{ColumnKind, Measure};
 
@@ -51,6 +52,8 @@ pub enum IngestError {
         path: PathBuf,
         source: std::io::Error,
     },
+    #[error("{path}: {source}")]
+    Batch { path: PathBuf, source: StoreError },
     #[error(transparent)]
     Store(#[from] StoreError),
 }
@@ -244,7 +247,16 @@ pub async fn ingest_file(
     );
 
     // A known file is not parsed again; the store re-checks inside its transaction.
-    let (format, content) = if store.batch_with_sha256(&sha256).await?.is_some() {
+    let in_batch = |source| IngestError::Batch {
+        path: path.to_path_buf(),
+        source,
+    };
+    let (format, content) = if store
+        .batch_with_sha256(&sha256)
+        .await
+        .map_err(in_batch)?
+        .is_some()
+    {
         (None, BatchContent::KnownDuplicate)
     } else {
         parse_bytes(&bytes, &FileLayout::from_config(config))
@@ -256,7 +268,10 @@ pub async fn ingest_file(
         format,
     };
     drop(bytes);
-    let outcome = store.ingest_batch(&file, &content).await?;
+    let outcome = store
+        .ingest_batch(&file, &content)
+        .await
+        .map_err(in_batch)?;
     let (batch_id, dest_dir) = match &outcome {
         BatchOutcome::Ingested { batch_id, .. } | BatchOutcome::Duplicate { batch_id, .. } => {
             (*batch_id, &config.feed.archive)

@@ -72,6 +72,8 @@ pub enum StoreError {
         path: PathBuf,
         source: std::io::Error,
     },
+    #[error("database {path} is locked by another writer (waited {} s); nothing was changed, try again when it is done", BUSY_TIMEOUT.as_secs())]
+    Busy { path: PathBuf, source: sqlx::Error },
     #[error("database {path}: {source}")]
     Sql { path: PathBuf, source: sqlx::Error },
     #[error("database {path}: applying migrations failed: {source}")]
@@ -233,9 +235,17 @@ impl Store {
     }
 
     fn sql(&self, source: sqlx::Error) -> StoreError {
-        StoreError::Sql {
-            path: self.path.clone(),
-            source,
+        // SQLITE_BUSY and its extended codes (5, 261, 517…): the busy timeout ran out.
+        let busy = source
+            .as_database_error()
+            .and_then(|d| d.code())
+            .and_then(|c| c.parse::<i64>().ok())
+            .is_some_and(|c| c & 0xff == 5);
+        let path = self.path.clone();
+        if busy {
+            StoreError::Busy { path, source }
+        } else {
+            StoreError::Sql { path, source }
         }
     }
 }

@@ -1,0 +1,29 @@
+//! Any bytes through the feed readers (CSV, Arrow IPC file and stream): they must never
+//! panic, and every rejection and quarantine must carry a reason.
+#![no_main]
+
+use std::collections::BTreeSet;
+
+use libfuzzer_sys::fuzz_target;
+use vigil_service::config::KeyColumns;
+use vigil_service::ingest::{parse_bytes, FileLayout};
+use vigil_service::store::BatchContent;
+
+fuzz_target!(|bytes: &[u8]| {
+    // The key columns of tests/corpus/vigil.toml, with `crew` as a group label.
+    let layout = FileLayout {
+        keys: KeyColumns {
+            site: "lake".into(),
+            year: "season".into(),
+            visit: Some("visit".into()),
+        },
+        labels: BTreeSet::from(["crew".to_string()]),
+    };
+    match parse_bytes(bytes, &layout).1 {
+        BatchContent::Unreadable { reason } => assert!(!reason.is_empty()),
+        BatchContent::Parsed { rejections, .. } => {
+            assert!(rejections.iter().all(|r| !r.reason.is_empty()));
+        }
+        BatchContent::KnownDuplicate => unreachable!("parse_bytes never says duplicate"),
+    }
+});
