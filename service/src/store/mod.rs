@@ -11,8 +11,8 @@ mod drift;
 mod fits;
 mod ingest;
 mod lease;
-mod runs;
 mod report;
+mod runs;
 mod series;
 mod status;
 
