@@ -1,15 +1,32 @@
 //! `vigil forecast [--series NAME]`: rewrite the forecasts of each series' latest published
-//! version from its stored draws.
+//! version from its stored draws, under the single-instance lease (so it never races a
+//! refit that is about to publish a newer version).
 
 use anyhow::Context as _;
 use vigil_model::forecast_baseline;
 
+use std::sync::atomic::AtomicBool;
+use std::sync::Arc;
+
 use super::Context;
+use crate::lease::Lease;
 use crate::pipeline::draws;
 use crate::pipeline::input::model_transform;
 
 pub async fn run(ctx: &Context, series: Option<String>) -> anyhow::Result<()> {
     let store = ctx.open_store().await?;
+    let lease = Lease::acquire(&store, Arc::new(AtomicBool::new(false))).await?;
+    let outcome = rewrite(ctx, &store, series).await;
+    lease.release().await?;
+    store.close().await;
+    outcome
+}
+
+async fn rewrite(
+    ctx: &Context,
+    store: &crate::store::Store,
+    series: Option<String>,
+) -> anyhow::Result<()> {
     let names: Vec<&crate::config::SeriesConfig> = match &series {
         Some(name) => vec![ctx
             .config
@@ -50,6 +67,5 @@ pub async fn run(ctx: &Context, series: Option<String>) -> anyhow::Result<()> {
             latest.fit_id
         );
     }
-    store.close().await;
     Ok(())
 }
