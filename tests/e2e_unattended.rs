@@ -595,3 +595,45 @@ fn sigkill_at_random_moments_of_run_once_loses_nothing_and_half_writes_nothing()
         count(&net, "SELECT COUNT(*) FROM lease_events WHERE event = 'taken_over'")
     );
 }
+
+/// SIGKILL of `serve` at random moments (idle, ingesting, fitting or publishing): the
+/// same invariants hold, and a later `run-once` takes over the dead holder's lease and
+/// completes. `VIGIL_SERVE_KILL_TRIALS` (default 3) sets the number of trials.
+#[test]
+fn sigkill_at_random_moments_of_serve_loses_nothing_and_half_writes_nothing() {
+    let net = Network::with_config(&config("*/2 * * * * *", "catch_up = false", 6000));
+    net.ok(&["init"]);
+    let rows = network_rows(150, 12);
+    let years: Vec<i32> = rows
+        .iter()
+        .map(|r| r.1)
+        .collect::<BTreeSet<_>>()
+        .into_iter()
+        .collect();
+    let trials: usize = std::env::var("VIGIL_SERVE_KILL_TRIALS")
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .unwrap_or(3);
+    let mut rng = rand::rngs::StdRng::seed_from_u64(77);
+    for trial in 0..trials {
+        let season: Vec<_> = rows
+            .iter()
+            .filter(|r| r.1 == years[trial % years.len()])
+            .cloned()
+            .collect();
+        net.drop_file(&format!("{:03}-serve.csv", trial), csv(&season));
+        let mut child = spawn_logged(&net, &["serve"], "serve.log");
+        // Ticks come every 2 s; a kill within 0.5–4.5 s lands before, during or after a run.
+        let at = Duration::from_millis(500 + rng.gen_range(0..4000));
+        std::thread::sleep(at);
+        let _ = child.kill();
+        let _ = child.wait();
+        eprintln!("serve trial {trial}: SIGKILL after {} ms", at.as_millis());
+        assert_consistent(&net, &format!("serve trial {trial}"));
+    }
+    net.ok(&["run-once"]);
+    assert_eq!(lease_pid(&net), None);
+    assert_eq!(net.files_in("inbox"), Vec::<String>::new());
+    assert_consistent(&net, "after serve trials and a final run");
+    assert!(count(&net, "SELECT COUNT(*) FROM fits WHERE status = 'published'") >= 1);
+}
