@@ -74,6 +74,7 @@ fn decode(bytes: &[u8], layout: &FileLayout) -> Result<Collector, Unreadable> {
                 .map_err(unreadable)?;
             (r.schema(), Box::new(r))
         } else {
+            messages_fit(bytes)?;
             let r = arrow_ipc::reader::StreamReader::try_new(Cursor::new(bytes), None)
                 .map_err(unreadable)?;
             (r.schema(), Box::new(r))
@@ -103,6 +104,44 @@ fn decode(bytes: &[u8], layout: &FileLayout) -> Result<Collector, Unreadable> {
         }
     }
     Ok(collector)
+}
+
+/// The stream reader, like the file reader, allocates each message at the size the stream
+/// states before reading it. Walk the messages first (continuation marker, metadata
+/// length, the message's body length) and refuse any that would reach past the end.
+fn messages_fit(bytes: &[u8]) -> Result<(), Unreadable> {
+    let broken = |why: &str| Unreadable(format!("unreadable Arrow IPC data: {why}"));
+    let n = bytes.len();
+    let word =
+        |at: usize| -> Option<[u8; 4]> { bytes.get(at..at + 4).map(|w| [w[0], w[1], w[2], w[3]]) };
+    let mut pos = 0usize;
+    while let Some(first) = word(pos) {
+        // Current streams put 0xFFFFFFFF before each length; older ones only the length.
+        let (meta_len, meta_at) = if first == [0xFF; 4] {
+            match word(pos + 4) {
+                Some(len) => (i32::from_le_bytes(len), pos + 8),
+                None => return Err(broken("the stream ends inside a message header")),
+            }
+        } else {
+            (i32::from_le_bytes(first), pos + 4)
+        };
+        if meta_len == 0 {
+            return Ok(()); // end-of-stream marker
+        }
+        let meta_end = usize::try_from(meta_len)
+            .ok()
+            .and_then(|l| meta_at.checked_add(l))
+            .filter(|&e| e <= n)
+            .ok_or_else(|| broken("a message header in the stream reaches past its end"))?;
+        let message = arrow_ipc::root_as_message(&bytes[meta_at..meta_end])
+            .map_err(|_| broken("a message header in the stream cannot be read"))?;
+        pos = usize::try_from(message.bodyLength())
+            .ok()
+            .and_then(|b| meta_end.checked_add(b))
+            .filter(|&e| e <= n)
+            .ok_or_else(|| broken("a message body in the stream reaches past its end"))?;
+    }
+    Ok(())
 }
 
 /// The reader allocates each block of an IPC file at the size its footer states before
@@ -202,5 +241,20 @@ fn cell(array: &dyn Array, i: usize) -> RawCell<'_> {
             RawCell::Unsupported("decimal (send float64)")
         }
         _ => RawCell::Unsupported("value of an unsupported Arrow type"),
+    }
+}
+
+#[cfg(test)]
+mod stream_guard_tests {
+    use super::messages_fit;
+
+    /// A stream whose first message claims a header of 2 GiB is refused before the reader
+    /// would try to allocate it; an empty stream (only the end marker) passes.
+    #[test]
+    fn stream_lengths_past_the_end_are_refused() {
+        let huge = [0xFF, 0xFF, 0xFF, 0xFF, 0xFF, 0xFF, 0xFF, 0x7F, 0, 0, 0, 0];
+        let err = messages_fit(&huge).unwrap_err();
+        assert!(err.0.contains("reaches past its end"), "{}", err.0);
+        assert!(messages_fit(&[0xFF, 0xFF, 0xFF, 0xFF, 0, 0, 0, 0]).is_ok());
     }
 }
