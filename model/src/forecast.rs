@@ -307,33 +307,31 @@ pub fn forecast(
     transform: Transform,
     scenario: &Scenario,
 ) -> Vec<ForecastRow> {
-    let eff = basis;
-    let post = basis;
     let base = basis.mean_at_covariate_means();
-    let m = post.sd_names.len();
-    let p = post.coef_names.len();
-    let n_sites = post.site_labels.len();
-    let next_year = post.data_through_year() + 1;
+    let m = basis.sd_names.len();
+    let p = basis.coef_names.len();
+    let n_sites = basis.site_labels.len();
+    let next_year = basis.data_through_year() + 1;
     // Fixed part per draw: mean at covariate means, shifted by the scenario.
-    let fixed: Vec<f64> = (0..eff.n)
+    let fixed: Vec<f64> = (0..basis.n)
         .map(|d| {
             let mut v = base[d];
             for (j, x) in scenario.covariates.iter().enumerate() {
                 if let Some(x) = x {
-                    v += eff.coef[d * p + 1 + j] * (x - post.covariate_means[j]);
+                    v += basis.coef[d * p + 1 + j] * (x - basis.covariate_means[j]);
                 }
             }
             v
         })
         .collect();
-    let sd2 = |d: usize, k: usize| eff.sd[d * m + k].powi(2);
-    let avg = |f: &dyn Fn(usize) -> f64| (0..eff.n).map(f).sum::<f64>() / eff.n as f64;
+    let sd2 = |d: usize, k: usize| basis.sd[d * m + k].powi(2);
+    let avg = |f: &dyn Fn(usize) -> f64| (0..basis.n).map(f).sum::<f64>() / basis.n as f64;
     let resid_var = avg(&|d| sd2(d, 0));
     let site_var = avg(&|d| sd2(d, 1));
     let year_var = avg(&|d| sd2(d, 2));
     let group_var = avg(&|d| (3..m).map(|k| sd2(d, k)).sum());
     let vars_for = |target: ForecastTarget| -> Vec<f64> {
-        (0..eff.n)
+        (0..basis.n)
             .map(|d| {
                 let mut v = sd2(d, 0) + (3..m).map(|k| sd2(d, k)).sum::<f64>();
                 if target.new_site() {
@@ -354,7 +352,7 @@ pub fn forecast(
             resid_var,
         ]
     };
-    let year_index = |y: i32| post.year_labels.binary_search(&y).ok();
+    let year_index = |y: i32| basis.year_labels.binary_search(&y).ok();
 
     let mut rows: Vec<ForecastRow> = Vec::new();
     // Monitored sites: next year, and their latest observed year.
@@ -369,14 +367,14 @@ pub fn forecast(
                 let year = if target.new_year() {
                     next_year
                 } else {
-                    post.site_last_year[s]
+                    basis.site_last_year[s]
                 };
                 let t = year_index(year);
-                let means = (0..eff.n)
+                let means = (0..basis.n)
                     .map(|d| {
-                        let mut v = fixed[d] + eff.site[s * eff.n + d];
+                        let mut v = fixed[d] + basis.site[s * basis.n + d];
                         if let (false, Some(t)) = (target.new_year(), t) {
-                            v += eff.year[t * eff.n + d];
+                            v += basis.year[t * basis.n + d];
                         }
                         v
                     })
@@ -387,7 +385,7 @@ pub fn forecast(
                 };
                 row_from(
                     target,
-                    Some(post.site_labels[s].clone()),
+                    Some(basis.site_labels[s].clone()),
                     year,
                     &scenario.name,
                     &comp,
@@ -401,9 +399,9 @@ pub fn forecast(
     // A new site in every observed year.
     let target = ForecastTarget::NewSiteKnownYear;
     let vars = vars_for(target);
-    for (t, &year) in post.year_labels.iter().enumerate() {
-        let means = (0..eff.n)
-            .map(|d| fixed[d] + eff.year[t * eff.n + d])
+    for (t, &year) in basis.year_labels.iter().enumerate() {
+        let means = (0..basis.n)
+            .map(|d| fixed[d] + basis.year[t * basis.n + d])
             .collect();
         let comp = Components {
             means,

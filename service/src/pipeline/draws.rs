@@ -271,7 +271,6 @@ pub fn decode(blob: &[u8]) -> Result<Decoded, ArrowError> {
         return Err(bad("no sd or coef draws"));
     }
     let m = sd.len();
-    let p = coef.len();
     let total = chains * draws;
     let sd_names: Vec<String> = sd.iter().map(|(n, _)| n.clone()).collect();
     let mut sd_draws = vec![0.0; total * m];
@@ -349,6 +348,5 @@ pub fn decode(blob: &[u8]) -> Result<Decoded, ArrowError> {
             .collect(),
         sd_names,
     };
-    let _ = p;
     Ok(Decoded { warm_start, basis })
 }
