@@ -1,5 +1,5 @@
 #!/usr/bin/env python3
-"""Generate the Vigil demo feed: an invented regional lake network, 2011-2026.
+"""Generate the Tidemark demo feed: an invented regional lake network, 2011-2026.
 
 All data written by this script are INVENTED for the demo. No lake, crew or value
 describes a real place or a real measurement.
@@ -134,7 +134,7 @@ HERE = os.path.dirname(os.path.abspath(__file__))
 def stream(name):
     """An independent, named random stream, so that adding one component later does not
     shift the numbers drawn for the others (string seeds are hashed deterministically)."""
-    return random.Random(f"vigil-demo/{SEED}/{name}")
+    return random.Random(f"tidemark-demo/{SEED}/{name}")
 
 
 def fmt(x, places):

@@ -7,10 +7,10 @@ use std::process::Command;
 use common::{Network, CONFIG};
 
 fn stderr_of(net: &Network, args: &[&str]) -> String {
-    let out = net.vigil(args);
+    let out = net.tidemark(args);
     assert!(
         !out.status.success(),
-        "vigil {args:?} accepted a bad config"
+        "tidemark {args:?} accepted a bad config"
     );
     assert_eq!(out.status.code(), Some(1));
     String::from_utf8_lossy(&out.stderr).into_owned()
@@ -24,7 +24,7 @@ fn a_bad_value_names_the_file_and_the_key() {
     assert_eq!(
         err.trim(),
         format!(
-            "vigil: error: {file}: series[0].transform: must be \"none\" or \"log\", found \"ln\""
+            "tidemark: error: {file}: series[0].transform: must be \"none\" or \"log\", found \"ln\""
         )
     );
     assert!(
@@ -40,7 +40,7 @@ fn an_unknown_key_is_refused_with_its_line() {
         "timezone = \"UTC\"\ntimezon = \"UTC\"",
     ));
     let err = stderr_of(&net, &["status"]);
-    assert!(err.contains("vigil.toml: schedule"), "{err}");
+    assert!(err.contains("tidemark.toml: schedule"), "{err}");
     assert!(err.contains("unknown field `timezon`"), "{err}");
     assert!(err.contains("(line 13, column 1)"), "{err}");
     assert_eq!(err.trim().lines().count(), 1, "{err}");
@@ -61,15 +61,15 @@ fn second_series_errors_carry_their_index() {
 #[test]
 fn a_missing_config_names_the_path() {
     let net = Network::new();
-    let out = Command::new(env!("CARGO_BIN_EXE_vigil"))
-        .args(["--config", "nowhere/vigil.toml", "status"])
+    let out = Command::new(env!("CARGO_BIN_EXE_tidemark"))
+        .args(["--config", "nowhere/tidemark.toml", "status"])
         .current_dir(net.dir.path())
         .output()
         .expect("run");
     assert!(!out.status.success());
     let err = String::from_utf8_lossy(&out.stderr);
     assert!(
-        err.contains("cannot read config file nowhere/vigil.toml"),
+        err.contains("cannot read config file nowhere/tidemark.toml"),
         "{err}"
     );
 }
@@ -78,9 +78,9 @@ fn a_missing_config_names_the_path() {
 fn config_comes_from_the_environment_and_paths_from_its_folder() {
     let net = Network::new();
     let elsewhere = tempfile::tempdir().expect("tmp");
-    let out = Command::new(env!("CARGO_BIN_EXE_vigil"))
+    let out = Command::new(env!("CARGO_BIN_EXE_tidemark"))
         .arg("init")
-        .env("VIGIL_CONFIG", net.config_path())
+        .env("TIDEMARK_CONFIG", net.config_path())
         .current_dir(elsewhere.path())
         .output()
         .expect("run");
@@ -101,14 +101,14 @@ fn config_comes_from_the_environment_and_paths_from_its_folder() {
 #[test]
 fn usage_errors_exit_2_and_help_works() {
     let net = Network::new();
-    let out = net.vigil(&["no-such-command"]);
+    let out = net.tidemark(&["no-such-command"]);
     assert_eq!(out.status.code(), Some(2));
     for args in [
         &["--help"][..],
         &["ingest", "--help"],
         &["status", "--help"],
     ] {
-        let out = net.vigil(args);
+        let out = net.tidemark(args);
         assert!(out.status.success());
         assert!(String::from_utf8_lossy(&out.stdout).contains("Usage"));
     }

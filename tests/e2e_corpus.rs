@@ -1,5 +1,5 @@
 //! The bad-input corpus, end to end: every case of `tests/corpus/manifest.toml` goes
-//! through the real `vigil ingest` in a fresh network, and its batch must come out exactly
+//! through the real `tidemark ingest` in a fresh network, and its batch must come out exactly
 //! as the manifest says: status, counts, reasons, lines. Across all cases, nothing
 //! accepted is lost (each accepted value is a row of `observations` unless it was an
 //! unchanged re-send), every rejection is recorded with a short reason, and the process
@@ -78,7 +78,8 @@ fn manifest() -> Manifest {
 }
 
 fn corpus_network() -> Network {
-    let config = std::fs::read_to_string(corpus_dir().join("vigil.toml")).expect("corpus config");
+    let config =
+        std::fs::read_to_string(corpus_dir().join("tidemark.toml")).expect("corpus config");
     let net = Network::with_config(&config);
     net.ok(&["init"]);
     net
@@ -209,7 +210,7 @@ fn run_case(case: &Case) -> Vec<String> {
     }
     let name = case.inbox_name();
     net.drop_file(name, case.bytes());
-    let out = net.vigil(&["ingest"]);
+    let out = net.tidemark(&["ingest"]);
     let stdout = String::from_utf8_lossy(&out.stdout);
     let stderr = String::from_utf8_lossy(&out.stderr);
     if !out.status.success() || stderr.contains("panicked") {
@@ -391,7 +392,7 @@ fn values_a_log_fit_cannot_use_are_kept_and_excluded_at_fit() {
     );
     // The fit may or may not pass the gate on so few visits; the exclusions are recorded
     // with the attempt either way.
-    let _ = net.vigil(&["refit", "--series", "chlorophyll"]);
+    let _ = net.tidemark(&["refit", "--series", "chlorophyll"]);
     let excluded = net.sqlite3(
         "SELECT e.site, e.year, e.visit FROM fit_exclusions e JOIN fits f USING (fit_id)
          WHERE f.series = 'chlorophyll' ORDER BY e.site",
@@ -410,20 +411,20 @@ fn values_a_log_fit_cannot_use_are_kept_and_excluded_at_fit() {
 
 /// Stable-Rust stand-in for `fuzz/fuzz_targets/feed_reader.rs`: seeded random mutations
 /// of every corpus case go through the feed readers, which must never panic. Run with
-/// `cargo test -p vigil-service --test e2e_corpus -- --ignored` (`VIGIL_FUZZ_INPUTS`
-/// sets the number of inputs, default 20000; `VIGIL_FUZZ_DUMP=FILE` keeps the input being
+/// `cargo test -p tidemark-service --test e2e_corpus -- --ignored` (`TIDEMARK_FUZZ_INPUTS`
+/// sets the number of inputs, default 20000; `TIDEMARK_FUZZ_DUMP=FILE` keeps the input being
 /// parsed, to replay a crash).
 #[test]
 #[ignore = "long: run on request"]
 fn random_mutations_of_the_corpus_never_panic() {
     use rand::{Rng, SeedableRng};
-    use vigil_service::config::Config;
-    use vigil_service::ingest::{parse_bytes, FileLayout};
-    use vigil_service::store::BatchContent;
+    use tidemark_service::config::Config;
+    use tidemark_service::ingest::{parse_bytes, FileLayout};
+    use tidemark_service::store::BatchContent;
 
     let config_text =
-        std::fs::read_to_string(corpus_dir().join("vigil.toml")).expect("corpus config");
-    let config = Config::parse(&config_text, "vigil.toml", &corpus_dir()).expect("config");
+        std::fs::read_to_string(corpus_dir().join("tidemark.toml")).expect("corpus config");
+    let config = Config::parse(&config_text, "tidemark.toml", &corpus_dir()).expect("config");
     let layout = FileLayout::from_config(&config);
     let seeds: Vec<Vec<u8>> = manifest()
         .case
@@ -432,14 +433,14 @@ fn random_mutations_of_the_corpus_never_panic() {
         .filter(|c| !c.generate.as_deref().is_some_and(|g| g.starts_with("long")))
         .map(Case::bytes)
         .collect();
-    let inputs: usize = std::env::var("VIGIL_FUZZ_INPUTS")
+    let inputs: usize = std::env::var("TIDEMARK_FUZZ_INPUTS")
         .ok()
         .and_then(|v| v.parse().ok())
         .unwrap_or(20_000);
     // The Arrow reader's caught panics (see ingest/arrow_feed.rs) would flood the output.
-    vigil_service::ingest::quiet_caught_panics();
+    tidemark_service::ingest::quiet_caught_panics();
     // Each input is written here before it is parsed: after a panic, the file holds it.
-    let dump = std::env::var_os("VIGIL_FUZZ_DUMP");
+    let dump = std::env::var_os("TIDEMARK_FUZZ_DUMP");
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(2024);
     let interesting: &[&[u8]] = &[
         b",",
@@ -482,7 +483,7 @@ fn random_mutations_of_the_corpus_never_panic() {
             }
         }
         if let Some(path) = &dump {
-            std::fs::write(path, &bytes).expect("write VIGIL_FUZZ_DUMP");
+            std::fs::write(path, &bytes).expect("write TIDEMARK_FUZZ_DUMP");
         }
         match parse_bytes(&bytes, &layout).1 {
             BatchContent::Unreadable { reason } => {

@@ -1,4 +1,4 @@
-//! Faults of the machine around Vigil, end to end: the database locked by another
+//! Faults of the machine around Tidemark, end to end: the database locked by another
 //! writer, a read-only database, a missing inbox, a full disk, a corrupt database file.
 //! Each must give a clear error on stderr, exit non-zero, leave the feed file waiting in
 //! the inbox, and lose nothing that was accepted before. (Killing the process mid-run is
@@ -55,14 +55,14 @@ fn sqlite3_at(db: &Path, query: &str) -> String {
     String::from_utf8_lossy(&out.stdout).into_owned()
 }
 
-/// A failed command: exit 1, a `vigil: error:` line, each stderr line naming `needle`
+/// A failed command: exit 1, a `tidemark: error:` line, each stderr line naming `needle`
 /// somewhere, no panic. Returns stderr.
 fn assert_clear_failure(out: &Output, needles: &[&str]) -> String {
     let stderr = String::from_utf8_lossy(&out.stderr).into_owned();
     assert_eq!(out.status.code(), Some(1), "exit code; stderr: {stderr}");
     assert!(!stderr.contains("panicked"), "{stderr}");
     let last = stderr.lines().last().unwrap_or("");
-    assert!(last.starts_with("vigil: error: "), "{stderr}");
+    assert!(last.starts_with("tidemark: error: "), "{stderr}");
     let lower = stderr.to_lowercase();
     assert!(
         needles.iter().any(|n| lower.contains(&n.to_lowercase())),
@@ -93,7 +93,7 @@ fn a_database_locked_by_another_writer_is_a_clear_busy_error() {
         .enable_all()
         .build()
         .expect("runtime");
-    // Another writer holds the write lock for longer than vigil's busy timeout.
+    // Another writer holds the write lock for longer than tidemark's busy timeout.
     let mut holder = rt.block_on(async {
         use sqlx::ConnectOptions;
         let mut conn = sqlx::sqlite::SqliteConnectOptions::new()
@@ -107,7 +107,7 @@ fn a_database_locked_by_another_writer_is_a_clear_busy_error() {
             .expect("take the write lock");
         conn
     });
-    let out = net.vigil(&["ingest"]);
+    let out = net.tidemark(&["ingest"]);
     let stderr = assert_clear_failure(&out, &["locked", "busy"]);
     assert!(stderr.contains("2021.csv"), "names the file: {stderr}");
     assert_eq!(net.files_in("inbox"), ["2021.csv"], "the file waits");
@@ -134,7 +134,7 @@ fn a_missing_inbox_is_a_clear_error_for_ingest_and_run_once() {
     let before = snapshot(&net.db_path());
     std::fs::remove_dir_all(net.path("inbox")).expect("remove the inbox");
     for command in ["ingest", "run-once"] {
-        let out = net.vigil(&[command]);
+        let out = net.tidemark(&[command]);
         let stderr = String::from_utf8_lossy(&out.stderr).into_owned();
         assert_eq!(out.status.code(), Some(1), "{command}: {stderr}");
         assert!(!stderr.contains("panicked"), "{stderr}");
@@ -186,7 +186,10 @@ impl Drop for Tmpfs {
 /// A network whose database lives on its own small tmpfs (`db/`), with the inbox and
 /// archive on the ordinary file system. None when no tmpfs can be mounted here.
 fn network_with_database_on_tmpfs(size: &str) -> Option<(Network, Tmpfs, PathBuf)> {
-    let config = CONFIG.replace("database = \"vigil.db\"", "database = \"db/vigil.db\"");
+    let config = CONFIG.replace(
+        "database = \"tidemark.db\"",
+        "database = \"db/tidemark.db\"",
+    );
     let net = Network::with_config(&config);
     let mount = match Tmpfs::mount(&net.path("db"), size) {
         Ok(m) => m,
@@ -198,7 +201,7 @@ fn network_with_database_on_tmpfs(size: &str) -> Option<(Network, Tmpfs, PathBuf
     net.ok(&["init"]);
     net.drop_file("2020.csv", season(30, 2020));
     net.ok(&["ingest"]);
-    let db = net.path("db/vigil.db");
+    let db = net.path("db/tidemark.db");
     Some((net, mount, db))
 }
 
@@ -211,7 +214,7 @@ fn a_read_only_database_is_a_clear_error_and_the_file_waits() {
     let before = snapshot(&db);
     net.drop_file("2021.csv", season(30, 2021));
     mount.remount("ro");
-    let out = net.vigil(&["ingest"]);
+    let out = net.tidemark(&["ingest"]);
     assert_clear_failure(
         &out,
         &["read-only", "readonly", "read only", "unable to open"],
@@ -231,7 +234,7 @@ fn a_full_disk_is_a_clear_error_and_loses_nothing() {
     let before = snapshot(&db);
     // Far more values than the file system has room for.
     net.drop_file("big.csv", season(40_000, 2021));
-    let out = net.vigil(&["ingest"]);
+    let out = net.tidemark(&["ingest"]);
     assert_clear_failure(&out, &["full", "no space"]);
     assert_eq!(net.files_in("inbox"), ["big.csv"], "the file waits");
     assert!(net.files_in("archive").iter().all(|f| f != "big.csv"));
@@ -250,10 +253,10 @@ fn a_file_that_is_not_a_database_is_refused_and_left_alone() {
     std::fs::write(net.db_path(), &junk).expect("write");
     net.drop_file("2020.csv", season(5, 2020));
     for args in [&["ingest"][..], &["status"], &["init"], &["run-once"]] {
-        let out = net.vigil(args);
+        let out = net.tidemark(args);
         let stderr = assert_clear_failure(&out, &["not a database"]);
         assert!(
-            stderr.contains("vigil.db"),
+            stderr.contains("tidemark.db"),
             "{args:?} names the file: {stderr}"
         );
     }
@@ -278,10 +281,10 @@ fn a_damaged_database_is_a_clear_error_and_the_file_waits() {
     }
     std::fs::write(net.db_path(), &bytes).expect("write");
     for args in [&["ingest"][..], &["status"]] {
-        let out = net.vigil(args);
+        let out = net.tidemark(args);
         let stderr = assert_clear_failure(&out, &["malformed", "corrupt", "damaged"]);
         assert!(
-            stderr.contains("vigil.db"),
+            stderr.contains("tidemark.db"),
             "{args:?} names the file: {stderr}"
         );
     }

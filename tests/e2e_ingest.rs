@@ -375,7 +375,7 @@ fn failed_batch_leaves_nothing() {
         "a.csv",
         format!("{HEADER}\nL1,2020,1,3.2,12,18.5,A\nL2,2020,1,abc,,,\n"),
     );
-    let out = net.vigil(&["ingest"]);
+    let out = net.tidemark(&["ingest"]);
     assert!(!out.status.success());
     let stderr = String::from_utf8_lossy(&out.stderr);
     assert!(stderr.contains("injected failure"), "{stderr}");
@@ -384,7 +384,7 @@ fn failed_batch_leaves_nothing() {
             .lines()
             .last()
             .unwrap_or("")
-            .starts_with("vigil: error:"),
+            .starts_with("tidemark: error:"),
         "{stderr}"
     );
     for table in ["ingest_batches", "observations", "sites", "rejections"] {
@@ -413,7 +413,7 @@ fn named_files_outside_the_inbox_are_copied_not_moved() {
     assert!(out.contains("ingested as batch 1"), "{out}");
     common::assert_exists(&outside);
     assert_eq!(net.files_in("archive"), ["upload.csv"]);
-    let missing = net.vigil(&["ingest", "no-such-file.csv"]);
+    let missing = net.tidemark(&["ingest", "no-such-file.csv"]);
     assert!(!missing.status.success());
     assert!(String::from_utf8_lossy(&missing.stderr).contains("no-such-file.csv is not a file"));
 }

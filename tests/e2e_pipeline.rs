@@ -4,14 +4,14 @@
 mod common;
 
 use common::{Network, Value};
-use vigil_model::simulate::{simulate_rows, NetworkSpec};
+use tidemark_model::simulate::{simulate_rows, NetworkSpec};
 
 /// One series on the log scale with a covariate; a small sampler for speed.
 fn config(max_rhat: f64) -> String {
     format!(
         r#"
 [store]
-database = "vigil.db"
+database = "tidemark.db"
 
 [feed]
 inbox = "inbox"
@@ -112,8 +112,8 @@ fn refit_publishes_a_version_with_all_four_targets_and_ordered_intervals() {
         "{targets}"
     );
     let disordered = net.scalar(
-        "SELECT COUNT(*) FROM latest_forecasts WHERE NOT (lo95 <= lo80 AND lo80 <= lo50 AND lo50 <= q50 AND q50 <= hi50
-         AND hi50 <= hi80 AND hi80 <= hi95) OR lo95 <= 0",
+        "SELECT COUNT(*) FROM latest_forecasts WHERE NOT (q025 <= q10 AND q10 <= q25 AND q25 <= q50 AND q50 <= q75
+         AND q75 <= q90 AND q90 <= q975) OR q025 <= 0",
     );
     assert_eq!(disordered, Value::Int(0));
     let bad_shares = net.scalar(
@@ -142,8 +142,39 @@ fn refit_publishes_a_version_with_all_four_targets_and_ordered_intervals() {
         Value::Int(1)
     );
     assert_eq!(
-        net.scalar("SELECT COUNT(*) FROM variance_drift WHERE series = 'chlorophyll'"),
-        Value::Int(3)
+        net.sqlite3(
+            "SELECT kind, COUNT(*) FROM variance_drift WHERE series = 'chlorophyll' GROUP BY kind"
+        ),
+        "sd|3\nshare|3\n"
+    );
+
+    // The baseline scenario's covariate value is the network mean over the fitted visits
+    // (those with a positive response and a covariate), computed here in SQL instead.
+    let fitted = "SELECT r.site, r.year, t.num_value AS temp
+         FROM current_observations r JOIN current_observations t
+           ON t.site = r.site AND t.year = r.year AND t.visit = r.visit
+          AND t.column_name = 'surface_temp_c'
+         WHERE r.column_name = 'chl_ug_l' AND r.num_value > 0";
+    let gap = net
+        .scalar(&format!(
+            "SELECT (SELECT json_extract(scenario_covariates, '$.surface_temp_c') FROM latest_forecasts LIMIT 1)
+                    - (SELECT AVG(temp) FROM ({fitted}))"
+        ))
+        .real();
+    assert!(
+        gap.abs() < 1e-9,
+        "baseline covariate off the network mean by {gap}"
+    );
+    // Each known-site row says the site's last observed year.
+    let wrong_last_year = net.scalar(&format!(
+        "SELECT COUNT(*) FROM latest_forecasts f
+         WHERE f.target LIKE 'known_site%'
+           AND f.last_observed_year IS NOT (SELECT MAX(year) FROM ({fitted}) v WHERE v.site = f.site)"
+    ));
+    assert_eq!(wrong_last_year, Value::Int(0));
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM latest_forecasts WHERE target LIKE 'new_site%' AND last_observed_year IS NOT NULL"),
+        Value::Int(0)
     );
 
     // The awkward code round-trips verbatim into forecasts and effects.
@@ -176,9 +207,9 @@ fn refit_publishes_a_version_with_all_four_targets_and_ordered_intervals() {
     assert_eq!(published_versions(&net), 2);
 
     // `forecast` rewrites the latest version's forecasts from its stored draws, identically.
-    let before = net.sqlite3("SELECT target, site, year, q50, lo80, hi80 FROM latest_forecasts ORDER BY target, site, year");
+    let before = net.sqlite3("SELECT target, site, year, q50, q10, q90 FROM latest_forecasts ORDER BY target, site, year");
     net.ok(&["forecast"]);
-    let after = net.sqlite3("SELECT target, site, year, q50, lo80, hi80 FROM latest_forecasts ORDER BY target, site, year");
+    let after = net.sqlite3("SELECT target, site, year, q50, q10, q90 FROM latest_forecasts ORDER BY target, site, year");
     assert_eq!(before, after);
 }
 
@@ -229,12 +260,12 @@ fn a_fit_failing_the_gate_is_rejected_and_latest_forecasts_stay() {
     net.ok(&["init"]);
     net.drop_file("a.csv", feed(2015..2021));
     net.ok(&["run-once"]);
-    let before = net.sqlite3("SELECT fit_id, target, site, year, q50, lo95, hi95 FROM latest_forecasts ORDER BY target, site, year");
+    let before = net.sqlite3("SELECT fit_id, target, site, year, q50, q025, q975 FROM latest_forecasts ORDER BY target, site, year");
 
     // An unreachable R-hat gate: every attempt fails it.
     std::fs::write(net.config_path(), config(1.000_000_1)).unwrap();
     net.drop_file("b.csv", feed(2021..2022));
-    let out = net.vigil(&["run-once"]);
+    let out = net.tidemark(&["run-once"]);
     assert!(
         !out.status.success(),
         "run-once must exit non-zero when a series is rejected"
@@ -252,7 +283,7 @@ fn a_fit_failing_the_gate_is_rejected_and_latest_forecasts_stay() {
         "{:?}",
         rejected[0][2]
     );
-    let after = net.sqlite3("SELECT fit_id, target, site, year, q50, lo95, hi95 FROM latest_forecasts ORDER BY target, site, year");
+    let after = net.sqlite3("SELECT fit_id, target, site, year, q50, q025, q975 FROM latest_forecasts ORDER BY target, site, year");
     assert_eq!(before, after, "the last published version keeps serving");
     assert_eq!(net.scalar("SELECT COUNT(*) FROM forecasts f JOIN fits USING (fit_id) WHERE fits.status <> 'published'"), Value::Int(0));
     assert_eq!(
@@ -280,8 +311,8 @@ fn reml_json_has_the_contract_fields() {
                 && doc["coef"][coef]["se"].as_f64().unwrap() > 0.0
         );
     }
-    assert!(doc["reml_criterion"].is_f64());
-    let unknown = net.vigil(&["reml", "--series", "nitrogen"]);
+    assert!(doc["neg2_reml_loglik"].is_f64());
+    let unknown = net.tidemark(&["reml", "--series", "nitrogen"]);
     assert!(!unknown.status.success());
     assert!(String::from_utf8_lossy(&unknown.stderr).contains("no series named"));
 }
@@ -290,11 +321,11 @@ fn reml_json_has_the_contract_fields() {
 fn the_demo_publishes_a_version_per_season() {
     let dir = tempfile::tempdir().unwrap();
     let out_dir = dir.path().join("demo");
-    let out = std::process::Command::new(env!("CARGO_BIN_EXE_vigil"))
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_tidemark"))
         .args(["demo", "--out"])
         .arg(&out_dir)
         .current_dir(dir.path())
-        .env_remove("VIGIL_CONFIG")
+        .env_remove("TIDEMARK_CONFIG")
         .output()
         .unwrap();
     let stdout = String::from_utf8_lossy(&out.stdout);
@@ -311,7 +342,7 @@ fn the_demo_publishes_a_version_per_season() {
     let net = Network {
         dir: tempfile::tempdir().unwrap(),
     };
-    let db = out_dir.join("vigil.db");
+    let db = out_dir.join("tidemark.db");
     let query = |q: &str| {
         let o = std::process::Command::new("sqlite3")
             .arg(&db)
@@ -336,5 +367,47 @@ fn the_demo_publishes_a_version_per_season() {
             .parse::<i64>()
             .unwrap()
             >= 5
+    );
+}
+
+/// `known_site_max_gap` leaves out known-site forecasts of a site no longer visited; the
+/// site still counts in the fit and in new-site forecasts.
+#[test]
+fn a_site_not_visited_for_longer_than_the_cap_gets_no_known_site_forecast() {
+    let cfg = config(1.05).replace(
+        "covariates = [\"surface_temp_c\"]\n",
+        "covariates = [\"surface_temp_c\"]\nknown_site_max_gap = 2\n",
+    );
+    let net = Network::with_config(&cfg);
+    net.ok(&["init"]);
+    net.drop_file("2015-2020.csv", feed(2015..2021));
+    // A lake dropped from the network after 2016 (invented values).
+    net.drop_file(
+        "dropped.csv",
+        "lake,season,visit,surface_temp_c,chl_ug_l\n\
+         Dropped Lake,2015,1,18.0,3.1\nDropped Lake,2015,2,17.5,2.9\n\
+         Dropped Lake,2016,1,18.2,3.4\nDropped Lake,2016,2,18.9,3.0\n",
+    );
+    net.ok(&["ingest"]);
+    net.ok(&["refit"]);
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM latest_forecasts WHERE site = 'Dropped Lake'"),
+        Value::Int(0)
+    );
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM latest_forecasts WHERE target = 'known_site_new_year' AND last_observed_year >= 2018")
+            .int(),
+        15,
+        "the 15 lakes seen within two years of 2020 keep their rows"
+    );
+    assert!(
+        net.scalar("SELECT n_sites FROM latest_fits").int() == 16,
+        "the dropped lake is still fitted"
+    );
+    // `forecast` applies the same cap when it rewrites the rows.
+    net.ok(&["forecast"]);
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM latest_forecasts WHERE site = 'Dropped Lake'"),
+        Value::Int(0)
     );
 }

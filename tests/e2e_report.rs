@@ -1,4 +1,4 @@
-//! End-to-end: `vigil drift` and `vigil report` on a small generated network delivered in
+//! End-to-end: `tidemark drift` and `tidemark report` on a small generated network delivered in
 //! three parts, through the real binary; the report is also rendered in headless
 //! Chromium and the screenshot checked for content.
 
@@ -9,11 +9,11 @@ use std::process::Command;
 use std::time::{Duration, Instant};
 
 use common::Network;
-use vigil_model::simulate::{simulate_rows, NetworkSpec};
+use tidemark_model::simulate::{simulate_rows, NetworkSpec};
 
 const CONFIG: &str = r#"
 [store]
-database = "vigil.db"
+database = "tidemark.db"
 
 [feed]
 inbox = "inbox"
@@ -231,7 +231,7 @@ fn drift_flags_a_partition_that_moves_and_not_one_that_holds() {
         net.ok(&["drift", "--series", "phosphorus", "--json"]),
         net.ok(&["drift", "--json"])
     );
-    let unknown = net.vigil(&["drift", "--series", "nitrogen"]);
+    let unknown = net.tidemark(&["drift", "--series", "nitrogen"]);
     assert!(!unknown.status.success());
     let stderr = String::from_utf8_lossy(&unknown.stderr);
     assert!(stderr.contains("no series named \"nitrogen\"") && stderr.contains("phosphorus"));
@@ -303,10 +303,10 @@ fn the_report_is_one_self_contained_page_with_escaped_codes() {
     assert_eq!(leftovers, ["latest.html"]);
     // An unknown series is refused; a folder that does not exist is a clear error.
     assert!(!net
-        .vigil(&["report", "--out", "x.html", "--series", "nitrogen"])
+        .tidemark(&["report", "--out", "x.html", "--series", "nitrogen"])
         .status
         .success());
-    let missing = net.vigil(&["report", "--out", "no/such/folder/r.html"]);
+    let missing = net.tidemark(&["report", "--out", "no/such/folder/r.html"]);
     assert!(!missing.status.success());
     assert!(String::from_utf8_lossy(&missing.stderr).contains("cannot write the report"));
 }
@@ -372,18 +372,18 @@ fn the_report_renders_in_headless_chromium() {
     let (out, _) = write_report(&net);
     let png_path = net.path("reports/latest.png");
     screenshot(&out, &png_path);
-    // To look at the page and the screenshot yourself: VIGIL_KEEP_REPORT=DIR.
-    if let Some(keep) = std::env::var_os("VIGIL_KEEP_REPORT") {
+    // To look at the page and the screenshot yourself: TIDEMARK_KEEP_REPORT=DIR.
+    if let Some(keep) = std::env::var_os("TIDEMARK_KEEP_REPORT") {
         let keep = Path::new(&keep);
         std::fs::create_dir_all(keep).unwrap();
         for (from, name) in [
             (&out, "report.html"),
             (&png_path, "report.png"),
-            (&net.db_path(), "vigil.db"),
+            (&net.db_path(), "tidemark.db"),
         ] {
             std::fs::copy(from, keep.join(name)).unwrap();
         }
-        std::fs::write(keep.join("vigil.toml"), CONFIG).unwrap();
+        std::fs::write(keep.join("tidemark.toml"), CONFIG).unwrap();
     }
 
     let decoder = png::Decoder::new(std::fs::File::open(&png_path).expect("screenshot written"));

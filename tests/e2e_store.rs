@@ -9,7 +9,7 @@ use common::Network;
 fn init_is_idempotent_and_sets_up_wal() {
     let net = Network::new();
     let first = net.ok(&["init"]);
-    assert!(first.contains("schema version 1"), "{first}");
+    assert!(first.contains("schema version 2"), "{first}");
     net.ok(&["init"]);
     for dir in ["inbox", "archive", "quarantine"] {
         common::assert_exists(&net.path(dir));
@@ -18,7 +18,7 @@ fn init_is_idempotent_and_sets_up_wal() {
     assert_eq!(
         net.scalar("SELECT COUNT(*) FROM _sqlx_migrations WHERE success")
             .int(),
-        1
+        2
     );
 }
 
@@ -83,15 +83,16 @@ fn contract_tables_and_columns_exist() {
                 "site",
                 "year",
                 "scenario",
+                "last_observed_year",
                 "mean",
                 "sd",
+                "q025",
+                "q10",
+                "q25",
                 "q50",
-                "lo50",
-                "hi50",
-                "lo80",
-                "hi80",
-                "lo95",
-                "hi95",
+                "q75",
+                "q90",
+                "q975",
                 "share_site",
                 "share_year",
                 "share_groups",
@@ -120,15 +121,17 @@ fn contract_tables_and_columns_exist() {
                 "site",
                 "year",
                 "scenario",
+                "scenario_covariates",
+                "last_observed_year",
                 "mean",
                 "sd",
+                "q025",
+                "q10",
+                "q25",
                 "q50",
-                "lo50",
-                "hi50",
-                "lo80",
-                "hi80",
-                "lo95",
-                "hi95",
+                "q75",
+                "q90",
+                "q975",
                 "share_site",
                 "share_year",
                 "share_groups",
@@ -143,11 +146,19 @@ fn contract_tables_and_columns_exist() {
                 "version",
                 "fit_id",
                 "data_through_year",
+                "kind",
                 "term",
                 "q05",
                 "q50",
                 "q95",
+                "previous_q50",
+                "change",
+                "flagged",
             ],
+        ),
+        (
+            "forecast_scenarios",
+            &["fit_id", "scenario", "covariate", "value"],
         ),
     ];
     for (table, columns) in contract {
@@ -199,6 +210,12 @@ fn views_serve_the_latest_published_version_and_the_drift() {
          chlorophyll|1|1|2020|site|0.5|1.0|1.5\n\
          chlorophyll|2|2|2021|residual|0.25|0.3|0.35\n\
          chlorophyll|2|2|2021|site|0.6|1.1|1.4\n"
+    );
+    // The previous version's median, the change and the screening flag (a median on a
+    // bound counts as inside).
+    assert_eq!(
+        net.sqlite3("SELECT version, term, previous_q50, round(change, 6), flagged FROM variance_drift WHERE kind = 'sd'"),
+        "1|residual|||0\n1|site|||0\n2|residual|0.3|0.0|0\n2|site|1.0|0.1|0\n"
     );
 }
 
@@ -252,17 +269,20 @@ fn accepted_values_cannot_be_rewritten() {
 }
 
 #[test]
-fn a_database_from_a_newer_vigil_is_refused() {
+fn a_database_from_a_newer_tidemark_is_refused() {
     let net = Network::initialised();
     net.sqlite3(
         "INSERT INTO _sqlx_migrations (version, description, success, checksum, execution_time)
          VALUES (9999, 'from the future', 1, x'00', 0)",
     );
     for args in [&["status"][..], &["ingest"], &["init"]] {
-        let out = net.vigil(args);
+        let out = net.tidemark(args);
         assert!(!out.status.success(), "{args:?} ran on a newer database");
         let err = String::from_utf8_lossy(&out.stderr);
-        assert!(err.contains("written by a newer vigil"), "{args:?}: {err}");
+        assert!(
+            err.contains("written by a newer tidemark"),
+            "{args:?}: {err}"
+        );
         assert!(err.contains("9999"), "{err}");
         assert_eq!(
             err.trim().lines().count(),
@@ -275,15 +295,15 @@ fn a_database_from_a_newer_vigil_is_refused() {
 #[test]
 fn a_missing_or_unmigrated_database_asks_for_init() {
     let net = Network::new();
-    let out = net.vigil(&["status"]);
+    let out = net.tidemark(&["status"]);
     assert!(!out.status.success());
-    assert!(String::from_utf8_lossy(&out.stderr).contains("does not exist; run `vigil init`"));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("does not exist; run `tidemark init`"));
 
     net.sqlite3("CREATE TABLE unrelated (x)");
-    let out = net.vigil(&["ingest"]);
+    let out = net.tidemark(&["ingest"]);
     assert!(!out.status.success());
     let err = String::from_utf8_lossy(&out.stderr);
-    assert!(err.contains("run `vigil init`"), "{err}");
+    assert!(err.contains("run `tidemark init`"), "{err}");
     net.ok(&["init"]);
     net.ok(&["status"]);
 }
@@ -305,7 +325,7 @@ fn status_json_reports_series_batches_and_schedule() {
     net.ok(&["ingest"]);
     net.sqlite3(FITS);
     let s: serde_json::Value = serde_json::from_str(&net.ok(&["status", "--json"])).expect("json");
-    assert_eq!(s["schema_version"], 1);
+    assert_eq!(s["schema_version"], 2);
     assert_eq!(s["inbox_waiting"], 0);
     assert_eq!(s["batches"][0]["values_accepted"], 1);
     assert_eq!(s["batches"][0]["values_rejected"], 1);
@@ -359,7 +379,7 @@ fn only_the_store_writes_sql() {
 /// rows join the current values of each visit.
 #[test]
 fn series_rows_and_watermarks_follow_the_current_values() {
-    use vigil_service::store::{SeriesRow, Store};
+    use tidemark_service::store::{SeriesRow, Store};
     let net = Network::initialised();
     let header = "lake,season,visit,chl_ug_l,tp_ug_l,surface_temp_c,crew";
     net.drop_file(
@@ -449,7 +469,7 @@ fn series_rows_and_watermarks_follow_the_current_values() {
 /// survive the per-site aggregation.
 #[test]
 fn series_rows_round_trip_every_double_exactly() {
-    use vigil_service::store::Store;
+    use tidemark_service::store::Store;
     let net = Network::initialised();
     let values: [f64; 6] = [
         0.1 + 0.2,
@@ -485,4 +505,110 @@ fn series_rows_round_trip_every_double_exactly() {
         values.iter().map(|v| v.to_bits()).collect::<Vec<_>>()
     );
     assert_eq!(rows[0].visit, "v\"0]\\");
+}
+
+/// A database written by the first release (`tests/fixtures/README.md`) upgrades with
+/// `tidemark init`: every published version keeps its fit row, summaries and draws
+/// byte for byte, its forecasts keep their numbers under the quantile names, the views
+/// read, and the next refit warm-starts from the old draws.
+#[test]
+fn a_database_of_the_previous_release_upgrades_and_keeps_every_version() {
+    let fixtures = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../tests/fixtures");
+    let config = std::fs::read_to_string(fixtures.join("release-0.1.0.toml")).expect("config");
+    let net = Network::with_config(&config);
+    std::fs::copy(fixtures.join("release-0.1.0.db"), net.db_path()).expect("copy database");
+    for dir in ["inbox", "archive", "quarantine"] {
+        std::fs::create_dir_all(net.path(dir)).expect("folder");
+    }
+    let fits_q = "SELECT * FROM fits WHERE status = 'published' ORDER BY fit_id";
+    let summaries_q = "SELECT * FROM posterior_summary ORDER BY fit_id, kind, term, level";
+    let draws_q = "SELECT fit_id, format, blob FROM fit_draws ORDER BY fit_id";
+    let old_fits = net.sql(fits_q);
+    let old_summaries = net.sql(summaries_q);
+    let old_draws = net.sql(draws_q);
+    let old_forecasts = net.sql(
+        "SELECT fit_id, target, COALESCE(site, ''), year, mean, sd, lo95, lo80, lo50, q50, hi50, hi80, hi95,
+                share_site, share_year, share_groups, share_residual, share_estimation
+         FROM forecasts ORDER BY fit_id, target, site, year",
+    );
+    assert_eq!(
+        old_fits.len(),
+        4,
+        "the fixture holds four published versions"
+    );
+    assert!(!old_forecasts.is_empty());
+
+    // A binary of this release refuses the old database until it is upgraded.
+    let refused = net.tidemark(&["status"]);
+    assert!(!refused.status.success());
+    assert!(
+        String::from_utf8_lossy(&refused.stderr).contains("tidemark init"),
+        "{}",
+        String::from_utf8_lossy(&refused.stderr)
+    );
+    net.ok(&["init"]);
+
+    assert_eq!(
+        net.sql(fits_q),
+        old_fits,
+        "published fit rows are unchanged"
+    );
+    assert_eq!(
+        net.sql(summaries_q),
+        old_summaries,
+        "summaries are unchanged"
+    );
+    assert_eq!(net.sql(draws_q), old_draws, "draws are unchanged");
+    let new_forecasts = net.sql(
+        "SELECT fit_id, target, COALESCE(site, ''), year, mean, sd, q025, q10, q25, q50, q75, q90, q975,
+                share_site, share_year, share_groups, share_residual, share_estimation
+         FROM forecasts ORDER BY fit_id, target, site, year",
+    );
+    assert_eq!(new_forecasts, old_forecasts, "forecasts keep their numbers");
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM forecasts WHERE last_observed_year IS NOT NULL")
+            .int(),
+        0,
+        "the first release did not record last observed years"
+    );
+    // The views read on the upgraded database.
+    assert_eq!(
+        net.scalar("SELECT COUNT(DISTINCT fit_id) FROM latest_forecasts")
+            .int(),
+        2
+    );
+    let flagged_or_not = net.sql("SELECT DISTINCT flagged FROM variance_drift");
+    assert!(!flagged_or_not.is_empty());
+    assert_eq!(
+        net.scalar("SELECT MAX(version) FROM _sqlx_migrations")
+            .int(),
+        2,
+        "the upgrade is recorded"
+    );
+
+    // The old draws still decode: forecasts are rebuilt from them, and a refit
+    // warm-starts from them.
+    net.ok(&["forecast", "--series", "phosphorus"]);
+    assert!(
+        net.scalar(
+            "SELECT COUNT(*) FROM latest_forecasts WHERE series = 'phosphorus' AND last_observed_year IS NOT NULL"
+        )
+        .int()
+            > 0
+    );
+    let out = net.ok(&["refit", "--force", "--series", "phosphorus"]);
+    assert!(out.contains("published version 3"), "{out}");
+    let warm_from = net.scalar(
+        "SELECT warm_start_from FROM fits WHERE series = 'phosphorus' AND version = 3 AND status = 'published'",
+    );
+    let old_v2 = net.scalar(
+        "SELECT fit_id FROM fits WHERE series = 'phosphorus' AND version = 2 AND status = 'published'",
+    );
+    // A warm start that fails the gate falls back cold; either way the old version stays.
+    assert!(warm_from == old_v2 || warm_from.is_null(), "{warm_from:?}");
+    assert_eq!(
+        net.sql(&format!("{fits_q} LIMIT 4")),
+        old_fits,
+        "publishing a new version leaves the old ones as they were"
+    );
 }

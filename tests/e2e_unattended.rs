@@ -1,6 +1,6 @@
 //! End-to-end: unattended operation through the real binary — `serve` on a schedule, the
 //! single-instance lease, shutdown on SIGTERM, the catch-up run, and SIGKILL at random
-//! moments of `run-once` (a loop of trials; `VIGIL_KILL_TRIALS` sets how many).
+//! moments of `run-once` (a loop of trials; `TIDEMARK_KILL_TRIALS` sets how many).
 
 mod common;
 
@@ -10,14 +10,14 @@ use std::time::{Duration, Instant};
 
 use common::{dead_pid, host_name, spawn_logged, wait_until, Network};
 use rand::{Rng, SeedableRng};
-use vigil_model::simulate::{simulate_rows, NetworkSpec};
+use tidemark_model::simulate::{simulate_rows, NetworkSpec};
 
 /// One series; a small sampler and an easy gate, so every completed run publishes.
 fn config(cron: &str, extra_schedule: &str, draws: u32) -> String {
     format!(
         r#"
 [store]
-database = "vigil.db"
+database = "tidemark.db"
 
 [feed]
 inbox = "inbox"
@@ -178,12 +178,12 @@ fn serve_publishes_on_schedule_refuses_a_second_instance_and_stops_on_sigterm() 
 
     // A second instance refuses, naming the holder.
     for args in [&["run-once"][..], &["refit"][..], &["serve"][..]] {
-        let out = net.vigil(args);
+        let out = net.tidemark(args);
         let err = String::from_utf8_lossy(&out.stderr);
         assert!(!out.status.success(), "{args:?} ran beside serve");
         assert!(
             err.contains(&format!(
-                "in use by another vigil: pid {pid} on host {}",
+                "in use by another tidemark: pid {pid} on host {}",
                 host_name()
             )),
             "{args:?}: {err}"
@@ -388,7 +388,7 @@ fn a_stale_lease_is_taken_over_and_recorded() {
     assert!(status.contains("lease: STALE"), "{status}");
 
     net.drop_file("2001-2006.csv", csv(&network_rows(12, 6)));
-    let out = net.vigil(&["run-once"]);
+    let out = net.tidemark(&["run-once"]);
     assert!(
         out.status.success(),
         "{}",
@@ -414,7 +414,7 @@ fn a_stale_lease_is_taken_over_and_recorded() {
     net.sqlite3(
         "INSERT INTO instance_lease VALUES (1, 'faraway', 1, 'other-host', '2026-01-01T00:00:00Z', strftime('%Y-%m-%dT%H:%M:%SZ', 'now'))",
     );
-    let out = net.vigil(&["refit"]);
+    let out = net.tidemark(&["refit"]);
     let err = String::from_utf8_lossy(&out.stderr);
     assert!(!out.status.success());
     assert!(
@@ -438,7 +438,7 @@ fn a_rejected_fit_is_shown_first_by_status() {
     // An impossible gate: every attempt is rejected, run-once says so with its exit code.
     let strict = config("30 2 * * *", "", 300).replace("max_rhat = 1.2", "max_rhat = 1.0000001");
     std::fs::write(net.config_path(), strict).expect("config");
-    let out = net.vigil(&["refit", "--force"]);
+    let out = net.tidemark(&["refit", "--force"]);
     assert!(!out.status.success());
     // The gate's fallbacks, in order: warm start, cold start, one extended attempt with
     // twice the draws; the last is what is recorded.
@@ -474,9 +474,9 @@ fn a_rejected_fit_is_shown_first_by_status() {
     assert!(s["lease"].is_null());
 }
 
-/// How many kill trials: `VIGIL_KILL_TRIALS` (default 10).
+/// How many kill trials: `TIDEMARK_KILL_TRIALS` (default 10).
 fn kill_trials() -> usize {
-    std::env::var("VIGIL_KILL_TRIALS")
+    std::env::var("TIDEMARK_KILL_TRIALS")
         .ok()
         .and_then(|v| v.parse().ok())
         .unwrap_or(10)
@@ -501,7 +501,7 @@ fn sigkill_at_random_moments_of_run_once_loses_nothing_and_half_writes_nothing()
     net.ok(&["run-once"]);
     let run_time = start.elapsed();
     let trials = kill_trials();
-    let seed: u64 = std::env::var("VIGIL_KILL_SEED")
+    let seed: u64 = std::env::var("TIDEMARK_KILL_SEED")
         .ok()
         .and_then(|v| v.parse().ok())
         .unwrap_or(2026);
@@ -598,7 +598,7 @@ fn sigkill_at_random_moments_of_run_once_loses_nothing_and_half_writes_nothing()
 
 /// SIGKILL of `serve` at random moments (idle, ingesting, fitting or publishing): the
 /// same invariants hold, and a later `run-once` takes over the dead holder's lease and
-/// completes. `VIGIL_SERVE_KILL_TRIALS` (default 3) sets the number of trials.
+/// completes. `TIDEMARK_SERVE_KILL_TRIALS` (default 3) sets the number of trials.
 #[test]
 fn sigkill_at_random_moments_of_serve_loses_nothing_and_half_writes_nothing() {
     let net = Network::with_config(&config("*/2 * * * * *", "catch_up = false", 6000));
@@ -610,7 +610,7 @@ fn sigkill_at_random_moments_of_serve_loses_nothing_and_half_writes_nothing() {
         .collect::<BTreeSet<_>>()
         .into_iter()
         .collect();
-    let trials: usize = std::env::var("VIGIL_SERVE_KILL_TRIALS")
+    let trials: usize = std::env::var("TIDEMARK_SERVE_KILL_TRIALS")
         .ok()
         .and_then(|v| v.parse().ok())
         .unwrap_or(3);

@@ -5,12 +5,12 @@
 use std::collections::BTreeSet;
 
 use libfuzzer_sys::fuzz_target;
-use vigil_service::config::KeyColumns;
-use vigil_service::ingest::{parse_bytes, FileLayout};
-use vigil_service::store::BatchContent;
+use tidemark_service::config::KeyColumns;
+use tidemark_service::ingest::{parse_bytes, FileLayout};
+use tidemark_service::store::BatchContent;
 
 fuzz_target!(|bytes: &[u8]| {
-    // The key columns of tests/corpus/vigil.toml, with `crew` as a group label.
+    // The key columns of tests/corpus/tidemark.toml, with `crew` as a group label.
     let layout = FileLayout {
         keys: KeyColumns {
             site: "lake".into(),

@@ -1,12 +1,12 @@
 //! Benchmarks of the model engine on generated networks (DESIGN §5, issue B1–B3).
 //!
-//! `cargo bench -p vigil-model --bench networks -- [b1] [b2] [b3] [reml]` (all when none
+//! `cargo bench -p tidemark-model --bench networks -- [b1] [b2] [b3] [reml]` (all when none
 //! is named). Figures are wall-clock on this machine; peak memory is the process's
 //! high-water mark (run one benchmark per process for a clean figure).
 
 use std::time::Instant;
-use vigil_model::simulate::{simulate, simulate_rows, site_label, NetworkSpec};
-use vigil_model::*;
+use tidemark_model::simulate::{simulate, simulate_rows, site_label, NetworkSpec};
+use tidemark_model::*;
 
 fn peak_rss_mib() -> f64 {
     std::fs::read_to_string("/proc/self/status")
@@ -95,7 +95,7 @@ fn reml() {
 fn b2() {
     println!("B2: 25 years, 2 visits, 15% missing; sites doubling");
     let mut previous: Option<f64> = None;
-    let max_sites: usize = std::env::var("VIGIL_B2_MAX_SITES")
+    let max_sites: usize = std::env::var("TIDEMARK_B2_MAX_SITES")
         .ok()
         .and_then(|v| v.parse().ok())
         .unwrap_or(64_000);
@@ -119,7 +119,7 @@ fn b2() {
     }
 }
 
-fn build(rows: &[vigil_model::simulate::Row], through: i32) -> Data {
+fn build(rows: &[tidemark_model::simulate::Row], through: i32) -> Data {
     let mut b = DataBuilder::new(vec!["x1".into(), "x2".into()], vec![]);
     for r in rows.iter().filter(|r| r.year <= through) {
         b.push(&site_label(r.site), r.year, &[], &r.covariates, r.y)

@@ -1,6 +1,6 @@
 use std::time::Instant;
-use vigil_model::simulate::{simulate, NetworkSpec};
-use vigil_model::*;
+use tidemark_model::simulate::{simulate, NetworkSpec};
+use tidemark_model::*;
 fn main() {
     let sites: usize = std::env::args()
         .nth(1)

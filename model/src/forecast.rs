@@ -130,22 +130,24 @@ impl Scenario {
     }
 }
 
-/// One forecast row (response scale for `mean`…`hi95`, model scale for the shares).
+/// One forecast row (response scale for `mean`…`q975`, model scale for the shares).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct ForecastRow {
     pub target: ForecastTarget,
     pub site: Option<String>,
     pub year: i32,
     pub scenario: String,
+    /// The site's last observed year (known-site rows; `None` for a new site).
+    pub last_observed_year: Option<i32>,
     pub mean: f64,
     pub sd: f64,
+    pub q025: f64,
+    pub q10: f64,
+    pub q25: f64,
     pub q50: f64,
-    pub lo50: f64,
-    pub hi50: f64,
-    pub lo80: f64,
-    pub hi80: f64,
-    pub lo95: f64,
-    pub hi95: f64,
+    pub q75: f64,
+    pub q90: f64,
+    pub q975: f64,
     pub share_site: f64,
     pub share_year: f64,
     pub share_groups: f64,
@@ -278,15 +280,16 @@ fn row_from(
         site,
         year,
         scenario: scenario.to_string(),
+        last_observed_year: None,
         mean,
         sd,
         q50: q[0],
-        lo50: q[1],
-        hi50: q[2],
-        lo80: q[3],
-        hi80: q[4],
-        lo95: q[5],
-        hi95: q[6],
+        q25: q[1],
+        q75: q[2],
+        q10: q[3],
+        q90: q[4],
+        q025: q[5],
+        q975: q[6],
         share_site: site_var / total,
         share_year: year_var / total,
         share_groups: group_var / total,
@@ -383,7 +386,7 @@ pub fn forecast(
                     means,
                     vars: vars.clone(),
                 };
-                row_from(
+                let mut row = row_from(
                     target,
                     Some(basis.site_labels[s].clone()),
                     year,
@@ -391,7 +394,9 @@ pub fn forecast(
                     &comp,
                     transform,
                     parts(target),
-                )
+                );
+                row.last_observed_year = Some(basis.site_last_year[s]);
+                row
             })
             .collect();
         rows.extend(site_rows);

@@ -1,11 +1,11 @@
-//! # vigil-model
+//! # tidemark-model
 //!
 //! Pure computation for the crossed random-effects model of a monitoring network
 //! (DESIGN §3): `y = x'beta + a_site + b_year + c_group + e`, Gaussian on the model scale.
 //! No I/O, no async, no global state; deterministic for a given seed.
 //!
 //! ```
-//! use vigil_model::{DataBuilder, fit_point, Method};
+//! use tidemark_model::{DataBuilder, fit_point, Method};
 //! let mut b = DataBuilder::new(vec![], vec![]);
 //! for s in 0..6 {
 //!     for t in 0..5 {

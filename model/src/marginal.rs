@@ -140,7 +140,7 @@ impl Factorised {
     }
 
     /// `-2 log L_REML` in the standardised parameterisation (flat prior on `beta`).
-    pub fn reml_criterion_std(&self, stats: &SuffStats) -> f64 {
+    pub fn neg2_reml_loglik_std(&self, stats: &SuffStats) -> f64 {
         let n = stats.n_obs as f64;
         let p = stats.layout.p as f64;
         (n - p) * LN_2PI - n * self.lambda.ln() - self.log_det_prior_re
@@ -152,7 +152,7 @@ impl Factorised {
     /// `-2 log L_ML` (flat prior on `beta`, profiled at the GLS estimate).
     pub fn ml_criterion(&self, stats: &SuffStats) -> f64 {
         let p = stats.layout.p as f64;
-        self.reml_criterion_std(stats) - self.log_det_schur_beta + p * LN_2PI
+        self.neg2_reml_loglik_std(stats) - self.log_det_schur_beta + p * LN_2PI
     }
 
     /// `log p(y | sds)` with the coefficients' proper normal prior integrated out too.

@@ -2,7 +2,7 @@
 //! likelihood (see `marginal`), with the conventional standard errors of the coefficients
 //! `sqrt(diag((X' V^-1 X)^-1))` at the estimates.
 //!
-//! The REML criterion is reported in the convention
+//! The −2 REML log-likelihood is reported in the convention
 //! `log|V| + log|X' V^-1 X| + r' V^-1 r + (n - p) log(2 pi)` with `X` in original units
 //! (Harville 1977; the convention under which the Penicillin example gives 330.86).
 //! Internally `X` is standardised, which shifts `log|X' V^-1 X|` by `-2 sum log s_j`
@@ -88,7 +88,7 @@ pub(crate) fn point_from_stats(
     let objective = |x: &[f64]| -> f64 {
         match Factorised::new(stats, &to_sds(x), None) {
             Some(f) => match method {
-                Method::Reml => f.reml_criterion_std(stats),
+                Method::Reml => f.neg2_reml_loglik_std(stats),
                 Method::Ml => f.ml_criterion(stats),
             },
             None => f64::INFINITY,
@@ -143,7 +143,7 @@ pub(crate) fn point_from_stats(
         .collect();
     let criterion = match method {
         Method::Reml => {
-            fac.reml_criterion_std(stats) + 2.0 * stats.cov_sd.iter().map(|s| s.ln()).sum::<f64>()
+            fac.neg2_reml_loglik_std(stats) + 2.0 * stats.cov_sd.iter().map(|s| s.ln()).sum::<f64>()
         }
         Method::Ml => fac.ml_criterion(stats),
     };

@@ -14,7 +14,7 @@
 //! likelihood evaluation then costs `O(K q^2 + q^3)` for `K` count classes and `q`
 //! non-site parameters: nothing proportional to the number of observations or sites.
 //!
-//! The response is centred at its mean (translation invariance keeps the REML criterion
+//! The response is centred at its mean (translation invariance keeps the −2 REML log-likelihood
 //! unchanged and avoids cancellation in `y'y - mu'Q mu`); covariates are centred and
 //! scaled by their (population) sd.
 

@@ -1,4 +1,4 @@
-//! Forecast calibration by target (see `vigil_model::calibration`): generated networks with
+//! Forecast calibration by target (see `tidemark_model::calibration`): generated networks with
 //! a site-dominated, a year-dominated and a balanced partition of the same total variance;
 //! the empirical coverage of each target's 50/80/95% intervals next to the coverage the
 //! true generating model reaches on the same held-out values. Also the partition
@@ -6,12 +6,14 @@
 //! a-new-site-this-year flips with the partition.
 //!
 //! Fast subset in the default suite; the full study on request:
-//! `cargo test -p vigil-model --release --test calibration -- --ignored --nocapture`
-//! (`VIGIL_CALIBRATION_REPLICATES`, default 40 per partition; writes
-//! `target/calibration/coverage.md` or `$VIGIL_REPORT_DIR/coverage.md`).
+//! `cargo test -p tidemark-model --release --test calibration -- --ignored --nocapture`
+//! (`TIDEMARK_CALIBRATION_REPLICATES`, default 40 per partition; writes
+//! `target/calibration/coverage.md` or `$TIDEMARK_REPORT_DIR/coverage.md`).
 
 use rayon::prelude::*;
-use vigil_model::calibration::{calibration_replicate, CalibrationSpec, Coverage, LEVELS, TARGETS};
+use tidemark_model::calibration::{
+    calibration_replicate, CalibrationSpec, Coverage, LEVELS, TARGETS,
+};
 
 /// Same total variance (0.3^2 + 0.8^2 + 0.2^2 = 0.77), opposite partitions, and balanced.
 fn partitions() -> Vec<(&'static str, f64, f64)> {
@@ -135,7 +137,7 @@ fn forecasts_cover_like_the_true_model_and_the_partition_flips_the_widths() {
 #[test]
 #[ignore = "full calibration study: run on request"]
 fn calibration_full_study() {
-    let replicates = std::env::var("VIGIL_CALIBRATION_REPLICATES")
+    let replicates = std::env::var("TIDEMARK_CALIBRATION_REPLICATES")
         .ok()
         .and_then(|v| v.parse().ok())
         .unwrap_or(40);
@@ -148,7 +150,7 @@ fn calibration_full_study() {
         ));
         report.push('\n');
     }
-    let dir = std::env::var("VIGIL_REPORT_DIR")
+    let dir = std::env::var("TIDEMARK_REPORT_DIR")
         .unwrap_or_else(|_| format!("{}/../target/calibration", env!("CARGO_MANIFEST_DIR")));
     std::fs::create_dir_all(&dir).unwrap();
     std::fs::write(format!("{dir}/coverage.md"), &report).unwrap();

@@ -2,8 +2,8 @@
 //! computation (an exact reference: no approximation is involved on either side).
 
 use nalgebra::{DMatrix, DVector};
-use vigil_model::simulate::{simulate, NetworkSpec};
-use vigil_model::*;
+use tidemark_model::simulate::{simulate, NetworkSpec};
+use tidemark_model::*;
 
 fn small_spec() -> NetworkSpec {
     NetworkSpec {
@@ -19,7 +19,7 @@ fn small_spec() -> NetworkSpec {
 
 /// A small crossed design with a covariate and one further grouping factor.
 fn small_design() -> Data {
-    let (rows, _) = vigil_model::simulate::simulate_rows(&small_spec());
+    let (rows, _) = tidemark_model::simulate::simulate_rows(&small_spec());
     let mut b = DataBuilder::new(vec!["x1".into()], vec!["crew".into()]);
     for (i, r) in rows.iter().enumerate() {
         let crew = ["north", "south", "east"][i % 3];
@@ -67,7 +67,7 @@ fn dense_design(
 fn conditional_of_location_parameters_equals_a_dense_solve() {
     let data = small_design();
     // Rebuild the raw rows in the same way as `small_design`.
-    let (raw, _) = vigil_model::simulate::simulate_rows(&small_spec());
+    let (raw, _) = tidemark_model::simulate::simulate_rows(&small_spec());
     let rows: Vec<(String, i32, String, f64, f64)> = raw
         .iter()
         .enumerate()
@@ -153,10 +153,10 @@ fn conditional_of_location_parameters_equals_a_dense_solve() {
     }
 }
 
-/// The REML criterion from the Schur complement equals the dense formula
+/// The −2 REML log-likelihood from the Schur complement equals the dense formula
 /// `log|V| + log|X'V^-1 X| + r'V^-1 r + (n-p) log 2pi` (DESIGN §5) at the estimate.
 #[test]
-fn reml_criterion_equals_the_dense_formula() {
+fn neg2_reml_loglik_equals_the_dense_formula() {
     let spec = NetworkSpec {
         sites: 12,
         years: 7,
@@ -168,7 +168,7 @@ fn reml_criterion_equals_the_dense_formula() {
     };
     let (data, _) = simulate(&spec);
     let fit = fit_point(&data, Method::Reml).unwrap();
-    let (rows, _) = vigil_model::simulate::simulate_rows(&spec);
+    let (rows, _) = tidemark_model::simulate::simulate_rows(&spec);
     let n = rows.len();
     let sd = |name: &str| fit.sd_of(name).unwrap();
     let mut v = DMatrix::from_diagonal_element(n, n, sd("residual").powi(2));

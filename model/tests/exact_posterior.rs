@@ -4,7 +4,7 @@
 //! design is invented test data, stored in `tests/data/quadrature_design.csv`.
 
 use serde_json::Value;
-use vigil_model::*;
+use tidemark_model::*;
 
 fn reference() -> Value {
     let path = format!(
@@ -40,7 +40,7 @@ fn posterior_quantiles_match_grid_quadrature() {
     let r = reference();
     let data = design();
     let n = data.n_obs() as f64;
-    // The reference standardises x with the ddof=1 sd, Vigil with the population sd: the
+    // The reference standardises x with the ddof=1 sd, Tidemark with the population sd: the
     // same prior on the slope per population sd has its sd scaled by sqrt((n-1)/n).
     let priors = Priors {
         residual_sd: Some(SdPrior::HalfNormal { scale: 1.0 }),

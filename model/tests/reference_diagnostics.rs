@@ -6,7 +6,7 @@
 
 use serde_json::Value;
 use std::collections::BTreeMap;
-use vigil_model::diagnose;
+use tidemark_model::diagnose;
 
 #[test]
 fn diagnostics_equal_arviz_on_stored_draws() {

@@ -2,8 +2,8 @@
 //! count, warm starts, cancellation, and forecast structure.
 
 use std::sync::atomic::AtomicBool;
-use vigil_model::simulate::{simulate, NetworkSpec};
-use vigil_model::*;
+use tidemark_model::simulate::{simulate, NetworkSpec};
+use tidemark_model::*;
 
 fn network() -> Data {
     simulate(&NetworkSpec {
@@ -107,7 +107,7 @@ fn forecasts_cover_the_four_targets_with_ordered_intervals_and_shares_summing_to
         assert_eq!(count(ForecastTarget::NewSiteKnownYear), data.n_years());
         assert_eq!(count(ForecastTarget::NewSiteNewYear), 1);
         for r in &rows {
-            let ordered = [r.lo95, r.lo80, r.lo50, r.q50, r.hi50, r.hi80, r.hi95];
+            let ordered = [r.q025, r.q10, r.q25, r.q50, r.q75, r.q90, r.q975];
             assert!(ordered.windows(2).all(|w| w[0] <= w[1]), "{r:?}");
             let total = r.share_site
                 + r.share_year
@@ -123,7 +123,7 @@ fn forecasts_cover_the_four_targets_with_ordered_intervals_and_shares_summing_to
                 )
             );
             if transform == Transform::Log {
-                assert!(r.lo95 > 0.0);
+                assert!(r.q025 > 0.0);
             }
         }
         // A new site next year is the least certain target.
@@ -131,7 +131,7 @@ fn forecasts_cover_the_four_targets_with_ordered_intervals_and_shares_summing_to
             let v: Vec<f64> = rows
                 .iter()
                 .filter(|r| r.target == t)
-                .map(|r| r.hi80 - r.lo80)
+                .map(|r| r.q90 - r.q10)
                 .collect();
             v.iter().sum::<f64>() / v.len() as f64
         };

@@ -1,12 +1,12 @@
 //! Simulation-based calibration (Talts et al. 2018): the ranks of prior-drawn true values
 //! among posterior draws are uniform when the sampler is exact. The default suite runs a
 //! fast subset; the full study (>= 500 replicates) runs on request:
-//! `cargo test -p vigil-model --release --test sbc -- --ignored --nocapture`
+//! `cargo test -p tidemark-model --release --test sbc -- --ignored --nocapture`
 //! and writes its rank histograms (text and an SVG chart) to `target/sbc/` (or
-//! `$VIGIL_REPORT_DIR`).
+//! `$TIDEMARK_REPORT_DIR`).
 
 use rayon::prelude::*;
-use vigil_model::sbc::{rank_uniformity, sbc_replicate, SbcSpec, SBC_QUANTITIES};
+use tidemark_model::sbc::{rank_uniformity, sbc_replicate, SbcSpec, SBC_QUANTITIES};
 
 fn study(replicates: usize, first_seed: u64) -> Vec<Vec<usize>> {
     let spec = SbcSpec::default();
@@ -95,13 +95,13 @@ fn sbc_fast_subset_ranks_are_uniform() {
 #[test]
 #[ignore = "full SBC study: run on request"]
 fn sbc_full_study() {
-    let replicates = std::env::var("VIGIL_SBC_REPLICATES")
+    let replicates = std::env::var("TIDEMARK_SBC_REPLICATES")
         .ok()
         .and_then(|v| v.parse().ok())
         .unwrap_or(500);
     let all = study(replicates, 10_000);
     let (text, min_p) = report(&all, SbcSpec::default().kept, 20);
-    let dir = std::env::var("VIGIL_REPORT_DIR")
+    let dir = std::env::var("TIDEMARK_REPORT_DIR")
         .unwrap_or_else(|_| format!("{}/../target/sbc", env!("CARGO_MANIFEST_DIR")));
     std::fs::create_dir_all(&dir).unwrap();
     let path = format!("{dir}/sbc_ranks.txt");

@@ -3,15 +3,15 @@
 //! database; then a second file re-sending every value with a new number (the supersede
 //! path), and the first file's content again under a new name (duplicate detection).
 //!
-//! Run: `cargo run --release -p vigil-service --example bench_ingest [-- SITES YEARS]`
+//! Run: `cargo run --release -p tidemark-service --example bench_ingest [-- SITES YEARS]`
 //! Prints timings; nothing here is asserted.
 
 use std::fmt::Write as _;
 use std::time::Instant;
 
-use vigil_service::config::Config;
-use vigil_service::ingest;
-use vigil_service::store::{BatchContent, Store};
+use tidemark_service::config::Config;
+use tidemark_service::ingest;
+use tidemark_service::store::{BatchContent, Store};
 
 const COLUMNS: [&str; 5] = [
     "chl_ug_l",
@@ -46,7 +46,7 @@ fn feed(sites: usize, years: usize, shift: f64) -> String {
 
 #[tokio::main(flavor = "multi_thread", worker_threads = 2)]
 async fn main() -> anyhow::Result<()> {
-    vigil_service::telemetry::init(None);
+    tidemark_service::telemetry::init(None);
     let args: Vec<usize> = std::env::args()
         .skip(1)
         .filter_map(|a| a.parse().ok())
@@ -58,8 +58,8 @@ async fn main() -> anyhow::Result<()> {
     let dir = tempfile::tempdir()?;
     let config_text =
         "[[series]]\nname = \"chl\"\nresponse = \"chl_ug_l\"\nsite = \"lake\"\nyear = \"season\"\n";
-    std::fs::write(dir.path().join("vigil.toml"), config_text)?;
-    let config = Config::load(&dir.path().join("vigil.toml"))?;
+    std::fs::write(dir.path().join("tidemark.toml"), config_text)?;
+    let config = Config::load(&dir.path().join("tidemark.toml"))?;
     let store = Store::init(&config.database).await?;
     std::fs::create_dir_all(&config.feed.inbox)?;
 

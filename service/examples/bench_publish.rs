@@ -4,7 +4,7 @@
 //! the time spent publishing beyond the fit (forecasts, draws file, the transaction), and
 //! how much the database grew per version.
 //!
-//! Run: `cargo run --release -p vigil-service --example bench_publish [-- SITES]`
+//! Run: `cargo run --release -p tidemark-service --example bench_publish [-- SITES]`
 //! Prints figures; nothing here is asserted.
 
 use std::fmt::Write as _;
@@ -12,15 +12,15 @@ use std::sync::atomic::AtomicBool;
 use std::sync::Arc;
 use std::time::Instant;
 
-use vigil_model::simulate::{simulate_rows, NetworkSpec};
-use vigil_service::config::Config;
-use vigil_service::ingest;
-use vigil_service::pipeline::{refit, RefitOptions, SeriesReport};
-use vigil_service::store::Store;
+use tidemark_model::simulate::{simulate_rows, NetworkSpec};
+use tidemark_service::config::Config;
+use tidemark_service::ingest;
+use tidemark_service::pipeline::{refit, RefitOptions, SeriesReport};
+use tidemark_service::store::Store;
 
 const CONFIG: &str = r#"
 [store]
-database = "vigil.db"
+database = "tidemark.db"
 [feed]
 inbox = "inbox"
 archive = "archive"
@@ -35,7 +35,7 @@ covariates = ["x1", "x2"]
 "#;
 
 fn db_bytes(dir: &std::path::Path) -> u64 {
-    ["vigil.db", "vigil.db-wal"]
+    ["tidemark.db", "tidemark.db-wal"]
         .iter()
         .filter_map(|f| std::fs::metadata(dir.join(f)).ok())
         .map(|m| m.len())
@@ -65,16 +65,16 @@ async fn main() -> anyhow::Result<()> {
         .and_then(|s| s.parse().ok())
         .unwrap_or(20_000);
     let dir = tempfile::tempdir()?;
-    // VIGIL_BENCH_KEEP=1 keeps the database for inspection.
-    let dir_path = if std::env::var("VIGIL_BENCH_KEEP").is_ok() {
+    // TIDEMARK_BENCH_KEEP=1 keeps the database for inspection.
+    let dir_path = if std::env::var("TIDEMARK_BENCH_KEEP").is_ok() {
         dir.keep()
     } else {
         dir.path().to_path_buf()
     };
     println!("working in {}", dir_path.display());
     let dir = dir_path;
-    std::fs::write(dir.join("vigil.toml"), CONFIG)?;
-    let config = Config::load(&dir.join("vigil.toml"))?;
+    std::fs::write(dir.join("tidemark.toml"), CONFIG)?;
+    let config = Config::load(&dir.join("tidemark.toml"))?;
     let store = Store::init(&config.database).await?;
     for d in [
         &config.feed.inbox,

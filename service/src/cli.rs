@@ -13,11 +13,11 @@ use crate::commands::{self, Context};
 use crate::config::CONFIG_ENV;
 use crate::telemetry::{self, LogFormat};
 
-/// Vigil keeps the site/year variance model of a monitoring network up to date.
+/// Tidemark keeps the site/year variance model of a monitoring network up to date.
 #[derive(Debug, Parser)]
-#[command(name = "vigil", version, about, propagate_version = true)]
+#[command(name = "tidemark", version, about, propagate_version = true)]
 pub struct Cli {
-    /// Configuration file [default: ./vigil.toml]
+    /// Configuration file [default: ./tidemark.toml]
     #[arg(long, global = true, value_name = "PATH", env = CONFIG_ENV)]
     pub config: Option<PathBuf>,
 
@@ -109,7 +109,7 @@ pub enum Command {
     },
     /// Replay the demo feed (an invented lake network) season by season through the pipeline
     Demo {
-        /// Folder for the demo's config, feed folders and database [default: ./vigil-demo]
+        /// Folder for the demo's config, feed folders and database [default: ./tidemark-demo]
         #[arg(long, value_name = "DIR")]
         out: Option<PathBuf>,
     },
@@ -133,7 +133,7 @@ pub fn run() -> ExitCode {
     // The service's journal gets one line per run and lease change; commands a person
     // runs stay quiet unless something needs attention.
     let level = if matches!(cli.command, Command::Serve) {
-        "warn,vigil_service=info"
+        "warn,tidemark_service=info"
     } else {
         "warn"
     };
@@ -145,7 +145,7 @@ pub fn run() -> ExitCode {
     {
         Ok(rt) => rt,
         Err(e) => {
-            eprintln!("vigil: error: cannot start the async runtime: {e}");
+            eprintln!("tidemark: error: cannot start the async runtime: {e}");
             return ExitCode::FAILURE;
         }
     };
@@ -157,7 +157,7 @@ pub fn run() -> ExitCode {
         Err(e) => {
             let reason = format!("{e:#}").replace('\n', " ");
             // Only the one line: the log stream also goes to stderr and would repeat it.
-            eprintln!("vigil: error: {reason}");
+            eprintln!("tidemark: error: {reason}");
             ExitCode::FAILURE
         }
     }

@@ -1,4 +1,4 @@
-//! The `vigil.toml` configuration: its TOML shape (DESIGN.md §4.2), its defaults, and the
+//! The `tidemark.toml` configuration: its TOML shape (DESIGN.md §4.2), its defaults, and the
 //! checks run at start-up so that a mistake is reported once, naming the file and the key,
 //! instead of surfacing in the middle of a nightly run.
 
@@ -11,9 +11,9 @@ use serde::{Deserialize, Serialize};
 use crate::schedule::Schedule;
 
 /// Environment variable naming the config file when `--config` is not given.
-pub const CONFIG_ENV: &str = "VIGIL_CONFIG";
-/// Config file used when neither `--config` nor `VIGIL_CONFIG` is given.
-pub const DEFAULT_CONFIG: &str = "vigil.toml";
+pub const CONFIG_ENV: &str = "TIDEMARK_CONFIG";
+/// Config file used when neither `--config` nor `TIDEMARK_CONFIG` is given.
+pub const DEFAULT_CONFIG: &str = "tidemark.toml";
 
 /// A problem with the configuration, written for the person editing the file.
 #[derive(Debug, thiserror::Error)]
@@ -70,6 +70,9 @@ pub struct SeriesConfig {
     pub groups: Vec<String>,
     pub priors: Priors,
     pub sampler: SamplerConfig,
+    /// Known-site forecasts are written only for sites observed within this many years
+    /// of the data-through year (`None`: every site).
+    pub known_site_max_gap: Option<u32>,
 }
 
 impl SeriesConfig {
@@ -185,7 +188,7 @@ struct RawStore {
 impl Default for RawStore {
     fn default() -> Self {
         RawStore {
-            database: "vigil.db".into(),
+            database: "tidemark.db".into(),
         }
     }
 }
@@ -242,6 +245,7 @@ struct RawSeries {
     priors: Priors,
     #[serde(default)]
     sampler: SamplerConfig,
+    known_site_max_gap: Option<u32>,
 }
 
 fn default_transform() -> String {
@@ -250,7 +254,7 @@ fn default_transform() -> String {
 
 // ---- loading ----------------------------------------------------------------------------
 
-/// Which config file to use: `--config`, else `VIGIL_CONFIG`, else `./vigil.toml`.
+/// Which config file to use: `--config`, else `TIDEMARK_CONFIG`, else `./tidemark.toml`.
 pub fn locate(cli: Option<&Path>) -> PathBuf {
     if let Some(p) = cli {
         return p.to_path_buf();
@@ -479,6 +483,7 @@ impl Config {
                 groups: rs.groups,
                 priors: rs.priors,
                 sampler: rs.sampler,
+                known_site_max_gap: rs.known_site_max_gap,
             });
         }
 
@@ -629,7 +634,7 @@ mod tests {
 
     const GOOD: &str = r#"
 [store]
-database = "data/vigil.db"
+database = "data/tidemark.db"
 [feed]
 inbox = "in"
 [schedule]
@@ -656,7 +661,7 @@ draws = 500
 "#;
 
     fn parse(text: &str) -> Result<Config, ConfigError> {
-        Config::parse(text, "vigil.toml", Path::new("/etc/vigil"))
+        Config::parse(text, "tidemark.toml", Path::new("/etc/tidemark"))
     }
 
     fn message(text: &str) -> String {
@@ -666,9 +671,9 @@ draws = 500
     #[test]
     fn reads_every_documented_key() {
         let c = parse(GOOD).unwrap();
-        assert_eq!(c.database, Path::new("/etc/vigil/data/vigil.db"));
-        assert_eq!(c.feed.inbox, Path::new("/etc/vigil/in"));
-        assert_eq!(c.feed.archive, Path::new("/etc/vigil/archive"));
+        assert_eq!(c.database, Path::new("/etc/tidemark/data/tidemark.db"));
+        assert_eq!(c.feed.inbox, Path::new("/etc/tidemark/in"));
+        assert_eq!(c.feed.archive, Path::new("/etc/tidemark/archive"));
         let s = &c.series[0];
         assert_eq!(s.transform, Transform::Log);
         assert_eq!(s.priors.residual_sd, Some(SdPrior::HalfNormal(1.0)));
@@ -691,7 +696,7 @@ draws = 500
         let text = GOOD.replace("transform = \"log\"", "transform = \"ln\"");
         assert_eq!(
             message(&text),
-            "vigil.toml: series[0].transform: must be \"none\" or \"log\", found \"ln\""
+            "tidemark.toml: series[0].transform: must be \"none\" or \"log\", found \"ln\""
         );
     }
 
@@ -699,7 +704,7 @@ draws = 500
     fn unknown_key_is_refused_with_its_path() {
         let text = GOOD.replace("chains = 2", "chains = 2\nthin = 5");
         let m = message(&text);
-        assert!(m.starts_with("vigil.toml: series[0].sampler"), "{m}");
+        assert!(m.starts_with("tidemark.toml: series[0].sampler"), "{m}");
         assert!(m.contains("unknown field `thin`"), "{m}");
         assert!(m.contains("line "), "{m}");
     }
@@ -737,9 +742,9 @@ draws = 500
     #[test]
     fn schedule_is_checked() {
         let m = message(&GOOD.replace("30 2 * * *", "every night"));
-        assert!(m.starts_with("vigil.toml: schedule.cron:"), "{m}");
+        assert!(m.starts_with("tidemark.toml: schedule.cron:"), "{m}");
         let m = message(&GOOD.replace("Europe/Helsinki", "Mars/Olympus"));
-        assert!(m.starts_with("vigil.toml: schedule.timezone:"), "{m}");
+        assert!(m.starts_with("tidemark.toml: schedule.timezone:"), "{m}");
         assert!(parse(GOOD).unwrap().schedule.catch_up);
         let off = GOOD.replace(
             "timezone = \"Europe/Helsinki\"",
@@ -747,7 +752,7 @@ draws = 500
         );
         assert!(!parse(&off).unwrap().schedule.catch_up);
         let m = message(&off.replace("catch_up = false", "catch_up = \"yes\""));
-        assert!(m.starts_with("vigil.toml: schedule.catch_up"), "{m}");
+        assert!(m.starts_with("tidemark.toml: schedule.catch_up"), "{m}");
         let m = message(&off.replace("catch_up = false", "catchup = false"));
         assert!(m.contains("catchup"), "{m}");
     }

@@ -1,7 +1,7 @@
 //! The drift audit: how the variance components of a series move from one published
 //! version to the next, with a screening flag for moves larger than the new version's
-//! own uncertainty. Pure computation on rows the store read; `vigil drift` prints it and
-//! `vigil report` charts it.
+//! own uncertainty. Pure computation on rows the store read; `tidemark drift` prints it and
+//! `tidemark report` charts it.
 //!
 //! The flag rule: a standard deviation or share of version *v* is flagged when its 90%
 //! posterior interval `[q05, q95]` excludes the median `q50` of the same quantity in

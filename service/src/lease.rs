@@ -24,7 +24,7 @@ pub const STALE_AFTER: Duration = Duration::from_secs(60);
 
 #[derive(Debug, thiserror::Error)]
 pub enum LeaseError {
-    #[error("database {database} is in use by another vigil: pid {} on host {} (holder {}, since {}, last heartbeat {}); only one serve, run-once or refit may run at a time: wait for it to finish or stop it", .holder.pid, .holder.host, .holder.holder, .holder.acquired_at, .holder.heartbeat_at)]
+    #[error("database {database} is in use by another tidemark: pid {} on host {} (holder {}, since {}, last heartbeat {}); only one serve, run-once or refit may run at a time: wait for it to finish or stop it", .holder.pid, .holder.host, .holder.holder, .holder.acquired_at, .holder.heartbeat_at)]
     Held {
         database: String,
         holder: LeaseHolder,

@@ -1,15 +1,15 @@
-//! vigil-service: the `vigil` binary and its library.
+//! tidemark-service: the `tidemark` binary and its library.
 //!
-//! Vigil keeps the crossed site/year variance model of a long-term monitoring network up to
+//! Tidemark keeps the crossed site/year variance model of a long-term monitoring network up to
 //! date: it ingests feed files into a SQLite store with full history, and (in the pipeline
 //! built on this store) refits each series and publishes forecasts. This crate holds the
 //! plumbing: configuration, feed ingest, the store, the schedule, logging and the command
-//! line. The statistics live in `vigil-model`.
+//! line. The statistics live in `tidemark-model`.
 //!
 //! ```no_run
 //! # async fn demo() -> anyhow::Result<()> {
-//! use vigil_service::{config::Config, ingest, store::Store};
-//! let config = Config::load("vigil.toml".as_ref())?;
+//! use tidemark_service::{config::Config, ingest, store::Store};
+//! let config = Config::load("tidemark.toml".as_ref())?;
 //! let store = Store::init(&config.database).await?;
 //! for file in ingest::inbox_files(&config.feed.inbox)? {
 //!     println!("{}", ingest::ingest_file(&store, &config, &file).await?);

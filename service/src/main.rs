@@ -1,3 +1,3 @@
 fn main() -> std::process::ExitCode {
-    vigil_service::cli::run()
+    tidemark_service::cli::run()
 }

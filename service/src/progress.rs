@@ -1,6 +1,6 @@
 //! Progress bars for long fits, one per chain, on stderr when it is a terminal
 //! (indicatif). `refit` and `run-once` ask for them; `serve`, logs and pipes never get
-//! them. The sampler reports through `vigil_model::Controls::progress`.
+//! them. The sampler reports through `tidemark_model::Controls::progress`.
 
 use std::fmt;
 use std::io::IsTerminal;
@@ -50,7 +50,7 @@ pub struct ChainBars {
 }
 
 impl ChainBars {
-    pub fn update(&self, p: vigil_model::Progress) {
+    pub fn update(&self, p: tidemark_model::Progress) {
         if let Some(bar) = self.bars.get(p.chain) {
             bar.set_length(p.total as u64);
             bar.set_position(p.iteration as u64);

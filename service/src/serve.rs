@@ -1,4 +1,4 @@
-//! `vigil serve`: the same work as `run-once`, on the `[schedule]`, until SIGTERM/SIGINT.
+//! `tidemark serve`: the same work as `run-once`, on the `[schedule]`, until SIGTERM/SIGINT.
 //!
 //! The loop only decides; the work runs in one task at a time. Each wake-up is one of:
 //! a shutdown request (stop taking work, raise the cancel flag, wait for the run to reach
@@ -59,7 +59,7 @@ fn log_end(ended: Result<anyhow::Result<RunReport>, tokio::task::JoinError>) {
         Ok(Ok(r)) => warn!(
             run_id = r.run_id,
             status = %r.status,
-            "run finished with problems; see `vigil status`"
+            "run finished with problems; see `tidemark status`"
         ),
         Ok(Err(e)) => error!("run failed: {e:#}"),
         Err(e) => error!("run task ended abnormally: {e}"),
@@ -97,7 +97,7 @@ pub async fn serve(store: Store, config: Config) -> anyhow::Result<()> {
         if let Some(missed) = schedule.missed_since(last, Utc::now()) {
             info!(
                 missed = %schedule.local(missed),
-                "a scheduled run was missed while vigil was not serving; catching up"
+                "a scheduled run was missed while tidemark was not serving; catching up"
             );
             current = Some(start(&store, &config, "catch-up", &cancel));
         }
@@ -159,7 +159,7 @@ pub async fn serve(store: Store, config: Config) -> anyhow::Result<()> {
                     STOP_GRACE.as_secs()
                 );
                 let why = format!(
-                    "abandoned: vigil serve stopped ({stop}) before the run reached a safe point"
+                    "abandoned: tidemark serve stopped ({stop}) before the run reached a safe point"
                 );
                 store.abandon_running_runs(&why).await?;
             }
@@ -169,7 +169,7 @@ pub async fn serve(store: Store, config: Config) -> anyhow::Result<()> {
     lease.release().await?;
     if lost {
         anyhow::bail!(
-            "another vigil took over the lease of {} (this process's heartbeat was late); stopped",
+            "another tidemark took over the lease of {} (this process's heartbeat was late); stopped",
             store.path().display()
         );
     }

@@ -3,7 +3,7 @@
 //! Human-readable text when stderr is a terminal, JSON lines otherwise (or when asked with
 //! `--log-format json`), so a scheduler's journal gets machine-readable records. Quiet by
 //! default (warnings and errors only; `serve` adds one info line per run and lease change);
-//! `RUST_LOG` selects more, e.g. `RUST_LOG=vigil_service=info`. Progress bars are not logs:
+//! `RUST_LOG` selects more, e.g. `RUST_LOG=tidemark_service=info`. Progress bars are not logs:
 //! see `progress`.
 
 use std::io::IsTerminal;

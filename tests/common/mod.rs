@@ -1,5 +1,5 @@
 //! Test helper that speaks the domain's language: a monitoring network in a temporary
-//! directory, with a config, an inbox, the real `vigil` binary, and two ways to read the
+//! directory, with a config, an inbox, the real `tidemark` binary, and two ways to read the
 //! database (sqlx, and the `sqlite3` command-line client an analyst would use).
 
 #![allow(dead_code)]
@@ -14,7 +14,7 @@ use sqlx::{ConnectOptions, Row, TypeInfo, ValueRef};
 /// A config with two series over the feed columns lake / season / visit.
 pub const CONFIG: &str = r#"
 [store]
-database = "vigil.db"
+database = "tidemark.db"
 
 [feed]
 inbox = "inbox"
@@ -102,11 +102,11 @@ impl Network {
 
     pub fn with_config(config: &str) -> Network {
         let dir = tempfile::tempdir().expect("temp dir");
-        std::fs::write(dir.path().join("vigil.toml"), config).expect("write config");
+        std::fs::write(dir.path().join("tidemark.toml"), config).expect("write config");
         Network { dir }
     }
 
-    /// A fresh network after `vigil init`.
+    /// A fresh network after `tidemark init`.
     pub fn initialised() -> Network {
         let net = Network::new();
         net.ok(&["init"]);
@@ -118,11 +118,11 @@ impl Network {
     }
 
     pub fn config_path(&self) -> PathBuf {
-        self.path("vigil.toml")
+        self.path("tidemark.toml")
     }
 
     pub fn db_path(&self) -> PathBuf {
-        self.path("vigil.db")
+        self.path("tidemark.db")
     }
 
     /// Put a feed file into the inbox.
@@ -147,24 +147,24 @@ impl Network {
     }
 
     /// Run the real binary with `--config` pointing at this network.
-    pub fn vigil(&self, args: &[&str]) -> Output {
-        Command::new(env!("CARGO_BIN_EXE_vigil"))
+    pub fn tidemark(&self, args: &[&str]) -> Output {
+        Command::new(env!("CARGO_BIN_EXE_tidemark"))
             .arg("--config")
             .arg(self.config_path())
             .args(args)
             .current_dir(self.dir.path())
             .env_remove("RUST_LOG")
-            .env_remove("VIGIL_CONFIG")
+            .env_remove("TIDEMARK_CONFIG")
             .output()
-            .expect("run vigil")
+            .expect("run tidemark")
     }
 
     /// Run and insist on success; returns stdout.
     pub fn ok(&self, args: &[&str]) -> String {
-        let out = self.vigil(args);
+        let out = self.tidemark(args);
         assert!(
             out.status.success(),
-            "vigil {args:?} failed ({}):\nstdout: {}\nstderr: {}",
+            "tidemark {args:?} failed ({}):\nstdout: {}\nstderr: {}",
             out.status,
             String::from_utf8_lossy(&out.stdout),
             String::from_utf8_lossy(&out.stderr)
@@ -236,7 +236,7 @@ fn row_values(row: &SqliteRow) -> Vec<Value> {
         .collect()
 }
 
-/// Outcome line of `vigil ingest` for the file called `name`.
+/// Outcome line of `tidemark ingest` for the file called `name`.
 pub fn line_for<'a>(stdout: &'a str, name: &str) -> &'a str {
     stdout
         .lines()
@@ -253,18 +253,18 @@ pub fn assert_exists(p: &Path) {
 /// service can never block on a full pipe.
 pub fn spawn_logged(net: &Network, args: &[&str], log: &str) -> std::process::Child {
     let err = std::fs::File::create(net.path(log)).expect("log file");
-    Command::new(env!("CARGO_BIN_EXE_vigil"))
+    Command::new(env!("CARGO_BIN_EXE_tidemark"))
         .arg("--config")
         .arg(net.config_path())
         .args(args)
         .current_dir(net.dir.path())
         .env_remove("RUST_LOG")
-        .env_remove("VIGIL_CONFIG")
+        .env_remove("TIDEMARK_CONFIG")
         .stdin(std::process::Stdio::null())
         .stdout(std::process::Stdio::null())
         .stderr(err)
         .spawn()
-        .expect("spawn vigil")
+        .expect("spawn tidemark")
 }
 
 /// Poll `cond` every 50 ms until it holds or `limit` passes; true when it held.
@@ -287,7 +287,7 @@ pub fn dead_pid() -> u32 {
     pid
 }
 
-/// This machine's host name, as vigil records it in the lease.
+/// This machine's host name, as tidemark records it in the lease.
 pub fn host_name() -> String {
     std::fs::read_to_string("/proc/sys/kernel/hostname")
         .expect("read the host name")

@@ -142,14 +142,14 @@ def fit_reference(df, response, covariates, factors, reml):
         "dense_at_estimates": {
             "coefficients_gls": {c: float(b) for c, b in zip(coef_names, g["beta"])},
             "se_conventional": {c: float(s) for c, s in zip(coef_names, g["se_beta"])},
-            ("reml_criterion" if reml else "minus2_ml_loglik"): float(crit),
+            ("neg2_reml_loglik" if reml else "minus2_ml_loglik"): float(crit),
         },
         "dense_optimum_check": {
             "sds": {"sd_residual": float(opt_sds[0]),
                     **{f"sd_{f}": float(s) for f, s in zip(factors, opt_sds[1:])}},
             "coefficients_gls": {c: float(b) for c, b in zip(coef_names, g_opt["beta"])},
             "se_conventional": {c: float(s) for c, s in zip(coef_names, g_opt["se_beta"])},
-            ("reml_criterion" if reml else "minus2_ml_loglik"): float(opt_crit),
+            ("neg2_reml_loglik" if reml else "minus2_ml_loglik"): float(opt_crit),
             "criterion_gain_over_statsmodels": float(crit - opt_crit),
             "max_rel_sd_difference": float(np.max(np.abs(opt_sds / sds - 1.0))),
         },

@@ -3,7 +3,7 @@
 What it provides: the marginal covariance
     V = sd_residual^2 I + sum_k sd_k^2 Z_k Z_k'
 (Z_k the 0/1 indicator matrix of grouping factor k), the GLS fit at given sds, the
-conventional coefficient standard errors sqrt(diag((X' V^-1 X)^-1)), the REML criterion
+conventional coefficient standard errors sqrt(diag((X' V^-1 X)^-1)), the −2 REML log-likelihood
     log|V| + log|X' V^-1 X| + r' V^-1 r + (n - p) log(2 pi)
 and minus twice the ML log-likelihood
     log|V| + r' V^-1 r + n log(2 pi)
@@ -70,7 +70,7 @@ def gls(v, x, y):
     }
 
 
-def reml_criterion(sd_residual, sds, zs, x, y):
+def neg2_reml_loglik(sd_residual, sds, zs, x, y):
     """log|V| + log|X' V^-1 X| + r' V^-1 r + (n - p) log(2 pi)."""
     g = gls(marginal_cov(sd_residual, sds, zs), x, y)
     n, p = x.shape
@@ -86,7 +86,7 @@ def neg2_ml_loglik(sd_residual, sds, zs, x, y):
 
 def criterion(kind, all_sds, zs, x, y):
     """kind 'reml' or 'ml'; all_sds = (sd_residual, sd_1, ..., sd_K)."""
-    f = reml_criterion if kind == "reml" else neg2_ml_loglik
+    f = neg2_reml_loglik if kind == "reml" else neg2_ml_loglik
     return f(all_sds[0], list(all_sds[1:]), zs, x, y)
 
 

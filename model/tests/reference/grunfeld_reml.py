@@ -31,7 +31,7 @@ FACTORS = ["firm", "year"]
 
 
 def summary(fit, reml):
-    crit = "reml_criterion" if reml else "minus2_ml_loglik"
+    crit = "neg2_reml_loglik" if reml else "minus2_ml_loglik"
     return {
         **fit["sds"],
         "coefficients": fit["coefficients"],
@@ -73,7 +73,7 @@ def main():
             "statsmodels_se_joint_information are statsmodels' own bse, from the inverse "
             "of the joint information of fixed effects and variance parameters; shown "
             "for reference only, they are not the conventional SEs.",
-            "reml_criterion = log|V| + log|X' V^-1 X| + r' V^-1 r + (n - p) log(2 pi), "
+            "neg2_reml_loglik = log|V| + log|X' V^-1 X| + r' V^-1 r + (n - p) log(2 pi), "
             "X the original-units design including the intercept column, r the GLS "
             "residuals.",
             "minus2_ml_loglik = log|V| + r' V^-1 r + n log(2 pi) at the ML optimum.",

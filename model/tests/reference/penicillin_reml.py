@@ -34,7 +34,7 @@ FROM_MEMORY = {
     "sd_residual": 0.5499,
     "intercept": 22.972,
     "se_intercept": 0.8086,
-    "reml_criterion": 330.86,
+    "neg2_reml_loglik": 330.86,
 }
 
 
@@ -52,7 +52,7 @@ def main():
         "sd_sample": reml["sds"]["sd_sample"],
         "intercept": reml["coefficients"]["intercept"],
         "se_intercept": reml["dense_at_estimates"]["se_conventional"]["intercept"],
-        "reml_criterion": reml["dense_at_estimates"]["reml_criterion"],
+        "neg2_reml_loglik": reml["dense_at_estimates"]["neg2_reml_loglik"],
     }
     agreement = crossed_fit.agreement(FROM_MEMORY, est)
     v = crossed_fit.versions()
@@ -73,7 +73,7 @@ def main():
             "n = 144, p = 1 (intercept only).",
             "sd_* are standard deviations on the response scale (mm).",
             "se_conventional = sqrt(diag((X' V^-1 X)^-1)) at the REML (resp. ML) sds.",
-            "reml_criterion = log|V| + log|X' V^-1 X| + r' V^-1 r + (n - p) log(2 pi), "
+            "neg2_reml_loglik = log|V| + log|X' V^-1 X| + r' V^-1 r + (n - p) log(2 pi), "
             "r the GLS residuals.",
             "minus2_ml_loglik = log|V| + r' V^-1 r + n log(2 pi) at the ML optimum.",
             "statsmodels_se_joint_information are statsmodels' own bse (inverse of the "
@@ -89,7 +89,7 @@ def main():
         "sd_sample": est["sd_sample"],
         "intercept": est["intercept"],
         "se_intercept": est["se_intercept"],
-        "reml_criterion": est["reml_criterion"],
+        "neg2_reml_loglik": est["neg2_reml_loglik"],
         "reml": reml,
         "ml": {
             "sd_residual": ml["sds"]["sd_residual"],

@@ -1,4 +1,4 @@
-//! `vigil demo [--out DIR]`: replay the demo feed (an invented lake network, embedded in
+//! `tidemark demo [--out DIR]`: replay the demo feed (an invented lake network, embedded in
 //! the binary from `demo-feed/`) season by season through the whole pipeline, printing a
 //! compact table per season, and leave the database in DIR for SQL clients.
 
@@ -24,7 +24,7 @@ macro_rules! seasons {
 const SEASONS: &[(i32, &str)] = seasons!(
     2011, 2012, 2013, 2014, 2015, 2016, 2017, 2018, 2019, 2020, 2021, 2022, 2023, 2024, 2025, 2026
 );
-const CONFIG: &str = include_str!("../../../demo-feed/vigil.toml");
+const CONFIG: &str = include_str!("../../../demo-feed/tidemark.toml");
 
 fn prepare(out: &Path) -> anyhow::Result<()> {
     if out.exists() {
@@ -38,15 +38,15 @@ fn prepare(out: &Path) -> anyhow::Result<()> {
         }
     }
     std::fs::create_dir_all(out).with_context(|| format!("cannot create {}", out.display()))?;
-    std::fs::write(out.join("vigil.toml"), CONFIG)
-        .with_context(|| format!("cannot write {}/vigil.toml", out.display()))?;
+    std::fs::write(out.join("tidemark.toml"), CONFIG)
+        .with_context(|| format!("cannot write {}/tidemark.toml", out.display()))?;
     Ok(())
 }
 
 pub async fn run(out: Option<PathBuf>) -> anyhow::Result<()> {
-    let out = out.unwrap_or_else(|| PathBuf::from("vigil-demo"));
+    let out = out.unwrap_or_else(|| PathBuf::from("tidemark-demo"));
     prepare(&out)?;
-    let config = Config::load(&out.join("vigil.toml"))?;
+    let config = Config::load(&out.join("tidemark.toml"))?;
     let store = Store::init(&config.database).await?;
     for dir in [
         &config.feed.inbox,
@@ -153,7 +153,7 @@ pub async fn run(out: Option<PathBuf>) -> anyhow::Result<()> {
         "\nw80 = mean width of the 80% forecast interval (response units: µg/L for chlorophyll, m for Secchi)\n\
          KK known site, known year | KN known site, next year | NK new site, known year | NN new site, next year\n\
          {published} versions published. The database is {db}; query it with any SQL client, e.g.\n\n  \
-         sqlite3 {db} \"SELECT series, target, site, year, round(q50,2) AS median, round(lo80,2) AS lo80, round(hi80,2) AS hi80 FROM latest_forecasts WHERE target LIKE 'new_site%' ORDER BY series, year DESC LIMIT 8\"\n  \
+         sqlite3 {db} \"SELECT series, target, site, year, round(q50,2) AS median, round(q10,2) AS q10, round(q90,2) AS q90 FROM latest_forecasts WHERE target LIKE 'new_site%' ORDER BY series, year DESC LIMIT 8\"\n  \
          sqlite3 {db} \"SELECT series, version, term, round(q05,3), round(q50,3), round(q95,3) FROM variance_drift WHERE series = 'chlorophyll' ORDER BY version, term\"\n\n\
          Forecasts are statistical estimates. Decisions that touch people, such as recreational-water or drinking-water\n\
          advisories after algal blooms, follow the responsible agency's own sampling, testing and notification rules and\n\

@@ -1,4 +1,4 @@
-//! `vigil drift [--series NAME] [--json]`: the variance components of every published
+//! `tidemark drift [--series NAME] [--json]`: the variance components of every published
 //! version, the change from the previous version, and the screening flag
 //! (rule in [`crate::drift`]).
 
@@ -16,7 +16,8 @@ pub async fn run(ctx: &Context, series: Option<String>, json: bool) -> anyhow::R
     let text = if json {
         serde_json::to_string_pretty(&report)? + "\n"
     } else if report.series.is_empty() {
-        "no published version yet; run `vigil run-once` (or `vigil refit`) first\n".to_string()
+        "no published version yet; run `tidemark run-once` (or `tidemark refit`) first\n"
+            .to_string()
     } else {
         drift::render_text(&report)
     };

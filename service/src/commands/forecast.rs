@@ -1,9 +1,8 @@
-//! `vigil forecast [--series NAME]`: rewrite the forecasts of each series' latest published
+//! `tidemark forecast [--series NAME]`: rewrite the forecasts of each series' latest published
 //! version from its stored draws, under the single-instance lease (so it never races a
 //! refit that is about to publish a newer version).
 
 use anyhow::Context as _;
-use vigil_model::forecast_baseline;
 
 use std::sync::atomic::AtomicBool;
 use std::sync::Arc;
@@ -53,16 +52,18 @@ async fn rewrite(
             .with_context(|| format!("series {}: fit {}", s.name, latest.fit_id))?;
         // The transform the version was fitted with, not today's config.
         let transform = match latest.transform.as_deref() {
-            Some("log") => vigil_model::Transform::Log,
-            Some("none") => vigil_model::Transform::None,
+            Some("log") => tidemark_model::Transform::Log,
+            Some("none") => tidemark_model::Transform::None,
             _ => model_transform(s.transform),
         };
-        let rows = forecast_baseline(&decoded.basis, transform);
-        store.replace_forecasts(latest.fit_id, &rows).await?;
+        let forecasts = crate::pipeline::forecasts::baseline(&decoded.basis, transform, s);
+        store
+            .replace_forecasts(latest.fit_id, forecasts.set())
+            .await?;
         println!(
             "{}: wrote {} forecasts for version {} (fit {})",
             s.name,
-            rows.len(),
+            forecasts.rows.len(),
             latest.version,
             latest.fit_id
         );

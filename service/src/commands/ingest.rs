@@ -1,4 +1,4 @@
-//! `vigil ingest [FILE...]`: ingest named files or the whole inbox, one line per file.
+//! `tidemark ingest [FILE...]`: ingest named files or the whole inbox, one line per file.
 
 use std::path::PathBuf;
 
@@ -11,7 +11,7 @@ pub async fn run(ctx: &Context, files: &[PathBuf]) -> anyhow::Result<()> {
         let inbox = &ctx.config.feed.inbox;
         if !inbox.is_dir() {
             anyhow::bail!(
-                "inbox {} does not exist; run `vigil init` or fix feed.inbox in {}",
+                "inbox {} does not exist; run `tidemark init` or fix feed.inbox in {}",
                 inbox.display(),
                 ctx.config.path.display()
             );
@@ -32,7 +32,7 @@ pub async fn run(ctx: &Context, files: &[PathBuf]) -> anyhow::Result<()> {
             Ok(report) => println!("{report}"),
             Err(e) => {
                 failed += 1;
-                eprintln!("vigil: {e}");
+                eprintln!("tidemark: {e}");
             }
         }
     }

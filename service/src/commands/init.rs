@@ -1,4 +1,4 @@
-//! `vigil init`: create the database and feed folders, apply migrations.
+//! `tidemark init`: create the database and feed folders, apply migrations.
 
 use anyhow::Context as _;
 

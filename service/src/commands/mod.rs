@@ -27,7 +27,7 @@ pub struct Context {
 }
 
 impl Context {
-    /// Locate (`--config`, `VIGIL_CONFIG`, `./vigil.toml`) and validate the configuration.
+    /// Locate (`--config`, `TIDEMARK_CONFIG`, `./tidemark.toml`) and validate the configuration.
     pub fn load(cli_config: Option<&Path>) -> anyhow::Result<Context> {
         let path = config::locate(cli_config);
         let config = Config::load(&path)?;
@@ -55,7 +55,7 @@ pub fn require_series(ctx: &Context, name: &str) -> anyhow::Result<()> {
     )
 }
 
-/// Print `text` to stdout; a reader that stopped early (`vigil drift | head`) is not an
+/// Print `text` to stdout; a reader that stopped early (`tidemark drift | head`) is not an
 /// error.
 pub fn print_out(text: &str) -> anyhow::Result<()> {
     use std::io::Write as _;

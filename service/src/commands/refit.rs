@@ -1,4 +1,4 @@
-//! `vigil refit [--series NAME] [--cold] [--force]`: refit series whose data changed,
+//! `tidemark refit [--series NAME] [--cold] [--force]`: refit series whose data changed,
 //! publish those that pass the gate, and write their forecasts.
 
 use std::sync::atomic::AtomicBool;

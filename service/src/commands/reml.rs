@@ -1,7 +1,7 @@
-//! `vigil reml --series NAME [--json]`: REML estimates on the data now in the store.
+//! `tidemark reml --series NAME [--json]`: REML estimates on the data now in the store.
 
 use serde_json::json;
-use vigil_model::{fit_point, Method};
+use tidemark_model::{fit_point, Method};
 
 use super::Context;
 use crate::pipeline::input;
@@ -47,7 +47,7 @@ pub async fn run(ctx: &Context, series: &str, as_json: bool) -> anyhow::Result<(
             "transform": s.transform.to_string(),
             "sd": sd,
             "coef": coef,
-            "reml_criterion": fit.criterion,
+            "neg2_reml_loglik": fit.criterion,
             "converged": fit.converged,
             "warnings": fit.warnings,
         });
@@ -68,7 +68,7 @@ pub async fn run(ctx: &Context, series: &str, as_json: bool) -> anyhow::Result<(
         for c in &fit.coef {
             println!("  coef {:<10} {:.6} (se {:.6})", c.name, c.estimate, c.se);
         }
-        println!("  REML criterion {:.4}", fit.criterion);
+        println!("  −2 REML log-likelihood {:.4}", fit.criterion);
         for w in &fit.warnings {
             println!("  warning: {w}");
         }

@@ -1,4 +1,4 @@
-//! `vigil report --out FILE.html [--series NAME]`: write the self-contained HTML report
+//! `tidemark report --out FILE.html [--series NAME]`: write the self-contained HTML report
 //! (see [`crate::report`]).
 
 use std::path::Path;

@@ -1,4 +1,4 @@
-//! `vigil run-once`: one scheduled run (ingest, refit, forecast) under the lease. Exits
+//! `tidemark run-once`: one scheduled run (ingest, refit, forecast) under the lease. Exits
 //! non-zero when a file could not be ingested, a series failed or was rejected, or the run
 //! was cut short, so that cron, systemd or a cluster scheduler can alert.
 
@@ -32,7 +32,7 @@ pub async fn run(ctx: &Context) -> anyhow::Result<()> {
         println!("{f}");
     }
     for e in &report.file_errors {
-        eprintln!("vigil: {e}");
+        eprintln!("tidemark: {e}");
     }
     for s in &report.series {
         println!("{}", describe(s));
@@ -41,7 +41,7 @@ pub async fn run(ctx: &Context) -> anyhow::Result<()> {
     store.close().await;
     if report.has_problems() || report.status != "succeeded" {
         anyhow::bail!(
-            "run {} finished {}: see the lines above and `vigil status`",
+            "run {} finished {}: see the lines above and `tidemark status`",
             report.run_id,
             report.status
         );

@@ -1,4 +1,4 @@
-//! `vigil serve`: run on the configured schedule until SIGTERM/SIGINT (see `crate::serve`).
+//! `tidemark serve`: run on the configured schedule until SIGTERM/SIGINT (see `crate::serve`).
 
 use super::Context;
 

@@ -1,4 +1,4 @@
-//! `vigil status [--json]`: what the store holds now and what happens next.
+//! `tidemark status [--json]`: what the store holds now and what happens next.
 
 use serde::Serialize;
 

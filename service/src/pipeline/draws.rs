@@ -1,7 +1,7 @@
 //! The draws of a version as one Arrow IPC file: every saved draw of the standard
 //! deviations and coefficients, and a thinned set of joint draws of the random effects
-//! (the forecast basis). Any Arrow reader can open it; Vigil reads it back for warm starts
-//! and for `vigil forecast`.
+//! (the forecast basis). Any Arrow reader can open it; Tidemark reads it back for warm starts
+//! and for `tidemark forecast`.
 //!
 //! One row per quantity, with columns `kind` (`sd`, `coef`, `effect`, `basis`, `data`),
 //! `term`, `level` (nullable), `chains`, `draws_per_chain` and `values` (a list of
@@ -17,7 +17,7 @@ use arrow_array::{Array, Float64Array, ListArray, RecordBatch, StringArray, UInt
 use arrow_ipc::reader::FileReader;
 use arrow_ipc::writer::FileWriter;
 use arrow_schema::{ArrowError, DataType, Field, Schema};
-use vigil_model::{ForecastBasis, Posterior, WarmStart};
+use tidemark_model::{ForecastBasis, Posterior, WarmStart};
 
 /// Format tag stored in `fit_draws.format`.
 pub const FORMAT: &str = "arrow-ipc-file";

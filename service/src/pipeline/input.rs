@@ -1,7 +1,7 @@
 //! From stored rows to the model's input: the transform, and the rows a series cannot use,
 //! each with its reason (they are recorded with the fit, never silently dropped).
 
-use vigil_model::{Data, DataBuilder, ModelError};
+use tidemark_model::{Data, DataBuilder, ModelError};
 
 use crate::config::{SeriesConfig, Transform};
 use crate::store::SeriesRow;
@@ -36,10 +36,10 @@ pub enum InputError {
 }
 
 /// The transform as the model crate names it.
-pub fn model_transform(t: Transform) -> vigil_model::Transform {
+pub fn model_transform(t: Transform) -> tidemark_model::Transform {
     match t {
-        Transform::None => vigil_model::Transform::None,
-        Transform::Log => vigil_model::Transform::Log,
+        Transform::None => tidemark_model::Transform::None,
+        Transform::Log => tidemark_model::Transform::Log,
     }
 }
 

@@ -5,6 +5,7 @@
 //! becomes the latest.
 
 pub mod draws;
+pub mod forecasts;
 pub mod input;
 pub mod refit;
 pub mod run;

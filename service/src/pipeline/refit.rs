@@ -11,16 +11,15 @@ use std::sync::atomic::AtomicBool;
 use std::sync::Arc;
 use std::time::Instant;
 
-use tracing::{info, info_span, warn, Instrument};
-use vigil_model::{
-    forecast_baseline, sample, Controls, FitDiagnostics, Posterior, SamplerSettings, SummaryKind,
-    WarmStart,
+use tidemark_model::{
+    sample, Controls, FitDiagnostics, Posterior, SamplerSettings, SummaryKind, WarmStart,
 };
+use tracing::{info, info_span, warn, Instrument};
 
 use super::{draws, input};
 use crate::config::{Config, LocationPrior, SdPrior, SeriesConfig};
 use crate::progress::{ChainBars, FitProgress};
-use crate::store::{NewExclusion, NewFit, Store};
+use crate::store::{ForecastSet, NewExclusion, NewFit, Store};
 
 /// Joint effect draws per chain kept with a version for forecasts (the forecast basis).
 pub const BASIS_DRAWS_PER_CHAIN: usize = 25;
@@ -126,19 +125,21 @@ pub async fn refit(
     Ok(reports)
 }
 
-pub(crate) fn model_priors(series: &SeriesConfig) -> vigil_model::Priors {
+pub(crate) fn model_priors(series: &SeriesConfig) -> tidemark_model::Priors {
     let sd = |p: Option<SdPrior>| {
         p.map(|p| match p {
-            SdPrior::HalfNormal(scale) => vigil_model::SdPrior::HalfNormal { scale },
-            SdPrior::HalfStudentT { df, scale } => vigil_model::SdPrior::HalfStudentT { df, scale },
-            SdPrior::Exponential(rate) => vigil_model::SdPrior::Exponential { rate },
+            SdPrior::HalfNormal(scale) => tidemark_model::SdPrior::HalfNormal { scale },
+            SdPrior::HalfStudentT { df, scale } => {
+                tidemark_model::SdPrior::HalfStudentT { df, scale }
+            }
+            SdPrior::Exponential(rate) => tidemark_model::SdPrior::Exponential { rate },
         })
     };
     let loc = |p: Option<LocationPrior>| {
-        p.map(|LocationPrior::Normal { mean, sd }| vigil_model::NormalPrior { mean, sd })
+        p.map(|LocationPrior::Normal { mean, sd }| tidemark_model::NormalPrior { mean, sd })
     };
     let pr = &series.priors;
-    vigil_model::Priors {
+    tidemark_model::Priors {
         residual_sd: sd(pr.residual_sd),
         site_sd: sd(pr.site_sd),
         year_sd: sd(pr.year_sd),
@@ -178,15 +179,15 @@ type Attempt = (&'static str, SamplerSettings, Option<(i64, WarmStart)>);
 
 /// Run the sampler off the async threads.
 async fn run_sampler(
-    data: Arc<vigil_model::Data>,
-    priors: vigil_model::Priors,
+    data: Arc<tidemark_model::Data>,
+    priors: tidemark_model::Priors,
     settings: SamplerSettings,
     warm: Option<WarmStart>,
     cancel: Arc<AtomicBool>,
     bars: Option<ChainBars>,
 ) -> anyhow::Result<Posterior> {
     let joined = tokio::task::spawn_blocking(move || {
-        let report = |p: vigil_model::Progress| {
+        let report = |p: tidemark_model::Progress| {
             if let Some(b) = &bars {
                 b.update(p);
             }
@@ -195,7 +196,7 @@ async fn run_sampler(
             cancel: Some(&cancel),
             progress: bars
                 .as_ref()
-                .map(|_| &report as &(dyn Fn(vigil_model::Progress) + Sync)),
+                .map(|_| &report as &(dyn Fn(tidemark_model::Progress) + Sync)),
         };
         sample(&data, &priors, &settings, warm.as_ref(), controls)
     })
@@ -254,7 +255,9 @@ async fn refit_series(
             fit.status = "failed".into();
             fit.message = Some(e.to_string());
             fit.wall_seconds = Some(started.elapsed().as_secs_f64());
-            let recorded = store.record_fit(&fit, &[], None, &[], &[]).await?;
+            let recorded = store
+                .record_fit(&fit, &[], None, ForecastSet::default(), &[])
+                .await?;
             warn!(fit_id = recorded.fit_id, "{e}");
             report.outcome = SeriesOutcome::Failed;
             report.fit_id = Some(recorded.fit_id);
@@ -334,8 +337,8 @@ async fn refit_series(
             Ok(p) => p,
             Err(e) => {
                 if matches!(
-                    e.downcast_ref::<vigil_model::ModelError>(),
-                    Some(vigil_model::ModelError::Cancelled)
+                    e.downcast_ref::<tidemark_model::ModelError>(),
+                    Some(tidemark_model::ModelError::Cancelled)
                 ) {
                     return Err(e.context(format!(
                         "refit of series {} was cancelled; nothing was recorded",
@@ -345,7 +348,9 @@ async fn refit_series(
                 fit.status = "failed".into();
                 fit.message = Some(format!("{label}: {e:#}"));
                 fit.wall_seconds = Some(started.elapsed().as_secs_f64());
-                let recorded = store.record_fit(&fit, &[], None, &[], &exclusions).await?;
+                let recorded = store
+                    .record_fit(&fit, &[], None, ForecastSet::default(), &exclusions)
+                    .await?;
                 report.outcome = SeriesOutcome::Failed;
                 report.fit_id = Some(recorded.fit_id);
                 report.message = fit.message.clone().unwrap_or_default();
@@ -410,9 +415,10 @@ async fn refit_series(
     let (summaries, blob, forecasts) = if published {
         let post = Arc::new(post);
         let p2 = post.clone();
+        let series_config = series.clone();
         let (blob, forecasts) = tokio::task::spawn_blocking(move || {
             let basis = p2.forecast_basis(BASIS_DRAWS_PER_CHAIN);
-            let forecasts = forecast_baseline(&basis, transform);
+            let forecasts = super::forecasts::baseline(&basis, transform, &series_config);
             (draws::encode(&p2, &basis), forecasts)
         })
         .await?;
@@ -426,7 +432,14 @@ async fn refit_series(
             .filter(|s| s.kind != SummaryKind::Effect)
             .cloned()
             .collect();
-        (kept, None, Vec::new())
+        (
+            kept,
+            None,
+            super::forecasts::BaselineForecasts {
+                rows: Vec::new(),
+                scenarios: Vec::new(),
+            },
+        )
     };
     fit.wall_seconds = Some(started.elapsed().as_secs_f64());
     let recorded = store
@@ -434,7 +447,7 @@ async fn refit_series(
             &fit,
             &summaries,
             blob.as_deref().map(|b| (draws::FORMAT, b)),
-            &forecasts,
+            forecasts.set(),
             &exclusions,
         )
         .await?;
@@ -463,9 +476,10 @@ async fn refit_series(
         "new_site_new_year",
     ] {
         let widths: Vec<f64> = forecasts
+            .rows
             .iter()
             .filter(|f| f.target.as_str() == target)
-            .map(|f| f.hi80 - f.lo80)
+            .map(|f| f.q90 - f.q10)
             .collect();
         if !widths.is_empty() {
             report.width80.push((

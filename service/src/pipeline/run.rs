@@ -69,7 +69,7 @@ pub async fn run_once_with_progress(
         } else {
             report
                 .file_errors
-                .push(format!("inbox {} does not exist; run `vigil init` or fix feed.inbox", inbox.display()));
+                .push(format!("inbox {} does not exist; run `tidemark init` or fix feed.inbox", inbox.display()));
             Vec::new()
         };
         for file in &files {

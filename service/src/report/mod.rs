@@ -1,4 +1,4 @@
-//! `vigil report`: one self-contained HTML page about the published versions — what it
+//! `tidemark report`: one self-contained HTML page about the published versions — what it
 //! contains (`Report`, read from the store), how it is drawn (`charts`, plotters SVG),
 //! how the page is put together and escaped (`page`), and how it reaches the disk
 //! (atomically: a temporary file in the target directory, then a rename).
@@ -50,7 +50,7 @@ pub enum ReportError {
     },
 }
 
-/// Summary of the 80% interval widths (`hi80 - lo80`, response scale) of one target.
+/// Summary of the 80% interval widths (`q90 - q10`, response scale) of one target.
 #[derive(Debug, Clone, PartialEq)]
 pub struct TargetWidths {
     pub target: String,
@@ -99,7 +99,7 @@ fn quantile_sorted(sorted: &[f64], p: f64) -> f64 {
     sorted[below] + (h - below as f64) * (sorted[above] - sorted[below])
 }
 
-/// Width summaries per target from `(target, lo80, hi80)` rows; targets without a row
+/// Width summaries per target from `(target, q10, q90)` rows; targets without a row
 /// with both bounds are left out.
 pub fn target_widths(rows: &[(String, Option<f64>, Option<f64>)]) -> Vec<TargetWidths> {
     TARGETS
@@ -160,7 +160,7 @@ impl Report {
                     let intervals = store.forecast_intervals(fit.fit_id).await?;
                     let rows: Vec<_> = intervals
                         .into_iter()
-                        .map(|f| (f.target, f.lo80, f.hi80))
+                        .map(|f| (f.target, f.q10, f.q90))
                         .collect();
                     (target_widths(&rows), store.site_effects(fit.fit_id).await?)
                 }
@@ -204,7 +204,7 @@ pub fn write_atomically(path: &Path, contents: &str) -> Result<(), ReportError> 
         _ => Path::new("."),
     };
     let mut builder = tempfile::Builder::new();
-    builder.prefix(".vigil-report-").suffix(".tmp");
+    builder.prefix(".tidemark-report-").suffix(".tmp");
     #[cfg(unix)]
     {
         use std::os::unix::fs::PermissionsExt as _;

@@ -8,7 +8,7 @@ use super::{charts, sites_to_show, Report, ReportError, SeriesReport, MAX_SITES_
 use crate::store::FitSummary;
 
 /// The cautions every report carries (README.md § Cautions says the same).
-pub const CAUTION: &str = "Forecasts are statistical estimates from the data given to Vigil. \
+pub const CAUTION: &str = "Forecasts are statistical estimates from the data given to Tidemark. \
 Where they feed decisions that touch people — for example recreational-water or drinking-water \
 advisories after algal blooms — those decisions follow the responsible agency's own sampling, \
 testing and notification rules and are made by qualified staff.";
@@ -231,8 +231,8 @@ pub fn render(r: &Report) -> Result<String, ReportError> {
         out,
         "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n\
          <meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\n\
-         <title>Vigil report</title>\n<style>{STYLE}</style>\n</head>\n<body>\n\
-         <h1>Vigil report</h1>\n<p class=\"meta\">Generated {} from {}.</p>\n\
+         <title>Tidemark report</title>\n<style>{STYLE}</style>\n</head>\n<body>\n\
+         <h1>Tidemark report</h1>\n<p class=\"meta\">Generated {} from {}.</p>\n\
          <p class=\"caution\"><b>Caution.</b> {}</p>",
         esc(&r.generated_at),
         esc(&r.database),

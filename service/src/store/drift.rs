@@ -1,4 +1,4 @@
-//! Reads behind `vigil drift` and the report's variance chart: the standard deviations
+//! Reads behind `tidemark drift` and the report's variance chart: the standard deviations
 //! and variance shares of every published version, in version order.
 
 use serde::Serialize;

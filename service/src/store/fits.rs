@@ -5,7 +5,7 @@
 //! at all (`tests/e2e_pipeline.rs`).
 
 use sqlx::{QueryBuilder, Row, Sqlite, Transaction};
-use vigil_model::{ForecastRow, Summary};
+use tidemark_model::{ForecastRow, Summary};
 
 use super::{now_utc, Store, StoreError};
 
@@ -96,14 +96,41 @@ async fn insert_summaries(
     Ok(())
 }
 
+/// A covariate value a forecast scenario holds fixed (original units).
+#[derive(Debug, Clone, PartialEq)]
+pub struct ScenarioValue {
+    pub scenario: String,
+    pub covariate: String,
+    pub value: f64,
+}
+
+/// The forecasts of one version: its rows and the covariate values of their scenarios.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct ForecastSet<'a> {
+    pub rows: &'a [ForecastRow],
+    pub scenarios: &'a [ScenarioValue],
+}
+
 async fn insert_forecasts(
     tx: &mut Transaction<'_, Sqlite>,
     fit_id: i64,
-    rows: &[ForecastRow],
+    set: ForecastSet<'_>,
 ) -> Result<(), sqlx::Error> {
-    for chunk in rows.chunks(CHUNK) {
+    for v in set.scenarios {
+        sqlx::query(
+            "INSERT INTO forecast_scenarios (fit_id, scenario, covariate, value) VALUES (?1, ?2, ?3, ?4)",
+        )
+        .bind(fit_id)
+        .bind(&v.scenario)
+        .bind(&v.covariate)
+        .bind(v.value)
+        .execute(&mut **tx)
+        .await?;
+    }
+    for chunk in set.rows.chunks(CHUNK) {
         let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
-            "INSERT INTO forecasts (fit_id, target, site, year, scenario, mean, sd, q50, lo50, hi50, lo80, hi80, lo95, hi95, \
+            "INSERT INTO forecasts (fit_id, target, site, year, scenario, last_observed_year, mean, sd, \
+             q025, q10, q25, q50, q75, q90, q975, \
              share_site, share_year, share_groups, share_residual, share_estimation) ",
         );
         q.push_values(chunk, |mut b, f| {
@@ -112,15 +139,16 @@ async fn insert_forecasts(
                 .push_bind(&f.site)
                 .push_bind(f.year)
                 .push_bind(&f.scenario)
+                .push_bind(f.last_observed_year)
                 .push_bind(finite(f.mean))
                 .push_bind(finite(f.sd))
+                .push_bind(finite(f.q025))
+                .push_bind(finite(f.q10))
+                .push_bind(finite(f.q25))
                 .push_bind(finite(f.q50))
-                .push_bind(finite(f.lo50))
-                .push_bind(finite(f.hi50))
-                .push_bind(finite(f.lo80))
-                .push_bind(finite(f.hi80))
-                .push_bind(finite(f.lo95))
-                .push_bind(finite(f.hi95))
+                .push_bind(finite(f.q75))
+                .push_bind(finite(f.q90))
+                .push_bind(finite(f.q975))
                 .push_bind(finite(f.share_site))
                 .push_bind(finite(f.share_year))
                 .push_bind(finite(f.share_groups))
@@ -147,7 +175,7 @@ impl Store {
         fit: &NewFit,
         summaries: &[Summary],
         draws: Option<(&str, &[u8])>,
-        forecasts: &[ForecastRow],
+        forecasts: ForecastSet<'_>,
         exclusions: &[NewExclusion],
     ) -> Result<RecordedFit, StoreError> {
         let run = async {
@@ -272,14 +300,16 @@ impl Store {
     pub async fn replace_forecasts(
         &self,
         fit_id: i64,
-        forecasts: &[ForecastRow],
+        forecasts: ForecastSet<'_>,
     ) -> Result<(), StoreError> {
         let run = async {
             let mut tx = self.pool.begin().await?;
-            sqlx::query("DELETE FROM forecasts WHERE fit_id = ?1")
-                .bind(fit_id)
-                .execute(&mut *tx)
-                .await?;
+            for table in ["forecasts", "forecast_scenarios"] {
+                sqlx::query(&format!("DELETE FROM {table} WHERE fit_id = ?1"))
+                    .bind(fit_id)
+                    .execute(&mut *tx)
+                    .await?;
+            }
             insert_forecasts(&mut tx, fit_id, forecasts).await?;
             tx.commit().await
         };

@@ -27,7 +27,7 @@ use sqlx::sqlite::{
 use sqlx::Row;
 
 pub use drift::ComponentRow;
-pub use fits::{NewExclusion, NewFit, PublishedFit, RecordedFit};
+pub use fits::{ForecastSet, NewExclusion, NewFit, PublishedFit, RecordedFit, ScenarioValue};
 pub use ingest::{
     BatchContent, BatchFile, BatchOutcome, BatchRecord, BatchValues, Cell, NewRejection, NewValue,
 };
@@ -45,16 +45,16 @@ const BUSY_TIMEOUT: Duration = Duration::from_secs(5);
 /// What went wrong in the store, phrased for the operator.
 #[derive(Debug, thiserror::Error)]
 pub enum StoreError {
-    #[error("database {0} does not exist; run `vigil init` first")]
+    #[error("database {0} does not exist; run `tidemark init` first")]
     Missing(PathBuf),
-    #[error("database {path} was written by a newer vigil (it has migration {version} \"{description}\", which this binary does not know); upgrade vigil")]
+    #[error("database {path} was written by a newer tidemark (it has migration {version} \"{description}\", which this binary does not know); upgrade tidemark")]
     Newer {
         path: PathBuf,
         version: i64,
         description: String,
     },
     #[error(
-        "database {path} needs migration {version} \"{description}\"; run `vigil init` to apply it"
+        "database {path} needs migration {version} \"{description}\"; run `tidemark init` to apply it"
     )]
     Pending {
         path: PathBuf,
@@ -83,7 +83,7 @@ pub enum StoreError {
     },
 }
 
-/// A handle on the Vigil database. Cheap to clone (a connection pool).
+/// A handle on the Tidemark database. Cheap to clone (a connection pool).
 #[derive(Debug, Clone)]
 pub struct Store {
     pool: SqlitePool,
@@ -97,7 +97,7 @@ pub fn now_utc() -> String {
 
 impl Store {
     /// Create the database if needed and apply every pending migration (idempotent).
-    /// Refuses a database written by a newer vigil.
+    /// Refuses a database written by a newer tidemark.
     pub async fn init(path: &Path) -> Result<Store, StoreError> {
         if let Some(dir) = path.parent().filter(|d| !d.as_os_str().is_empty()) {
             std::fs::create_dir_all(dir).map_err(|source| StoreError::CreateDir {

@@ -1,4 +1,4 @@
-//! Reads behind `vigil report`: the latest version's forecast interval widths and site
+//! Reads behind `tidemark report`: the latest version's forecast interval widths and site
 //! effects, and the run history with each run's per-series outcomes.
 
 use serde::Serialize;
@@ -11,8 +11,8 @@ use super::{Store, StoreError};
 #[derive(Debug, Clone, PartialEq)]
 pub struct ForecastInterval {
     pub target: String,
-    pub lo80: Option<f64>,
-    pub hi80: Option<f64>,
+    pub q10: Option<f64>,
+    pub q90: Option<f64>,
 }
 
 /// The posterior summary of one site effect of a fit.
@@ -47,7 +47,7 @@ impl Store {
         fit_id: i64,
     ) -> Result<Vec<ForecastInterval>, StoreError> {
         let rows = sqlx::query(
-            "SELECT target, lo80, hi80 FROM forecasts WHERE fit_id = ?1 ORDER BY target, site, year",
+            "SELECT target, q10, q90 FROM forecasts WHERE fit_id = ?1 ORDER BY target, site, year",
         )
         .bind(fit_id)
         .fetch_all(&self.pool)
@@ -57,8 +57,8 @@ impl Store {
             .map(|r| {
                 Ok(ForecastInterval {
                     target: r.try_get("target")?,
-                    lo80: r.try_get("lo80")?,
-                    hi80: r.try_get("hi80")?,
+                    q10: r.try_get("q10")?,
+                    q90: r.try_get("q90")?,
                 })
             })
             .collect::<Result<_, sqlx::Error>>()

@@ -1,4 +1,4 @@
-//! Reads behind `vigil status`: recent runs, recent batches, latest fits per series.
+//! Reads behind `tidemark status`: recent runs, recent batches, latest fits per series.
 
 use serde::Serialize;
 use sqlx::sqlite::SqliteRow;
