@@ -59,7 +59,7 @@ fn second_series_errors_carry_their_index() {
 }
 
 #[test]
-fn a_missing_config_names_the_path() {
+fn a_missing_config_names_the_path_once_and_says_how_to_point_at_one() {
     let net = Network::new();
     let out = Command::new(env!("CARGO_BIN_EXE_tidemark"))
         .args(["--config", "nowhere/tidemark.toml", "status"])
@@ -69,9 +69,25 @@ fn a_missing_config_names_the_path() {
     assert!(!out.status.success());
     let err = String::from_utf8_lossy(&out.stderr);
     assert!(
-        err.contains("cannot read config file nowhere/tidemark.toml"),
+        err.contains("no config file at nowhere/tidemark.toml"),
         "{err}"
     );
+    assert!(err.contains("--config PATH"), "{err}");
+    assert_eq!(err.matches("os error").count(), 0, "{err}");
+    assert_eq!(err.lines().count(), 1, "{err}");
+
+    // A config that exists but cannot be read says its cause exactly once.
+    let dir = net.path("a-folder.toml");
+    std::fs::create_dir_all(&dir).expect("folder");
+    let out = Command::new(env!("CARGO_BIN_EXE_tidemark"))
+        .arg("--config")
+        .arg(&dir)
+        .arg("status")
+        .output()
+        .expect("run");
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(err.contains("cannot read config file"), "{err}");
+    assert_eq!(err.matches("os error").count(), 1, "{err}");
 }
 
 #[test]

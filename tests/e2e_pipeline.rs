@@ -314,7 +314,27 @@ fn reml_json_has_the_contract_fields() {
     assert!(doc["neg2_reml_loglik"].is_f64());
     let unknown = net.tidemark(&["reml", "--series", "nitrogen"]);
     assert!(!unknown.status.success());
-    assert!(String::from_utf8_lossy(&unknown.stderr).contains("no series named"));
+    let err = String::from_utf8_lossy(&unknown.stderr);
+    assert!(
+        err.contains("no series named \"nitrogen\"") && err.contains("it defines: chlorophyll"),
+        "{err}"
+    );
+    // Every command answers an unknown series the same way.
+    for cmd in ["refit", "forecast", "drift", "reml"] {
+        let o = net.tidemark(&[cmd, "--series", "nitrogen"]);
+        let e = String::from_utf8_lossy(&o.stderr);
+        assert!(
+            !o.status.success() && e.contains("it defines: chlorophyll"),
+            "{cmd}: {e}"
+        );
+    }
+    // Without --series, reml does every series: an array of the same documents.
+    let all: serde_json::Value =
+        serde_json::from_str(&net.ok(&["reml", "--json"])).expect("one JSON document");
+    assert_eq!(all.as_array().map(Vec::len), Some(1), "{all}");
+    assert_eq!(all[0]["neg2_reml_loglik"], doc["neg2_reml_loglik"]);
+    let text = net.ok(&["reml"]);
+    assert!(text.contains("−2 REML log-likelihood"), "{text}");
 }
 
 #[test]
@@ -339,6 +359,20 @@ fn the_demo_publishes_a_version_per_season() {
         "the demo ends by saying how to query: {stdout}"
     );
     assert!(stdout.contains("qualified staff"));
+    // Its last lines say where the config and database are and what to try with them.
+    let tail: Vec<&str> = stdout.lines().rev().take(8).collect();
+    let config_line = format!("config    {}", out_dir.join("tidemark.toml").display());
+    assert!(tail.iter().any(|l| l.contains(&config_line)), "{tail:?}");
+    assert!(
+        tail.iter().any(|l| l.contains(&format!(
+            "--config {} status",
+            out_dir.join("tidemark.toml").display()
+        ))),
+        "{tail:?}"
+    );
+    assert!(tail.iter().any(|l| l.starts_with("database  ")), "{tail:?}");
+    assert!(!out_dir.join(".demo-in-progress").exists());
+
     let net = Network {
         dir: tempfile::tempdir().unwrap(),
     };
@@ -352,6 +386,94 @@ fn the_demo_publishes_a_version_per_season() {
         String::from_utf8_lossy(&o.stdout).trim().to_string()
     };
     let _ = net;
+
+    // The variance_drift view (SQL window functions) and `drift --json` (Rust) are two
+    // computations of the same table: they must agree row for row.
+    let cfg = out_dir.join("tidemark.toml");
+    let drift_json = |extra: &[&str]| -> serde_json::Value {
+        let o = std::process::Command::new(env!("CARGO_BIN_EXE_tidemark"))
+            .arg("--config")
+            .arg(&cfg)
+            .arg("drift")
+            .args(extra)
+            .arg("--json")
+            .output()
+            .unwrap();
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        serde_json::from_slice(&o.stdout).expect("drift json")
+    };
+    let full = drift_json(&[]);
+    let mut from_json = Vec::new();
+    for s in full["series"].as_array().unwrap() {
+        for v in s["versions"].as_array().unwrap() {
+            for c in v["components"].as_array().unwrap() {
+                let num = |x: &serde_json::Value| {
+                    x.as_f64().map_or("".to_string(), |f| format!("{f:.9}"))
+                };
+                from_json.push(format!(
+                    "{}|{}|{}|{}|{}|{}|{}",
+                    s["series"].as_str().unwrap(),
+                    v["version"],
+                    c["kind"].as_str().unwrap(),
+                    c["term"].as_str().unwrap(),
+                    num(&c["previous_q50"]),
+                    num(&c["change"]),
+                    u8::from(c["flag"].as_bool().unwrap())
+                ));
+            }
+        }
+    }
+    from_json.sort();
+    let from_sql = query(
+        "SELECT series || '|' || version || '|' || kind || '|' || term || '|' ||
+                IIF(previous_q50 IS NULL, '', printf('%.9f', previous_q50)) || '|' ||
+                IIF(change IS NULL, '', printf('%.9f', change)) || '|' || flagged
+         FROM variance_drift",
+    );
+    let mut from_sql: Vec<String> = from_sql.lines().map(str::to_string).collect();
+    from_sql.sort();
+    assert_eq!(from_sql.len(), from_json.len());
+    for (a, b) in from_sql.iter().zip(&from_json) {
+        assert_eq!(a, b, "variance_drift and drift --json disagree");
+    }
+    let flags_sql: usize = query("SELECT SUM(flagged) FROM variance_drift")
+        .parse()
+        .unwrap();
+    assert!(
+        flags_sql > 0,
+        "the demo's corrected delivery and new lakes raise flags"
+    );
+
+    // --last and --flagged select versions; they never change what is compared.
+    let last = drift_json(&["--last", "2"]);
+    for (s, f) in last["series"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .zip(full["series"].as_array().unwrap())
+    {
+        let vs = s["versions"].as_array().unwrap();
+        let all = f["versions"].as_array().unwrap();
+        assert_eq!(vs.len(), 2);
+        assert_eq!(vs[..], all[all.len() - 2..]);
+    }
+    let flagged = drift_json(&["--flagged"]);
+    let kept: usize = flagged["series"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|s| {
+            for v in s["versions"].as_array().unwrap() {
+                assert!(v["components"]
+                    .as_array()
+                    .unwrap()
+                    .iter()
+                    .any(|c| c["flag"] == true));
+            }
+            s["flagged"].as_u64().unwrap() as usize
+        })
+        .sum();
+    assert_eq!(kept, flags_sql, "--flagged keeps every flagged version");
     assert_eq!(query("SELECT series || ':' || COUNT(*) FROM fits WHERE status = 'published' GROUP BY series ORDER BY series"), "chlorophyll:16\nsecchi:16");
     assert_eq!(
         query("SELECT MAX(data_through_year) FROM latest_fits"),
@@ -410,4 +532,75 @@ fn a_site_not_visited_for_longer_than_the_cap_gets_no_known_site_forecast() {
         net.scalar("SELECT COUNT(*) FROM latest_forecasts WHERE site = 'Dropped Lake'"),
         Value::Int(0)
     );
+}
+
+/// `demo | head -3` ends quietly (no panic) and the next `demo` into the same folder
+/// starts the cut-short replay over; `demo` offers no option it ignores.
+#[test]
+fn a_demo_cut_short_by_a_closed_pipe_ends_quietly_and_reruns() {
+    let dir = tempfile::tempdir().unwrap();
+    let out_dir = dir.path().join("demo");
+    let piped = std::process::Command::new("bash")
+        .arg("-c")
+        .arg(format!(
+            "\"{}\" demo --out \"{}\" | head -3 >/dev/null; echo ${{PIPESTATUS[0]}}",
+            env!("CARGO_BIN_EXE_tidemark"),
+            out_dir.display()
+        ))
+        .env_remove("TIDEMARK_CONFIG")
+        .output()
+        .unwrap();
+    let code = String::from_utf8_lossy(&piped.stdout).trim().to_string();
+    let err = String::from_utf8_lossy(&piped.stderr);
+    assert!(code == "0" || code == "141", "exit {code}: {err}");
+    assert!(!err.contains("panicked"), "{err}");
+    let again = std::process::Command::new(env!("CARGO_BIN_EXE_tidemark"))
+        .args(["demo", "--out"])
+        .arg(&out_dir)
+        .env_remove("TIDEMARK_CONFIG")
+        .output()
+        .unwrap();
+    assert!(
+        again.status.success(),
+        "{}",
+        String::from_utf8_lossy(&again.stderr)
+    );
+    assert!(String::from_utf8_lossy(&again.stdout).contains("32 versions published"));
+    // A finished demo folder is not replayed over.
+    let third = std::process::Command::new(env!("CARGO_BIN_EXE_tidemark"))
+        .args(["demo", "--out"])
+        .arg(&out_dir)
+        .output()
+        .unwrap();
+    assert!(!third.status.success());
+    assert!(String::from_utf8_lossy(&third.stderr).contains("is not empty"));
+    // A folder with anything else in it is never cleaned, even with the marker.
+    let other = dir.path().join("other");
+    std::fs::create_dir_all(&other).unwrap();
+    std::fs::write(other.join(".demo-in-progress"), "").unwrap();
+    std::fs::write(other.join("notes.txt"), "mine").unwrap();
+    let refused = std::process::Command::new(env!("CARGO_BIN_EXE_tidemark"))
+        .args(["demo", "--out"])
+        .arg(&other)
+        .output()
+        .unwrap();
+    assert!(!refused.status.success());
+    assert!(other.join("notes.txt").exists());
+
+    let help = std::process::Command::new(env!("CARGO_BIN_EXE_tidemark"))
+        .args(["demo", "--help"])
+        .output()
+        .unwrap();
+    let help = String::from_utf8_lossy(&help.stdout);
+    assert!(
+        help.contains("--out") && !help.contains("--config"),
+        "{help}"
+    );
+    let with_config = std::process::Command::new(env!("CARGO_BIN_EXE_tidemark"))
+        .args(["--config", "x.toml", "demo", "--out"])
+        .arg(dir.path().join("third"))
+        .output()
+        .unwrap();
+    assert!(!with_config.status.success());
+    assert!(String::from_utf8_lossy(&with_config.stderr).contains("--config is not used"));
 }

@@ -10,15 +10,15 @@ use std::process::ExitCode;
 use clap::{Parser, Subcommand};
 
 use crate::commands::{self, Context};
-use crate::config::CONFIG_ENV;
 use crate::telemetry::{self, LogFormat};
 
 /// Tidemark keeps the site/year variance model of a monitoring network up to date.
 #[derive(Debug, Parser)]
 #[command(name = "tidemark", version, about, propagate_version = true)]
 pub struct Cli {
-    /// Configuration file [default: ./tidemark.toml]
-    #[arg(long, global = true, value_name = "PATH", env = CONFIG_ENV)]
+    /// Configuration file [default: $TIDEMARK_CONFIG, else ./tidemark.toml]; give it before
+    /// the command. `demo` writes its own.
+    #[arg(long, value_name = "PATH")]
     pub config: Option<PathBuf>,
 
     /// Log line format on stderr [default: text on a terminal, json otherwise]
@@ -69,9 +69,9 @@ pub enum Command {
     },
     /// REML estimates of the variance components on the data now in the store
     Reml {
-        /// The series to estimate
+        /// Only this series [default: every series]
         #[arg(long, value_name = "NAME")]
-        series: String,
+        series: Option<String>,
         /// Print one JSON document instead of text
         #[arg(long)]
         json: bool,
@@ -89,6 +89,12 @@ pub enum Command {
         /// Only this series
         #[arg(long, value_name = "NAME")]
         series: Option<String>,
+        /// Only versions with at least one flagged quantity
+        #[arg(long)]
+        flagged: bool,
+        /// Only the newest N published versions of each series
+        #[arg(long, value_name = "N", value_parser = clap::value_parser!(u32).range(1..))]
+        last: Option<u32>,
         /// Print one JSON document instead of text
         #[arg(long)]
         json: bool,
@@ -138,6 +144,9 @@ pub fn run() -> ExitCode {
         "warn"
     };
     telemetry::init_with(cli.log_format, level);
+    if !matches!(cli.command, Command::Serve) {
+        stop_quietly_on_a_closed_pipe();
+    }
     let runtime = match tokio::runtime::Builder::new_multi_thread()
         .worker_threads(2)
         .enable_all()
@@ -163,10 +172,28 @@ pub fn run() -> ExitCode {
     }
 }
 
+/// A command whose reader went away (`tidemark drift | head`) ends at once, as other
+/// command-line tools do (exit status 141 in the shell), instead of panicking in the next
+/// `println!`. Safe because every write to the store is one transaction: what was
+/// committed stays, what was not is rolled back. `serve` keeps the Rust default (SIGPIPE
+/// ignored): it must never die of a pipe, and prints nothing to stdout.
+fn stop_quietly_on_a_closed_pipe() {
+    // SAFETY: setting a signal disposition to its default at start-up, before any thread
+    // of ours writes to a pipe.
+    unsafe {
+        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+    }
+}
+
 /// Run one parsed command.
 pub async fn dispatch(cli: Cli) -> anyhow::Result<()> {
     // The demo brings its own configuration.
     if let Command::Demo { out } = cli.command {
+        if cli.config.is_some() {
+            anyhow::bail!(
+                "demo writes its own config into its --out folder; --config is not used with demo"
+            );
+        }
         return commands::demo::run(out).await;
     }
     let ctx = Context::load(cli.config.as_deref())?;
@@ -180,11 +207,22 @@ pub async fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Forecast { series } => commands::forecast::run(&ctx, series).await,
         Command::RunOnce => commands::run_once::run(&ctx).await,
         Command::Serve => commands::serve::run(&ctx).await,
-        Command::Reml { series, json } => commands::reml::run(&ctx, &series, json).await,
+        Command::Reml { series, json } => commands::reml::run(&ctx, series, json).await,
         Command::Init => commands::init::run(&ctx).await,
         Command::Ingest { files } => commands::ingest::run(&ctx, &files).await,
         Command::Status { json } => commands::status::run(&ctx, json).await,
-        Command::Drift { series, json } => commands::drift::run(&ctx, series, json).await,
+        Command::Drift {
+            series,
+            flagged,
+            last,
+            json,
+        } => {
+            let filter = crate::drift::Filter {
+                flagged_only: flagged,
+                last: last.map(|n| n as usize),
+            };
+            commands::drift::run(&ctx, series, filter, json).await
+        }
         Command::Report { out, series } => commands::report::run(&ctx, &out, series).await,
     }
 }

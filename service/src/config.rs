@@ -18,10 +18,23 @@ pub const DEFAULT_CONFIG: &str = "tidemark.toml";
 /// A problem with the configuration, written for the person editing the file.
 #[derive(Debug, thiserror::Error)]
 pub enum ConfigError {
-    #[error("cannot read config file {path}: {source}")]
+    #[error(
+        "no config file at {path}; point at one with --config PATH or the {CONFIG_ENV} environment \
+         variable (`tidemark demo` writes an example)"
+    )]
+    Missing { path: PathBuf },
+    /// The cause is the error's source, so it is printed once, after this message.
+    #[error("cannot read config file {path}")]
     Read {
         path: PathBuf,
+        #[source]
         source: std::io::Error,
+    },
+    #[error("no series named {name:?} in {file} (it defines: {known})")]
+    UnknownSeries {
+        name: String,
+        file: String,
+        known: String,
     },
     #[error("{file}: {key}{location}: {message}")]
     Invalid {
@@ -73,6 +86,30 @@ pub struct SeriesConfig {
     /// Known-site forecasts are written only for sites observed within this many years
     /// of the data-through year (`None`: every site).
     pub known_site_max_gap: Option<u32>,
+}
+
+impl Config {
+    /// The series a command works on: the one named (by `--series`), or every configured
+    /// series. The one lookup every command and the pipeline use, so an unknown name always
+    /// gets the same answer, listing the configured names.
+    pub fn select_series(&self, name: Option<&str>) -> Result<Vec<&SeriesConfig>, ConfigError> {
+        let Some(name) = name else {
+            return Ok(self.series.iter().collect());
+        };
+        match self.series.iter().find(|s| s.name == name) {
+            Some(s) => Ok(vec![s]),
+            None => Err(ConfigError::UnknownSeries {
+                name: name.to_string(),
+                file: self.path.display().to_string(),
+                known: self
+                    .series
+                    .iter()
+                    .map(|s| s.name.as_str())
+                    .collect::<Vec<_>>()
+                    .join(", "),
+            }),
+        }
+    }
 }
 
 impl SeriesConfig {
@@ -268,9 +305,17 @@ pub fn locate(cli: Option<&Path>) -> PathBuf {
 impl Config {
     /// Read and validate the config file at `path`.
     pub fn load(path: &Path) -> Result<Config, ConfigError> {
-        let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
-            path: path.to_path_buf(),
-            source,
+        let text = std::fs::read_to_string(path).map_err(|source| {
+            if source.kind() == std::io::ErrorKind::NotFound {
+                ConfigError::Missing {
+                    path: path.to_path_buf(),
+                }
+            } else {
+                ConfigError::Read {
+                    path: path.to_path_buf(),
+                    source,
+                }
+            }
         })?;
         let dir = path
             .parent()

@@ -170,6 +170,40 @@ pub fn build(rows: &[ComponentRow]) -> DriftReport {
     }
 }
 
+/// Which versions `drift` shows. Flags and changes are computed on every version first,
+/// so a filter never changes what is compared with what.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct Filter {
+    /// Keep only versions with at least one flagged quantity.
+    pub flagged_only: bool,
+    /// Keep only the newest `last` versions of each series.
+    pub last: Option<usize>,
+}
+
+impl DriftReport {
+    /// Apply `filter`; a series left without versions is dropped. `flagged` counts the
+    /// flags of the versions kept.
+    pub fn filtered(mut self, filter: Filter) -> DriftReport {
+        for s in &mut self.series {
+            if let Some(n) = filter.last {
+                let skip = s.versions.len().saturating_sub(n);
+                s.versions.drain(..skip);
+            }
+            if filter.flagged_only {
+                s.versions.retain(|v| v.components.iter().any(|c| c.flag));
+            }
+            s.flagged = s
+                .versions
+                .iter()
+                .flat_map(|v| &v.components)
+                .filter(|c| c.flag)
+                .count();
+        }
+        self.series.retain(|s| !s.versions.is_empty());
+        self
+    }
+}
+
 /// The text form: per series, one compact block per quantity with a line per version.
 pub fn render_text(report: &DriftReport) -> String {
     use std::fmt::Write as _;

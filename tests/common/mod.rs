@@ -209,7 +209,7 @@ impl Network {
             .arg(self.db_path())
             .arg(query)
             .output()
-            .expect("the sqlite3 client must be installed (.ci/run installs it)");
+            .expect("the sqlite3 client must be installed (scripts/test installs it)");
         assert!(
             out.status.success(),
             "sqlite3 {query:?} failed: {}",

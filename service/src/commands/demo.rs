@@ -26,11 +26,46 @@ const SEASONS: &[(i32, &str)] = seasons!(
 );
 const CONFIG: &str = include_str!("../../../demo-feed/tidemark.toml");
 
+/// Present in the demo folder from the start of a replay until its end: a replay cut
+/// short (a closed pipe, Ctrl-C, a crash) leaves it, and the next `demo` starts over.
+const IN_PROGRESS: &str = ".demo-in-progress";
+
+/// Everything a replay writes into its folder; nothing else is ever removed.
+const DEMO_ENTRIES: &[&str] = &[
+    IN_PROGRESS,
+    "tidemark.toml",
+    "tidemark.db",
+    "tidemark.db-wal",
+    "tidemark.db-shm",
+    "inbox",
+    "archive",
+    "quarantine",
+];
+
 fn prepare(out: &Path) -> anyhow::Result<()> {
     if out.exists() {
-        let mut entries =
-            std::fs::read_dir(out).with_context(|| format!("cannot read {}", out.display()))?;
-        if entries.next().is_some() {
+        let entries: Vec<String> = std::fs::read_dir(out)
+            .with_context(|| format!("cannot read {}", out.display()))?
+            .filter_map(|e| e.ok())
+            .map(|e| e.file_name().to_string_lossy().into_owned())
+            .collect();
+        let interrupted = entries.iter().any(|e| e == IN_PROGRESS)
+            && entries.iter().all(|e| DEMO_ENTRIES.contains(&e.as_str()));
+        if interrupted {
+            for e in &entries {
+                let p = out.join(e);
+                let removed = if p.is_dir() {
+                    std::fs::remove_dir_all(&p)
+                } else {
+                    std::fs::remove_file(&p)
+                };
+                removed.with_context(|| format!("cannot remove {}", p.display()))?;
+            }
+            eprintln!(
+                "{} held a replay that was cut short; starting it over",
+                out.display()
+            );
+        } else if !entries.is_empty() {
             anyhow::bail!(
                 "{} is not empty; choose a new or empty folder with --out, or delete it to replay the demo",
                 out.display()
@@ -38,6 +73,8 @@ fn prepare(out: &Path) -> anyhow::Result<()> {
         }
     }
     std::fs::create_dir_all(out).with_context(|| format!("cannot create {}", out.display()))?;
+    std::fs::write(out.join(IN_PROGRESS), "")
+        .with_context(|| format!("cannot write {}/{IN_PROGRESS}", out.display()))?;
     std::fs::write(out.join("tidemark.toml"), CONFIG)
         .with_context(|| format!("cannot write {}/tidemark.toml", out.display()))?;
     Ok(())
@@ -71,20 +108,24 @@ pub async fn run(out: Option<PathBuf>) -> anyhow::Result<()> {
         SEASONS.len(),
         out.display()
     );
+    println!(
+        "{:<6} {:<12} {:>4} {:>5} | {:^35} | {:^39}",
+        "", "", "", "", "sd, model scale (posterior median)", "80% interval width, response units"
+    );
     let header = format!(
-        "{:<6} {:<12} {:>4} {:>5} {:>8} {:>8} {:>8} {:>8}   {:>9} {:>9} {:>9} {:>9}",
+        "{:<6} {:<12} {:>4} {:>5} | {:>8} {:>8} {:>8} {:>8} | {:>9} {:>9} {:>9} {:>9}",
         "season",
         "series",
         "ver",
         "obs",
-        "sd_site",
-        "sd_year",
-        "sd_grp",
-        "sd_resid",
-        "w80 KK",
-        "w80 KN",
-        "w80 NK",
-        "w80 NN"
+        "site",
+        "year",
+        "group",
+        "resid",
+        "mon/seen",
+        "mon/next",
+        "new/seen",
+        "new/next"
     );
     println!("{header}");
     let mut published = 0usize;
@@ -111,7 +152,7 @@ pub async fn run(out: Option<PathBuf>) -> anyhow::Result<()> {
             let fmt = |v: Option<f64>| v.map_or("-".to_string(), |v| format!("{v:.3}"));
             let w = |t: &str| s.width80.iter().find(|(n, _)| n == t).map(|(_, v)| *v);
             lines.push(format!(
-                "{:<6} {:<12} {:>4} {:>5} {:>8} {:>8} {:>8} {:>8}   {:>9} {:>9} {:>9} {:>9}{}",
+                "{:<6} {:<12} {:>4} {:>5} | {:>8} {:>8} {:>8} {:>8} | {:>9} {:>9} {:>9} {:>9}{}",
                 year,
                 s.series,
                 s.version.map_or("-".into(), |v| v.to_string()),
@@ -148,16 +189,27 @@ pub async fn run(out: Option<PathBuf>) -> anyhow::Result<()> {
         b.finish_and_clear();
     }
     store.close().await;
+    std::fs::remove_file(out.join(IN_PROGRESS))
+        .with_context(|| format!("cannot remove {}/{IN_PROGRESS}", out.display()))?;
     let db = config.database.display();
+    let cfg = config.path.display();
     println!(
-        "\nw80 = mean width of the 80% forecast interval (response units: µg/L for chlorophyll, m for Secchi)\n\
-         KK known site, known year | KN known site, next year | NK new site, known year | NN new site, next year\n\
-         {published} versions published. The database is {db}; query it with any SQL client, e.g.\n\n  \
-         sqlite3 {db} \"SELECT series, target, site, year, round(q50,2) AS median, round(q10,2) AS q10, round(q90,2) AS q90 FROM latest_forecasts WHERE target LIKE 'new_site%' ORDER BY series, year DESC LIMIT 8\"\n  \
-         sqlite3 {db} \"SELECT series, version, term, round(q05,3), round(q50,3), round(q95,3) FROM variance_drift WHERE series = 'chlorophyll' ORDER BY version, term\"\n\n\
-         Forecasts are statistical estimates. Decisions that touch people, such as recreational-water or drinking-water\n\
-         advisories after algal blooms, follow the responsible agency's own sampling, testing and notification rules and\n\
-         are made by qualified staff."
+        "\nsd: posterior median of each standard deviation on the model scale (chlorophyll: natural log\n\
+         of µg/L; Secchi: metres). Width: mean width of the 80% forecast interval (q10 to q90) in\n\
+         response units (µg/L for chlorophyll, m for Secchi) for a monitored lake (mon) or a new lake\n\
+         (new), in a season already seen (seen) or next season (next).\n\n\
+         Forecasts are statistical estimates. Decisions that touch people, such as recreational-water or\n\
+         drinking-water advisories after algal blooms, follow the responsible agency's own sampling,\n\
+         testing and notification rules and are made by qualified staff.\n\n\
+         {published} versions published.\n\
+         config    {cfg}\n\
+         database  {db}\n\
+         try next:\n  \
+         tidemark --config {cfg} status\n  \
+         tidemark --config {cfg} drift --series chlorophyll --last 3\n  \
+         tidemark --config {cfg} report --out {out}/report.html\n  \
+         sqlite3 {db} \"SELECT series, target, site, year, round(q10,2), round(q50,2), round(q90,2) FROM latest_forecasts WHERE target = 'new_site_new_year'\"",
+        out = out.display()
     );
     Ok(())
 }

@@ -26,17 +26,7 @@ async fn rewrite(
     store: &crate::store::Store,
     series: Option<String>,
 ) -> anyhow::Result<()> {
-    let names: Vec<&crate::config::SeriesConfig> = match &series {
-        Some(name) => vec![ctx
-            .config
-            .series
-            .iter()
-            .find(|s| &s.name == name)
-            .ok_or_else(|| {
-                anyhow::anyhow!("no series named {name:?} in {}", ctx.config.path.display())
-            })?],
-        None => ctx.config.series.iter().collect(),
-    };
+    let names = super::select_series(ctx, series.as_deref())?;
     for s in names {
         let Some(latest) = store.latest_published(&s.name).await? else {
             println!("{}: no published version yet", s.name);

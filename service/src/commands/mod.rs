@@ -44,15 +44,16 @@ impl Context {
 
 /// Refuse a `--series NAME` that the configuration does not define.
 pub fn require_series(ctx: &Context, name: &str) -> anyhow::Result<()> {
-    if ctx.config.series.iter().any(|s| s.name == name) {
-        return Ok(());
-    }
-    let known: Vec<&str> = ctx.config.series.iter().map(|s| s.name.as_str()).collect();
-    anyhow::bail!(
-        "no series named {name:?} in {} (it defines: {})",
-        ctx.config.path.display(),
-        known.join(", ")
-    )
+    select_series(ctx, Some(name)).map(|_| ())
+}
+
+/// The series a command works on: the one named by `--series`, or every configured
+/// series ([`crate::config::Config::select_series`]).
+pub fn select_series<'a>(
+    ctx: &'a Context,
+    name: Option<&str>,
+) -> anyhow::Result<Vec<&'a crate::config::SeriesConfig>> {
+    Ok(ctx.config.select_series(name)?)
 }
 
 /// Print `text` to stdout; a reader that stopped early (`tidemark drift | head`) is not an

@@ -1,4 +1,5 @@
-//! `tidemark reml --series NAME [--json]`: REML estimates on the data now in the store.
+//! `tidemark reml [--series NAME] [--json]`: REML estimates on the data now in the store,
+//! for one series or every series.
 
 use serde_json::json;
 use tidemark_model::{fit_point, Method};
@@ -6,23 +7,46 @@ use tidemark_model::{fit_point, Method};
 use super::Context;
 use crate::pipeline::input;
 
-pub async fn run(ctx: &Context, series: &str, as_json: bool) -> anyhow::Result<()> {
-    let s = ctx
-        .config
-        .series
-        .iter()
-        .find(|s| s.name == series)
-        .ok_or_else(|| {
-            anyhow::anyhow!(
-                "no series named {series:?} in {}",
-                ctx.config.path.display()
-            )
-        })?;
+pub async fn run(ctx: &Context, series: Option<String>, as_json: bool) -> anyhow::Result<()> {
+    let chosen = super::select_series(ctx, series.as_deref())?;
     let store = ctx.open_store().await?;
+    let mut docs = Vec::new();
+    for (i, s) in chosen.iter().enumerate() {
+        if !as_json && i > 0 {
+            println!();
+        }
+        let doc = estimate(&store, s, as_json).await;
+        match doc {
+            Ok(Some(d)) => docs.push(d),
+            Ok(None) => {}
+            Err(e) => {
+                store.close().await;
+                return Err(e.context(format!("series {}", s.name)));
+            }
+        }
+    }
+    store.close().await;
+    if as_json {
+        // One object for a named series (the documented contract), an array for all.
+        let out = if series.is_some() && docs.len() == 1 {
+            docs.remove(0)
+        } else {
+            serde_json::Value::Array(docs)
+        };
+        println!("{}", serde_json::to_string_pretty(&out)?);
+    }
+    Ok(())
+}
+
+/// REML for one series: returns its JSON document, or prints the text form.
+async fn estimate(
+    store: &crate::store::Store,
+    s: &crate::config::SeriesConfig,
+    as_json: bool,
+) -> anyhow::Result<Option<serde_json::Value>> {
     let rows = store
         .load_series_rows(&s.response, &s.covariates, &s.groups)
         .await?;
-    store.close().await;
     let built = input::build(s, &rows)?;
     let data = built.data;
     let fit =
@@ -51,7 +75,7 @@ pub async fn run(ctx: &Context, series: &str, as_json: bool) -> anyhow::Result<(
             "converged": fit.converged,
             "warnings": fit.warnings,
         });
-        println!("{}", serde_json::to_string_pretty(&doc)?);
+        return Ok(Some(doc));
     } else {
         println!(
             "{}: REML on {} observations ({} sites, {} years; {} excluded), model scale ({})",
@@ -73,5 +97,5 @@ pub async fn run(ctx: &Context, series: &str, as_json: bool) -> anyhow::Result<(
             println!("  warning: {w}");
         }
     }
-    Ok(())
+    Ok(None)
 }

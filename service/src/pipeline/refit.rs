@@ -91,28 +91,7 @@ pub async fn refit(
     config: &Config,
     opts: &RefitOptions,
 ) -> anyhow::Result<Vec<SeriesReport>> {
-    let selected: Vec<&SeriesConfig> = match &opts.series {
-        Some(name) => {
-            let s = config
-                .series
-                .iter()
-                .find(|s| &s.name == name)
-                .ok_or_else(|| {
-                    anyhow::anyhow!(
-                        "no series named {name:?} in {}; configured: {}",
-                        config.path.display(),
-                        config
-                            .series
-                            .iter()
-                            .map(|s| s.name.as_str())
-                            .collect::<Vec<_>>()
-                            .join(", ")
-                    )
-                })?;
-            vec![s]
-        }
-        None => config.series.iter().collect(),
-    };
+    let selected = config.select_series(opts.series.as_deref())?;
     let mut reports = Vec::new();
     for series in selected {
         let span = info_span!("refit", series = %series.name);
