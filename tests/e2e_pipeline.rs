@@ -243,15 +243,43 @@ fn a_new_season_warm_starts_from_the_last_version() {
     assert!(net
         .scalar("SELECT warm_start_from FROM latest_fits")
         .is_null());
-    // Runs are recorded with their per-series outcome.
+    // Runs are recorded with their per-series outcome, manual refits too.
     assert_eq!(
-        net.scalar("SELECT COUNT(*) FROM runs WHERE status = 'succeeded'"),
-        Value::Int(2)
+        net.sqlite3(
+            "SELECT trigger, command, status, COUNT(*) FROM runs GROUP BY 1, 2, 3 ORDER BY 2"
+        ),
+        "manual|refit|succeeded|1\nmanual|run-once|succeeded|2\n"
     );
     assert_eq!(
         net.scalar("SELECT COUNT(*) FROM run_series WHERE outcome = 'published'"),
-        Value::Int(2)
+        Value::Int(3)
     );
+    let holders = net.scalar("SELECT COUNT(DISTINCT holder) FROM runs WHERE holder IS NOT NULL");
+    assert_eq!(
+        holders,
+        Value::Int(3),
+        "each run is owned by the process that made it"
+    );
+    // Manual ingest and forecast leave runs too; an empty inbox does not.
+    net.ok(&["ingest"]);
+    net.ok(&["forecast"]);
+    assert_eq!(
+        net.sqlite3("SELECT command, status, holder IS NULL FROM runs WHERE command IN ('ingest', 'forecast')"),
+        "forecast|succeeded|0\n"
+    );
+    net.drop_file(
+        "again.csv",
+        "lake,season,visit,chl_ug_l\nLake 01,2021,9,2.5\n",
+    );
+    net.ok(&["ingest"]);
+    assert_eq!(
+        net.sqlite3(
+            "SELECT command, status, holder IS NULL, message FROM runs WHERE command = 'ingest'"
+        ),
+        "ingest|succeeded|1|1 file(s) ingested, 0 file error(s)\n"
+    );
+    let status = net.ok(&["status"]);
+    assert!(status.contains("(manual ingest)"), "{status}");
 }
 
 #[test]

@@ -193,7 +193,13 @@ fn serve_publishes_on_schedule_refuses_a_second_instance_and_stops_on_sigterm() 
     let status: serde_json::Value =
         serde_json::from_str(&net.ok(&["status", "--json"])).expect("status json");
     assert_eq!(status["lease"]["pid"], pid);
+    assert_eq!(status["lease"]["command"], "serve");
     assert!(status["lease"]["stale"].is_null());
+    let text = net.ok(&["status"]);
+    assert!(
+        text.contains(&format!("lease      held by `serve`, pid {pid}")),
+        "{text}"
+    );
     assert!(status["schedule"]["next_run_local"]
         .as_str()
         .is_some_and(|t| t.ends_with("+02:00") || t.ends_with("+03:00")));

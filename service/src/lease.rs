@@ -44,11 +44,12 @@ pub struct Lease {
 }
 
 /// This process's identity: a random holder id, our pid and host name.
-pub fn own_claim() -> LeaseClaim {
+pub fn own_claim(command: &'static str) -> LeaseClaim {
     LeaseClaim {
         holder: format!("{:016x}", rand::random::<u64>()),
         pid: i64::from(std::process::id()),
         host: host_name(),
+        command,
     }
 }
 
@@ -91,8 +92,12 @@ impl Lease {
     /// Claim the lease, taking it over from a stale holder, and start the heartbeat.
     /// When the heartbeat finds the lease taken by another process, `cancel` is raised so
     /// the work stops at its next safe point.
-    pub async fn acquire(store: &Store, cancel: Arc<AtomicBool>) -> Result<Lease, LeaseError> {
-        let claim = own_claim();
+    pub async fn acquire(
+        store: &Store,
+        cancel: Arc<AtomicBool>,
+        command: &'static str,
+    ) -> Result<Lease, LeaseError> {
+        let claim = own_claim(command);
         let attempt = store
             .acquire_lease(&claim, |h| stale_reason(h, &claim, Utc::now()))
             .await?;
@@ -146,6 +151,15 @@ impl Lease {
 
     pub fn claim(&self) -> &LeaseClaim {
         &self.claim
+    }
+
+    /// The origin of a run this process makes while it holds the lease.
+    pub fn run_origin(&self, trigger: &'static str) -> crate::store::RunOrigin {
+        crate::store::RunOrigin {
+            trigger,
+            command: self.claim.command,
+            holder: Some(self.claim.holder.clone()),
+        }
     }
 
     /// Stop the heartbeat and give the lease up.
@@ -220,12 +234,13 @@ mod tests {
             host: host.into(),
             acquired_at: beat.to_rfc3339(),
             heartbeat_at: beat.to_rfc3339(),
+            command: None,
         }
     }
 
     #[test]
     fn a_live_holder_with_a_fresh_heartbeat_is_not_stale() {
-        let me = own_claim();
+        let me = own_claim("test");
         let now = Utc::now();
         // Our parent process (the test harness's parent) is alive on this host.
         let parent = i64::from(std::os::unix::process::parent_id());
@@ -238,7 +253,7 @@ mod tests {
 
     #[test]
     fn a_dead_pid_on_this_host_is_stale_but_not_on_another_host() {
-        let me = own_claim();
+        let me = own_claim("test");
         let now = Utc::now();
         let mut child = std::process::Command::new("true")
             .spawn()
@@ -256,7 +271,7 @@ mod tests {
 
     #[test]
     fn an_old_heartbeat_or_our_own_pid_is_stale() {
-        let me = own_claim();
+        let me = own_claim("test");
         let now = Utc::now();
         let old = now - chrono::Duration::seconds(61);
         let r = stale_reason(&holder(1, "elsewhere", old), &me, now);

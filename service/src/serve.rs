@@ -22,6 +22,7 @@ use crate::config::Config;
 use crate::lease::Lease;
 use crate::pipeline::run::{run_once, RunReport};
 use crate::signals::ShutdownSignals;
+use crate::store::RunOrigin;
 use crate::store::Store;
 
 /// Longest sleep between looks at the clock.
@@ -40,14 +41,14 @@ struct Running {
 fn start(
     store: &Store,
     config: &Arc<Config>,
-    trigger: &'static str,
+    origin: RunOrigin,
     cancel: &Arc<AtomicBool>,
 ) -> Running {
     let (store, config, cancel) = (store.clone(), config.clone(), cancel.clone());
     Running {
-        trigger,
+        trigger: origin.trigger,
         started: Utc::now(),
-        task: tokio::spawn(async move { run_once(&store, &config, trigger, cancel).await }),
+        task: tokio::spawn(async move { run_once(&store, &config, &origin, cancel).await }),
     }
 }
 
@@ -77,7 +78,7 @@ fn parse_time(text: &str) -> Option<DateTime<Utc>> {
 pub async fn serve(store: Store, config: Config) -> anyhow::Result<()> {
     let mut signals = ShutdownSignals::install()?;
     let cancel = Arc::new(AtomicBool::new(false));
-    let lease = Lease::acquire(&store, cancel.clone()).await?;
+    let lease = Lease::acquire(&store, cancel.clone(), "serve").await?;
     let config = Arc::new(config);
     let schedule = config.schedule.clone();
     info!(
@@ -99,7 +100,12 @@ pub async fn serve(store: Store, config: Config) -> anyhow::Result<()> {
                 missed = %schedule.local(missed),
                 "a scheduled run was missed while tidemark was not serving; catching up"
             );
-            current = Some(start(&store, &config, "catch-up", &cancel));
+            current = Some(start(
+                &store,
+                &config,
+                lease.run_origin("catch-up"),
+                &cancel,
+            ));
         }
     }
     let mut next = schedule.next_after(Utc::now());
@@ -137,11 +143,13 @@ pub async fn serve(store: Store, config: Config) -> anyhow::Result<()> {
                             schedule.local(r.started)
                         );
                         info!("{why}");
-                        if let Err(e) = store.record_skipped_run("schedule", &why).await {
+                        if let Err(e) = store.record_skipped_run(&lease.run_origin("schedule"), &why).await {
                             warn!("cannot record the skipped tick: {e}");
                         }
                     }
-                    None => current = Some(start(&store, &config, "schedule", &cancel)),
+                    None => {
+                        current = Some(start(&store, &config, lease.run_origin("schedule"), &cancel))
+                    }
                 }
             }
         }

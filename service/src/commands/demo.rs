@@ -12,7 +12,7 @@ use anyhow::Context as _;
 use crate::config::Config;
 use crate::pipeline::run::run_once;
 use crate::pipeline::SeriesOutcome;
-use crate::store::Store;
+use crate::store::{RunOrigin, Store};
 
 macro_rules! seasons {
     ($($year:literal),*) => {
@@ -136,7 +136,12 @@ pub async fn run(out: Option<PathBuf>) -> anyhow::Result<()> {
         if let Some(b) = &bar {
             b.set_message(format!("fitting {year}"));
         }
-        let report = run_once(&store, &config, "demo", Arc::new(AtomicBool::new(false))).await?;
+        let origin = RunOrigin {
+            trigger: "demo",
+            command: "demo",
+            holder: None,
+        };
+        let report = run_once(&store, &config, &origin, Arc::new(AtomicBool::new(false))).await?;
         let mut lines = Vec::new();
         for s in &report.series {
             if s.outcome == SeriesOutcome::Published {

@@ -14,19 +14,29 @@ use crate::pipeline::input::model_transform;
 
 pub async fn run(ctx: &Context, series: Option<String>) -> anyhow::Result<()> {
     let store = ctx.open_store().await?;
-    let lease = Lease::acquire(&store, Arc::new(AtomicBool::new(false))).await?;
+    let lease = Lease::acquire(&store, Arc::new(AtomicBool::new(false)), "forecast").await?;
+    let run_id = store.start_run(&lease.run_origin("manual")).await?;
     let outcome = rewrite(ctx, &store, series).await;
+    let (status, message) = match &outcome {
+        Ok(n) => (
+            "succeeded",
+            format!("forecasts rewritten for {n} version(s)"),
+        ),
+        Err(e) => ("failed", format!("{e:#}")),
+    };
+    store.finish_run(run_id, status, Some(&message)).await?;
     lease.release().await?;
     store.close().await;
-    outcome
+    outcome.map(|_| ())
 }
 
 async fn rewrite(
     ctx: &Context,
     store: &crate::store::Store,
     series: Option<String>,
-) -> anyhow::Result<()> {
+) -> anyhow::Result<usize> {
     let names = super::select_series(ctx, series.as_deref())?;
+    let mut rewritten = 0;
     for s in names {
         let Some(latest) = store.latest_published(&s.name).await? else {
             println!("{}: no published version yet", s.name);
@@ -57,6 +67,7 @@ async fn rewrite(
             latest.version,
             latest.fit_id
         );
+        rewritten += 1;
     }
-    Ok(())
+    Ok(rewritten)
 }

@@ -4,6 +4,7 @@ use std::path::PathBuf;
 
 use super::Context;
 use crate::ingest;
+use crate::store::RunOrigin;
 
 pub async fn run(ctx: &Context, files: &[PathBuf]) -> anyhow::Result<()> {
     let store = ctx.open_store().await?;
@@ -25,7 +26,23 @@ pub async fn run(ctx: &Context, files: &[PathBuf]) -> anyhow::Result<()> {
     };
     if files.is_empty() {
         println!("inbox {} is empty", ctx.config.feed.inbox.display());
+        store.close().await;
+        return Ok(());
     }
+    // Ingest does not take the lease (batches are single transactions; a second writer
+    // waits on the database lock), so its run has no lease holder.
+    let origin = RunOrigin {
+        trigger: "manual",
+        command: "ingest",
+        holder: None,
+    };
+    let run_id = store.start_run(&origin).await.map_err(|e| {
+        let names: Vec<String> = files.iter().map(|f| f.display().to_string()).collect();
+        anyhow::Error::new(e).context(format!(
+            "nothing was ingested; {} waits where it is",
+            names.join(", ")
+        ))
+    })?;
     let mut failed = 0usize;
     for file in &files {
         match ingest::ingest_file(&store, &ctx.config, file).await {
@@ -36,6 +53,12 @@ pub async fn run(ctx: &Context, files: &[PathBuf]) -> anyhow::Result<()> {
             }
         }
     }
+    let status = if failed > 0 { "partial" } else { "succeeded" };
+    let message = format!(
+        "{} file(s) ingested, {failed} file error(s)",
+        files.len() - failed
+    );
+    store.finish_run(run_id, status, Some(&message)).await?;
     store.close().await;
     if failed > 0 {
         anyhow::bail!(

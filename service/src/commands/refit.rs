@@ -6,7 +6,8 @@ use std::sync::Arc;
 
 use super::Context;
 use crate::lease::Lease;
-use crate::pipeline::{refit, RefitOptions, SeriesOutcome, SeriesReport};
+use crate::pipeline::run::refit_run;
+use crate::pipeline::{RefitOptions, SeriesOutcome, SeriesReport};
 use crate::progress::FitProgress;
 use crate::signals::cancel_on_shutdown;
 
@@ -59,7 +60,7 @@ pub async fn run(
     let store = ctx.open_store().await?;
     let cancel = Arc::new(AtomicBool::new(false));
     let watcher = cancel_on_shutdown(cancel.clone())?;
-    let lease = Lease::acquire(&store, cancel.clone()).await?;
+    let lease = Lease::acquire(&store, cancel.clone(), "refit").await?;
     let opts = RefitOptions {
         series,
         cold,
@@ -68,10 +69,14 @@ pub async fn run(
         progress: FitProgress::on_terminal(),
         ..RefitOptions::default()
     };
-    let outcome = refit(&store, &ctx.config, &opts).await;
+    let outcome = refit_run(&store, &ctx.config, &lease.run_origin("manual"), opts).await;
     watcher.abort();
     lease.release().await?;
-    let reports = outcome?;
+    let run = outcome?;
+    if run.status == "failed" {
+        anyhow::bail!("{}", run.message);
+    }
+    let reports = run.series;
     for r in &reports {
         println!("{}", describe(r));
     }

@@ -16,11 +16,12 @@ pub async fn run(ctx: &Context) -> anyhow::Result<()> {
     let store = ctx.open_store().await?;
     let cancel = Arc::new(AtomicBool::new(false));
     let watcher = cancel_on_shutdown(cancel.clone())?;
-    let lease = Lease::acquire(&store, cancel.clone()).await?;
+    let lease = Lease::acquire(&store, cancel.clone(), "run-once").await?;
+    let origin = lease.run_origin("manual");
     let outcome = run_once_with_progress(
         &store,
         &ctx.config,
-        "manual",
+        &origin,
         cancel,
         FitProgress::on_terminal(),
     )

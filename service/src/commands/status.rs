@@ -96,7 +96,7 @@ pub async fn run(ctx: &Context, json: bool) -> anyhow::Result<()> {
     }
     let runs = store.recent_runs(RECENT).await?;
     let lease = store.lease_holder().await?.map(|holder| {
-        let stale = stale_reason(&holder, &own_claim(), chrono::Utc::now());
+        let stale = stale_reason(&holder, &own_claim("status"), chrono::Utc::now());
         LeaseStatus { holder, stale }
     });
     let next_run = config.schedule.next_after(chrono::Utc::now());
@@ -203,20 +203,37 @@ fn attention(
 }
 
 fn fit_line(f: &FitSummary) -> String {
-    let num =
-        |x: Option<f64>, digits: usize| x.map_or("-".to_string(), |v| format!("{v:.digits$}"));
-    format!(
-        "version {} {} {} (fit {}, data through {}, {} obs): max R-hat {}, min ESS bulk {} / tail {}",
-        f.version,
-        f.status,
-        f.created_at,
-        f.fit_id,
-        f.data_through_year.map_or("-".into(), |y| y.to_string()),
-        f.n_obs.map_or("-".into(), |n| n.to_string()),
-        num(f.max_rhat, 3),
-        num(f.min_ess_bulk, 0),
-        num(f.min_ess_tail, 0),
-    )
+    let mut known = vec![format!("fit {}", f.fit_id)];
+    if let Some(y) = f.data_through_year {
+        known.push(format!("data through {y}"));
+    }
+    if let Some(n) = f.n_obs {
+        known.push(format!("{n} obs"));
+    }
+    let mut diag = Vec::new();
+    if let Some(r) = f.max_rhat {
+        diag.push(format!("max R-hat {r:.3}"));
+    }
+    if let (Some(b), Some(t)) = (f.min_ess_bulk, f.min_ess_tail) {
+        diag.push(format!("min ESS bulk {b:.0} / tail {t:.0}"));
+    }
+    let diag = if diag.is_empty() {
+        String::new()
+    } else {
+        format!(": {}", diag.join(", "))
+    };
+    // An attempt that published nothing is not a version: say what it tried to become.
+    let head = if f.status == "published" {
+        format!("version {} published {}", f.version, f.created_at)
+    } else {
+        format!(
+            "attempt {} {} (would have been version {})",
+            f.status.to_uppercase(),
+            f.created_at,
+            f.version
+        )
+    };
+    format!("{head} ({}){diag}", known.join(", "))
 }
 
 fn render_text(r: &StatusReport) -> String {
@@ -246,21 +263,25 @@ fn render_text(r: &StatusReport) -> String {
     );
     let _ = writeln!(
         out,
-        "schedule   \"{}\" {}; next run {}{}",
+        "schedule   \"{}\" {}: next tick {}{} (the config's schedule; `serve` runs on it, a timer or CronJob has its own)",
         r.schedule.cron,
         r.schedule.timezone,
         r.schedule.next_run_local.as_deref().unwrap_or("never"),
         if r.schedule.catch_up {
             ""
         } else {
-            " (no catch-up after downtime)"
+            ", no catch-up after downtime"
         }
     );
     match &r.lease {
         Some(l) => {
             let _ = writeln!(
                 out,
-                "lease      held by pid {} on {} (holder {}, since {}, last heartbeat {}){}",
+                "lease      held by {} pid {} on {} (holder {}, since {}, last heartbeat {}){}",
+                l.holder
+                    .command
+                    .as_deref()
+                    .map_or("a process,".to_string(), |c| format!("`{c}`,")),
                 l.holder.pid,
                 l.holder.host,
                 l.holder.holder,
@@ -275,7 +296,7 @@ fn render_text(r: &StatusReport) -> String {
         None => {
             let _ = writeln!(
                 out,
-                "lease      free (no serve, run-once or refit is running)"
+                "lease      free: no serve, run-once, refit or forecast is running now (under a timer or CronJob that is normal between runs)"
             );
         }
     }
@@ -289,7 +310,7 @@ fn render_text(r: &StatusReport) -> String {
                 let _ = writeln!(out, "  {}: no fit yet", s.name);
             }
             (published, Some(latest)) => {
-                let _ = writeln!(out, "  {}: latest attempt {}", s.name, fit_line(latest));
+                let _ = writeln!(out, "  {}: latest {}", s.name, fit_line(latest));
                 match published {
                     Some(p) if p.fit_id != latest.fit_id => {
                         let _ = writeln!(out, "  {}: serving {}", s.name, fit_line(p));
@@ -314,7 +335,10 @@ fn render_text(r: &StatusReport) -> String {
             out,
             "  run {} ({}) {} -> {} {}{}",
             run.run_id,
-            run.trigger,
+            match &run.command {
+                Some(c) if c != &run.trigger => format!("{} {c}", run.trigger),
+                _ => run.trigger.clone(),
+            },
             run.started_at,
             run.finished_at.as_deref().unwrap_or("…"),
             run.status,

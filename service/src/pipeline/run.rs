@@ -10,7 +10,7 @@ use super::{refit, RefitOptions, SeriesOutcome, SeriesReport};
 use crate::config::Config;
 use crate::ingest;
 use crate::progress::FitProgress;
-use crate::store::Store;
+use crate::store::{RunOrigin, Store};
 
 /// What a run did.
 #[derive(Debug, Clone, serde::Serialize)]
@@ -21,6 +21,8 @@ pub struct RunReport {
     pub files: Vec<String>,
     pub file_errors: Vec<String>,
     pub series: Vec<SeriesReport>,
+    /// The run's one-line summary, as recorded in `runs.message`.
+    pub message: String,
 }
 
 impl RunReport {
@@ -39,101 +41,196 @@ impl RunReport {
 pub async fn run_once(
     store: &Store,
     config: &Config,
-    trigger: &str,
+    origin: &RunOrigin,
     cancel: Arc<AtomicBool>,
 ) -> anyhow::Result<RunReport> {
-    run_once_with_progress(store, config, trigger, cancel, None).await
+    run_once_with_progress(store, config, origin, cancel, None).await
 }
 
 /// [`run_once`], drawing the fits' progress on a terminal.
 pub async fn run_once_with_progress(
     store: &Store,
     config: &Config,
-    trigger: &str,
+    origin: &RunOrigin,
     cancel: Arc<AtomicBool>,
     progress: Option<FitProgress>,
 ) -> anyhow::Result<RunReport> {
-    let run_id = store.start_run(trigger).await?;
-    let span = info_span!("run", run_id, trigger);
+    let run_id = store.start_run(origin).await?;
+    let span = info_span!("run", run_id, trigger = origin.trigger);
     async move {
-        let mut report = RunReport {
-            run_id,
-            status: "succeeded".into(),
-            files: Vec::new(),
-            file_errors: Vec::new(),
-            series: Vec::new(),
-        };
-        let inbox = &config.feed.inbox;
-        let files = if inbox.is_dir() {
-            ingest::inbox_files(inbox)?
-        } else {
-            report
-                .file_errors
-                .push(format!("inbox {} does not exist; run `tidemark init` or fix feed.inbox", inbox.display()));
-            Vec::new()
-        };
-        for file in &files {
-            if cancel.load(std::sync::atomic::Ordering::Relaxed) {
-                break;
-            }
-            match ingest::ingest_file(store, config, file).await {
-                Ok(r) => {
-                    info!("{r}");
-                    report.files.push(r.to_string());
-                }
-                Err(e) => {
-                    warn!("{e}");
-                    report.file_errors.push(e.to_string());
-                }
-            }
-        }
+        let mut report = RunReport::new(run_id);
+        ingest_inbox(store, config, &cancel, &mut report).await?;
         let opts = RefitOptions {
             run_id: Some(run_id),
             cancel: cancel.clone(),
             progress,
             ..RefitOptions::default()
         };
-        let outcome = refit(store, config, &opts).await;
-        let message = match outcome {
-            Ok(series) => {
-                for s in &series {
-                    store
-                        .record_run_series(run_id, &s.series, s.outcome.as_str(), s.fit_id, Some(&s.message))
-                        .await?;
-                }
-                report.series = series;
-                if report.has_problems() {
-                    report.status = "partial".into();
-                }
-                let counts = |o: SeriesOutcome| report.series.iter().filter(|s| s.outcome == o).count();
-                format!(
-                    "{} file(s) ingested, {} file error(s); series: {} published, {} rejected, {} failed, {} unchanged",
-                    report.files.len(),
-                    report.file_errors.len(),
-                    counts(SeriesOutcome::Published),
-                    counts(SeriesOutcome::Rejected),
-                    counts(SeriesOutcome::Failed),
-                    counts(SeriesOutcome::Unchanged)
-                )
-            }
-            Err(e) => {
-                report.status = "failed".into();
-                format!("{e:#}")
-            }
-        };
-        // A shutdown request (or a lost lease) stopped the run before every series was
-        // done: what was recorded is whole, the rest waits for the next run.
-        let cut_short = report.series.len() < config.series.len() || report.status == "failed";
-        let message = if cancel.load(std::sync::atomic::Ordering::Relaxed) && cut_short {
-            report.status = "abandoned".into();
-            format!("abandoned: stopped at a safe point by a shutdown request; {message}")
-        } else {
-            message
-        };
-        store.finish_run(run_id, &report.status, Some(&message)).await?;
-        info!(status = %report.status, "{message}");
+        refit_and_record(store, config, &opts, &mut report).await?;
+        finish(store, config, &cancel, &mut report).await?;
         Ok(report)
     }
     .instrument(span)
     .await
+}
+
+/// A manual `refit`: the same refit and records as in a run, without the ingest.
+pub async fn refit_run(
+    store: &Store,
+    config: &Config,
+    origin: &RunOrigin,
+    opts: RefitOptions,
+) -> anyhow::Result<RunReport> {
+    let run_id = store.start_run(origin).await?;
+    let span = info_span!("run", run_id, trigger = origin.trigger);
+    async move {
+        let mut report = RunReport::new(run_id);
+        let opts = RefitOptions {
+            run_id: Some(run_id),
+            ..opts
+        };
+        refit_and_record(store, config, &opts, &mut report).await?;
+        let selected = config.select_series(opts.series.as_deref())?.len();
+        finish_with(store, &opts.cancel, selected, &mut report).await?;
+        Ok(report)
+    }
+    .instrument(span)
+    .await
+}
+
+impl RunReport {
+    fn new(run_id: i64) -> RunReport {
+        RunReport {
+            run_id,
+            status: "succeeded".into(),
+            files: Vec::new(),
+            file_errors: Vec::new(),
+            series: Vec::new(),
+            message: String::new(),
+        }
+    }
+}
+
+/// Ingest every file waiting in the inbox, in name order, until `cancel` is raised.
+async fn ingest_inbox(
+    store: &Store,
+    config: &Config,
+    cancel: &AtomicBool,
+    report: &mut RunReport,
+) -> anyhow::Result<()> {
+    let inbox = &config.feed.inbox;
+    let files = if inbox.is_dir() {
+        ingest::inbox_files(inbox)?
+    } else {
+        report.file_errors.push(format!(
+            "inbox {} does not exist; run `tidemark init` or fix feed.inbox",
+            inbox.display()
+        ));
+        Vec::new()
+    };
+    for file in &files {
+        if cancel.load(std::sync::atomic::Ordering::Relaxed) {
+            break;
+        }
+        match ingest::ingest_file(store, config, file).await {
+            Ok(r) => {
+                info!("{r}");
+                report.files.push(r.to_string());
+            }
+            Err(e) => {
+                warn!("{e}");
+                report.file_errors.push(e.to_string());
+            }
+        }
+    }
+    Ok(())
+}
+
+/// Refit, and record each series' outcome with the run. A refit that fails as a whole
+/// marks the run `failed` with the reason.
+async fn refit_and_record(
+    store: &Store,
+    config: &Config,
+    opts: &RefitOptions,
+    report: &mut RunReport,
+) -> anyhow::Result<()> {
+    match refit(store, config, opts).await {
+        Ok(series) => {
+            if let Some(run_id) = opts.run_id {
+                for s in &series {
+                    store
+                        .record_run_series(
+                            run_id,
+                            &s.series,
+                            s.outcome.as_str(),
+                            s.fit_id,
+                            Some(&s.message),
+                        )
+                        .await?;
+                }
+            }
+            report.series = series;
+            if report.has_problems() {
+                report.status = "partial".into();
+            }
+            let counts = |o: SeriesOutcome| report.series.iter().filter(|s| s.outcome == o).count();
+            report.message = format!(
+                "series: {} published, {} rejected, {} failed, {} unchanged",
+                counts(SeriesOutcome::Published),
+                counts(SeriesOutcome::Rejected),
+                counts(SeriesOutcome::Failed),
+                counts(SeriesOutcome::Unchanged)
+            );
+        }
+        Err(e) => {
+            report.status = "failed".into();
+            report.message = format!("{e:#}");
+        }
+    }
+    Ok(())
+}
+
+/// Close the run record of a whole run (files, then every configured series).
+async fn finish(
+    store: &Store,
+    config: &Config,
+    cancel: &AtomicBool,
+    report: &mut RunReport,
+) -> anyhow::Result<()> {
+    if report.status != "failed" {
+        report.message = format!(
+            "{} file(s) ingested, {} file error(s); {}",
+            report.files.len(),
+            report.file_errors.len(),
+            report.message
+        );
+    }
+    if !report.file_errors.is_empty() && report.status == "succeeded" {
+        report.status = "partial".into();
+    }
+    finish_with(store, cancel, config.series.len(), report).await
+}
+
+/// Close the run record. A shutdown request (or a lost lease) that stopped the run
+/// before its `expected` series were done makes it `abandoned`: what was recorded is
+/// whole, the rest waits for the next run.
+async fn finish_with(
+    store: &Store,
+    cancel: &AtomicBool,
+    expected: usize,
+    report: &mut RunReport,
+) -> anyhow::Result<()> {
+    let cut_short = report.series.len() < expected || report.status == "failed";
+    if cancel.load(std::sync::atomic::Ordering::Relaxed) && cut_short {
+        report.status = "abandoned".into();
+        report.message = format!(
+            "abandoned: stopped at a safe point by a shutdown request; {}",
+            report.message
+        );
+    }
+    store
+        .finish_run(report.run_id, &report.status, Some(&report.message))
+        .await?;
+    info!(status = %report.status, "{}", report.message);
+    Ok(())
 }

@@ -96,6 +96,15 @@ async fn insert_summaries(
     Ok(())
 }
 
+/// Who makes a run: its trigger (`schedule`, `catch-up`, `manual`, `demo`), the command
+/// of the process, and that process's lease holder id when it holds the lease.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct RunOrigin {
+    pub trigger: &'static str,
+    pub command: &'static str,
+    pub holder: Option<String>,
+}
+
 /// A covariate value a forecast scenario holds fixed (original units).
 #[derive(Debug, Clone, PartialEq)]
 pub struct ScenarioValue {
@@ -317,12 +326,15 @@ impl Store {
     }
 
     /// Open a run record; returns its id.
-    pub async fn start_run(&self, trigger: &str) -> Result<i64, StoreError> {
+    pub async fn start_run(&self, origin: &RunOrigin) -> Result<i64, StoreError> {
         sqlx::query_scalar(
-            "INSERT INTO runs (trigger, started_at, status) VALUES (?1, ?2, 'running') RETURNING run_id",
+            "INSERT INTO runs (trigger, started_at, status, command, holder)
+             VALUES (?1, ?2, 'running', ?3, ?4) RETURNING run_id",
         )
-        .bind(trigger)
+        .bind(origin.trigger)
         .bind(now_utc())
+        .bind(origin.command)
+        .bind(&origin.holder)
         .fetch_one(&self.pool)
         .await
         .map_err(|e| self.sql(e))

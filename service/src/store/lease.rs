@@ -22,6 +22,9 @@ pub struct LeaseHolder {
     pub host: String,
     pub acquired_at: String,
     pub heartbeat_at: String,
+    /// The command holding it (`serve`, `run-once`, `refit`, `forecast`); null when the
+    /// holder was a release that did not record it.
+    pub command: Option<String>,
 }
 
 /// The identity a process claims the lease with.
@@ -31,6 +34,8 @@ pub struct LeaseClaim {
     pub holder: String,
     pub pid: i64,
     pub host: String,
+    /// The command of this process.
+    pub command: &'static str,
 }
 
 /// What a claim came to.
@@ -53,12 +58,13 @@ fn holder_from_row(r: &SqliteRow) -> Result<LeaseHolder, sqlx::Error> {
         host: r.try_get("host")?,
         acquired_at: r.try_get("acquired_at")?,
         heartbeat_at: r.try_get("heartbeat_at")?,
+        command: r.try_get("command")?,
     })
 }
 
 async fn current(tx: &mut Transaction<'_, Sqlite>) -> Result<Option<LeaseHolder>, sqlx::Error> {
     let row = sqlx::query(
-        "SELECT holder, pid, host, acquired_at, heartbeat_at FROM instance_lease WHERE lease_id = 1",
+        "SELECT holder, pid, host, acquired_at, heartbeat_at, command FROM instance_lease WHERE lease_id = 1",
     )
     .fetch_optional(&mut **tx)
     .await?;
@@ -116,13 +122,14 @@ impl Store {
             };
             let now = now_utc();
             sqlx::query(
-                "INSERT OR REPLACE INTO instance_lease (lease_id, holder, pid, host, acquired_at, heartbeat_at)
-                 VALUES (1, ?1, ?2, ?3, ?4, ?4)",
+                "INSERT OR REPLACE INTO instance_lease (lease_id, holder, pid, host, acquired_at, heartbeat_at, command)
+                 VALUES (1, ?1, ?2, ?3, ?4, ?4, ?5)",
             )
             .bind(&claim.holder)
             .bind(claim.pid)
             .bind(&claim.host)
             .bind(&now)
+            .bind(claim.command)
             .execute(&mut *tx)
             .await?;
             match &taken_over {
@@ -190,7 +197,7 @@ impl Store {
     /// The current holder, if any.
     pub async fn lease_holder(&self) -> Result<Option<LeaseHolder>, StoreError> {
         let row = sqlx::query(
-            "SELECT holder, pid, host, acquired_at, heartbeat_at FROM instance_lease WHERE lease_id = 1",
+            "SELECT holder, pid, host, acquired_at, heartbeat_at, command FROM instance_lease WHERE lease_id = 1",
         )
         .fetch_optional(&self.pool)
         .await

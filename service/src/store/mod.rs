@@ -27,7 +27,9 @@ use sqlx::sqlite::{
 use sqlx::Row;
 
 pub use drift::ComponentRow;
-pub use fits::{ForecastSet, NewExclusion, NewFit, PublishedFit, RecordedFit, ScenarioValue};
+pub use fits::{
+    ForecastSet, NewExclusion, NewFit, PublishedFit, RecordedFit, RunOrigin, ScenarioValue,
+};
 pub use ingest::{
     BatchContent, BatchFile, BatchOutcome, BatchRecord, BatchValues, Cell, NewRejection, NewValue,
 };

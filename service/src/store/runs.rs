@@ -7,17 +7,19 @@ impl Store {
     /// Record a tick that did no work (status `skipped`), with the reason.
     pub async fn record_skipped_run(
         &self,
-        trigger: &str,
+        origin: &super::RunOrigin,
         message: &str,
     ) -> Result<i64, StoreError> {
         let now = now_utc();
         sqlx::query_scalar(
-            "INSERT INTO runs (trigger, started_at, finished_at, status, message)
-             VALUES (?1, ?2, ?2, 'skipped', ?3) RETURNING run_id",
+            "INSERT INTO runs (trigger, started_at, finished_at, status, message, command, holder)
+             VALUES (?1, ?2, ?2, 'skipped', ?3, ?4, ?5) RETURNING run_id",
         )
-        .bind(trigger)
+        .bind(origin.trigger)
         .bind(&now)
         .bind(message)
+        .bind(origin.command)
+        .bind(&origin.holder)
         .fetch_one(&self.pool)
         .await
         .map_err(|e| self.sql(e))

@@ -6,10 +6,12 @@ use sqlx::Row;
 
 use super::{Store, StoreError};
 
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, sqlx::FromRow)]
 pub struct RunSummary {
     pub run_id: i64,
     pub trigger: String,
+    /// The command that made the run; null for runs recorded before schema version 3.
+    pub command: Option<String>,
     pub started_at: String,
     pub finished_at: Option<String>,
     pub status: String,
@@ -86,27 +88,14 @@ fn fit_from_row(r: &SqliteRow) -> Result<FitSummary, sqlx::Error> {
 impl Store {
     /// The `limit` most recent runs, newest first.
     pub async fn recent_runs(&self, limit: u32) -> Result<Vec<RunSummary>, StoreError> {
-        let rows = sqlx::query(
-            "SELECT run_id, trigger, started_at, finished_at, status, message
+        sqlx::query_as(
+            "SELECT run_id, trigger, command, started_at, finished_at, status, message
              FROM runs ORDER BY run_id DESC LIMIT ?1",
         )
         .bind(limit)
         .fetch_all(&self.pool)
         .await
-        .map_err(|e| self.sql(e))?;
-        rows.iter()
-            .map(|r| {
-                Ok(RunSummary {
-                    run_id: r.try_get("run_id")?,
-                    trigger: r.try_get("trigger")?,
-                    started_at: r.try_get("started_at")?,
-                    finished_at: r.try_get("finished_at")?,
-                    status: r.try_get("status")?,
-                    message: r.try_get("message")?,
-                })
-            })
-            .collect::<Result<_, sqlx::Error>>()
-            .map_err(|e| self.sql(e))
+        .map_err(|e| self.sql(e))
     }
 
     /// The `limit` most recent ingest batches, newest first.
