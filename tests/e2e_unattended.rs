@@ -375,7 +375,7 @@ fn a_missed_tick_gets_one_catch_up_run_at_start() {
         1
     );
     let status = net.ok(&["status"]);
-    assert!(status.contains("(no catch-up after downtime)"), "{status}");
+    assert!(status.contains(", no catch-up after downtime"), "{status}");
 }
 
 #[test]
@@ -386,7 +386,7 @@ fn a_stale_lease_is_taken_over_and_recorded() {
     let dead = dead_pid();
     // A holder that died mid-run on this host, leaving its run 'running'.
     net.sqlite3(&format!(
-        "INSERT INTO instance_lease VALUES (1, 'deadbeef', {dead}, '{host}', '2026-01-01T00:00:00Z', strftime('%Y-%m-%dT%H:%M:%SZ', 'now'));
+        "INSERT INTO instance_lease (lease_id, holder, pid, host, acquired_at, heartbeat_at) VALUES (1, 'deadbeef', {dead}, '{host}', '2026-01-01T00:00:00Z', strftime('%Y-%m-%dT%H:%M:%SZ', 'now'));
          INSERT INTO runs (trigger, started_at, status) VALUES ('schedule', '2026-01-01T00:00:00Z', 'running');"
     ));
     let status = net.ok(&["status"]);
@@ -418,7 +418,7 @@ fn a_stale_lease_is_taken_over_and_recorded() {
 
     // A holder on another host is judged by its heartbeat alone.
     net.sqlite3(
-        "INSERT INTO instance_lease VALUES (1, 'faraway', 1, 'other-host', '2026-01-01T00:00:00Z', strftime('%Y-%m-%dT%H:%M:%SZ', 'now'))",
+        "INSERT INTO instance_lease (lease_id, holder, pid, host, acquired_at, heartbeat_at) VALUES (1, 'faraway', 1, 'other-host', '2026-01-01T00:00:00Z', strftime('%Y-%m-%dT%H:%M:%SZ', 'now'))",
     );
     let out = net.tidemark(&["refit"]);
     let err = String::from_utf8_lossy(&out.stderr);
