@@ -28,9 +28,7 @@ use sqlx::Row;
 
 pub use drift::ComponentRow;
 pub use fits::{ForecastSet, NewExclusion, NewFit, PublishedFit, RecordedFit, ScenarioValue};
-pub use ingest::{
-    BatchContent, BatchFile, BatchOutcome, BatchRecord, BatchValues, Cell, NewRejection, NewValue,
-};
+pub use ingest::{BatchFile, BatchOutcome, BatchRecord};
 pub use lease::{LeaseAttempt, LeaseClaim, LeaseHolder};
 pub use report::{ForecastInterval, RunHistoryEntry, RunSeriesOutcome, SiteEffect};
 pub use series::SeriesRow;

@@ -14,8 +14,8 @@ use arrow_array::types::{
 use arrow_array::{Array, RecordBatch};
 use arrow_schema::DataType;
 
-use super::collect::{Collector, RawCell};
-use super::{FileLayout, Unreadable};
+use crate::collect::{Collector, RawCell};
+use crate::layout::{FileLayout, Unreadable};
 
 /// First bytes of an Arrow IPC file.
 pub const FILE_MAGIC: &[u8] = b"ARROW1";
