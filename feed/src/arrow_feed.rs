@@ -43,8 +43,8 @@ pub fn read(bytes: &[u8], layout: &FileLayout) -> Result<Collector, Unreadable> 
     })
 }
 
-/// Keep the panics that [`read`] catches off stderr: install once at start-up. Other
-/// panics still reach the previous hook.
+/// Keep the panics that [`crate::parse_bytes`] catches while decoding Arrow data off
+/// stderr: install once at start-up. Other panics still reach the previous hook.
 pub fn quiet_caught_panics() {
     let previous = std::panic::take_hook();
     std::panic::set_hook(Box::new(move |info| {
