@@ -418,14 +418,13 @@ fn values_a_log_fit_cannot_use_are_kept_and_excluded_at_fit() {
 #[ignore = "long: run on request"]
 fn random_mutations_of_the_corpus_never_panic() {
     use rand::{Rng, SeedableRng};
+    use tidemark_feed::{parse_bytes, BatchContent};
     use tidemark_service::config::Config;
-    use tidemark_service::ingest::{parse_bytes, FileLayout};
-    use tidemark_service::store::BatchContent;
 
     let config_text =
         std::fs::read_to_string(corpus_dir().join("tidemark.toml")).expect("corpus config");
     let config = Config::parse(&config_text, "tidemark.toml", &corpus_dir()).expect("config");
-    let layout = FileLayout::from_config(&config);
+    let layout = config.file_layout();
     let seeds: Vec<Vec<u8>> = manifest()
         .case
         .iter()
@@ -437,8 +436,8 @@ fn random_mutations_of_the_corpus_never_panic() {
         .ok()
         .and_then(|v| v.parse().ok())
         .unwrap_or(20_000);
-    // The Arrow reader's caught panics (see ingest/arrow_feed.rs) would flood the output.
-    tidemark_service::ingest::quiet_caught_panics();
+    // The Arrow reader's caught panics (see feed/src/arrow_feed.rs) would flood the output.
+    tidemark_feed::quiet_caught_panics();
     // Each input is written here before it is parsed: after a panic, the file holds it.
     let dump = std::env::var_os("TIDEMARK_FUZZ_DUMP");
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(2024);

@@ -5,9 +5,7 @@
 use std::collections::BTreeSet;
 
 use libfuzzer_sys::fuzz_target;
-use tidemark_service::config::KeyColumns;
-use tidemark_service::ingest::{parse_bytes, FileLayout};
-use tidemark_service::store::BatchContent;
+use tidemark_feed::{parse_bytes, BatchContent, FileLayout, KeyColumns};
 
 fuzz_target!(|bytes: &[u8]| {
     // The key columns of tests/corpus/tidemark.toml, with `crew` as a group label.

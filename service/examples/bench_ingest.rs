@@ -9,9 +9,10 @@
 use std::fmt::Write as _;
 use std::time::Instant;
 
+use tidemark_feed::BatchContent;
 use tidemark_service::config::Config;
 use tidemark_service::ingest;
-use tidemark_service::store::{BatchContent, Store};
+use tidemark_service::store::Store;
 
 const COLUMNS: [&str; 5] = [
     "chl_ug_l",
@@ -71,9 +72,9 @@ async fn main() -> anyhow::Result<()> {
         first.len() as f64 / 1e6
     );
 
-    let layout = ingest::FileLayout::from_config(&config);
+    let layout = config.file_layout();
     let t = Instant::now();
-    let (_, content) = ingest::parse_bytes(first.as_bytes(), &layout);
+    let (_, content) = tidemark_feed::parse_bytes(first.as_bytes(), &layout);
     let parse_s = t.elapsed().as_secs_f64();
     if let BatchContent::Parsed { values, .. } = &content {
         println!(

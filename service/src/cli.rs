@@ -124,7 +124,7 @@ pub enum Command {
 /// Parse the process arguments, run the command, and turn the result into an exit code:
 /// 0 on success; 1 with a one-line reason on stderr on failure; 2 for a usage error.
 pub fn run() -> ExitCode {
-    crate::ingest::quiet_caught_panics();
+    tidemark_feed::quiet_caught_panics();
     let cli = match Cli::try_parse() {
         Ok(cli) => cli,
         Err(e) => {

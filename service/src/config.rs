@@ -65,13 +65,7 @@ pub struct FeedDirs {
     pub quarantine: PathBuf,
 }
 
-/// Names of the columns that identify a visit in feed files.
-#[derive(Debug, Clone, PartialEq, Eq)]
-pub struct KeyColumns {
-    pub site: String,
-    pub year: String,
-    pub visit: Option<String>,
-}
+pub use tidemark_feed::KeyColumns;
 
 /// One modelled indicator.
 #[derive(Debug, Clone, Serialize)]
@@ -551,6 +545,14 @@ impl Config {
             .iter()
             .flat_map(|s| s.groups.iter().cloned())
             .collect()
+    }
+
+    /// How feed files are read under this config: its key columns and label columns.
+    pub fn file_layout(&self) -> tidemark_feed::FileLayout {
+        tidemark_feed::FileLayout {
+            keys: self.keys.clone(),
+            labels: self.label_columns(),
+        }
     }
 
     pub fn series(&self, name: &str) -> Option<&SeriesConfig> {

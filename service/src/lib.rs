@@ -4,7 +4,7 @@
 //! date: it ingests feed files into a SQLite store with full history, and (in the pipeline
 //! built on this store) refits each series and publishes forecasts. This crate holds the
 //! plumbing: configuration, feed ingest, the store, the schedule, logging and the command
-//! line. The statistics live in `tidemark-model`.
+//! line. The statistics live in `tidemark-model`, the feed file readers in `tidemark-feed`.
 //!
 //! ```no_run
 //! # async fn demo() -> anyhow::Result<()> {

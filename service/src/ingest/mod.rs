@@ -1,7 +1,7 @@
 //! Feed ingest: from a file in the inbox to a committed batch, then to the archive (or the
 //! quarantine).
 //!
-//! A file is read whole, hashed (SHA-256), parsed by the reader for its format (CSV or
+//! A file is read whole, hashed (SHA-256), parsed by `tidemark_feed::parse_bytes` (CSV or
 //! Arrow IPC, told apart by the first bytes), and handed to the store as one batch. Only
 //! after that transaction commits does the file leave the inbox, so a crash at any point
 //! leaves it either waiting (and a re-run finds it is a duplicate, or ingests it) or
@@ -10,27 +10,15 @@
 //! Invariant: a file leaves the inbox only after its batch commits (checked by
 //! `tests/e2e_ingest.rs::failed_batch_leaves_nothing`).
 
-mod arrow_feed;
-mod collect;
-mod csv_feed;
-
-use std::collections::BTreeSet;
 use std::fmt;
 use std::path::{Path, PathBuf};
 
 use sha2::{Digest, Sha256};
+use tidemark_feed::{count_by_kind, parse_bytes, BatchContent, RejectionKind};
 use tracing::{info, info_span, warn};
 
-use crate::config::{Config, KeyColumns};
-use crate::store::{BatchContent, BatchFile, BatchOutcome, Store, StoreError};
-
-pub use arrow_feed::quiet_caught_panics;
-pub use collect::{parse_number, parse_year, DEFAULT_VISIT, YEARS};
-use collect::{ColumnKind, Measure};
-
-/// Why a file could not be read at all (it goes to quarantine with this reason).
-#[derive(Debug, Clone, PartialEq, Eq)]
-pub struct Unreadable(pub String);
+use crate::config::Config;
+use crate::store::{BatchFile, BatchOutcome, Store, StoreError};
 
 /// An ingest failure that is not the file's fault.
 #[derive(Debug, thiserror::Error)]
@@ -58,114 +46,6 @@ pub enum IngestError {
     Store(#[from] StoreError),
 }
 
-/// How columns of a feed file are understood: the key columns, and which columns hold
-/// labels rather than numbers.
-#[derive(Debug, Clone)]
-pub struct FileLayout {
-    pub keys: KeyColumns,
-    pub labels: BTreeSet<String>,
-}
-
-/// Where the key and measurement columns sit in one file.
-#[derive(Debug, Clone)]
-pub(crate) struct Plan {
-    pub site_at: usize,
-    pub year_at: usize,
-    pub visit_at: Option<usize>,
-    pub measure_at: Vec<usize>,
-    pub measures: Vec<Measure>,
-}
-
-impl FileLayout {
-    pub fn from_config(config: &Config) -> FileLayout {
-        FileLayout {
-            keys: config.keys.clone(),
-            labels: config.label_columns(),
-        }
-    }
-
-    pub(crate) fn plan(&self, header: &[String]) -> Result<Plan, Unreadable> {
-        let mut seen = BTreeSet::new();
-        for (i, h) in header.iter().enumerate() {
-            if h.is_empty() {
-                return Err(Unreadable(format!(
-                    "column {} of the header has no name",
-                    i + 1
-                )));
-            }
-            if !seen.insert(h.as_str()) {
-                return Err(Unreadable(format!(
-                    "column `{h}` appears twice in the header"
-                )));
-            }
-        }
-        let find = |name: &str| header.iter().position(|h| h == name);
-        let site_at = find(&self.keys.site).ok_or_else(|| {
-            Unreadable(format!(
-                "no site column `{}` in the header (columns: {})",
-                self.keys.site,
-                header.join(", ")
-            ))
-        })?;
-        let year_at = find(&self.keys.year).ok_or_else(|| {
-            Unreadable(format!(
-                "no year column `{}` in the header (columns: {})",
-                self.keys.year,
-                header.join(", ")
-            ))
-        })?;
-        let visit_at = self.keys.visit.as_deref().and_then(find);
-        let mut measure_at = Vec::new();
-        let mut measures = Vec::new();
-        for (i, h) in header.iter().enumerate() {
-            if i == site_at || i == year_at || Some(i) == visit_at {
-                continue;
-            }
-            measure_at.push(i);
-            measures.push(Measure {
-                name: h.clone(),
-                kind: if self.labels.contains(h) {
-                    ColumnKind::Label
-                } else {
-                    ColumnKind::Numeric
-                },
-            });
-        }
-        Ok(Plan {
-            site_at,
-            year_at,
-            visit_at,
-            measure_at,
-            measures,
-        })
-    }
-}
-
-/// Parse a file's bytes into a batch (or the reason it is unreadable) and its format name.
-pub fn parse_bytes(bytes: &[u8], layout: &FileLayout) -> (Option<&'static str>, BatchContent) {
-    let (format, parsed) = if bytes.starts_with(arrow_feed::FILE_MAGIC) {
-        (Some("arrow-file"), arrow_feed::read(bytes, layout))
-    } else if bytes.starts_with(arrow_feed::STREAM_MAGIC) {
-        (Some("arrow-stream"), arrow_feed::read(bytes, layout))
-    } else if bytes.is_empty() {
-        (None, Err(Unreadable("the file is empty".into())))
-    } else {
-        (Some("csv"), csv_feed::read(bytes, layout))
-    };
-    let content = match parsed {
-        Ok(collector) => {
-            let (rows_read, values, rejections) = collector.finish();
-            BatchContent::Parsed {
-                rows_read,
-                values,
-                rejections,
-            }
-        }
-        Err(Unreadable(reason)) => BatchContent::Unreadable { reason },
-    };
-    (format, content)
-}
-
 /// What happened to one file.
 #[derive(Debug, Clone)]
 pub struct FileReport {
@@ -173,7 +53,12 @@ pub struct FileReport {
     pub outcome: BatchOutcome,
     /// Where the file (or, for a file named outside the inbox, its copy) now is.
     pub stored_at: PathBuf,
+    /// The file's rejections counted by kind, the most frequent first.
+    pub rejected_by: Vec<(RejectionKind, u64)>,
 }
+
+/// Kinds of rejection named on a file's line; the rest are summed as "other".
+const KINDS_SHOWN: usize = 3;
 
 impl fmt::Display for FileReport {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
@@ -189,7 +74,8 @@ impl fmt::Display for FileReport {
             } => write!(
                 f,
                 "{name}: ingested as batch {batch_id}: {rows_read} rows, {values_accepted} values accepted ({values_superseding} superseding, {values_unchanged} unchanged), {values_rejected} rejected"
-            ),
+            )
+            .and_then(|()| write_kinds(f, &self.rejected_by)),
             BatchOutcome::Duplicate {
                 batch_id,
                 duplicate_of,
@@ -203,6 +89,25 @@ impl fmt::Display for FileReport {
             ),
         }
     }
+}
+
+/// ` (8 not a number, 4 year outside 1800–2200, 1 other)`, or nothing without rejections.
+fn write_kinds(f: &mut fmt::Formatter<'_>, counts: &[(RejectionKind, u64)]) -> fmt::Result {
+    if counts.is_empty() {
+        return Ok(());
+    }
+    f.write_str(" (")?;
+    for (i, (kind, n)) in counts.iter().take(KINDS_SHOWN).enumerate() {
+        if i > 0 {
+            f.write_str(", ")?;
+        }
+        write!(f, "{n} {kind}")?;
+    }
+    let other: u64 = counts.iter().skip(KINDS_SHOWN).map(|(_, n)| n).sum();
+    if other > 0 {
+        write!(f, ", {other} other")?;
+    }
+    f.write_str(")")
 }
 
 /// Files waiting in the inbox, sorted by name. Names starting with `.` or ending in
@@ -259,7 +164,11 @@ pub async fn ingest_file(
     {
         (None, BatchContent::KnownDuplicate)
     } else {
-        parse_bytes(&bytes, &FileLayout::from_config(config))
+        parse_bytes(&bytes, &config.file_layout())
+    };
+    let rejected_by = match &content {
+        BatchContent::Parsed { rejections, .. } => count_by_kind(rejections),
+        _ => Vec::new(),
     };
     let file = BatchFile {
         source,
@@ -291,6 +200,10 @@ pub async fn ingest_file(
         })?;
     Ok(FileReport {
         path: path.to_path_buf(),
+        rejected_by: match outcome {
+            BatchOutcome::Ingested { .. } => rejected_by,
+            _ => Vec::new(),
+        },
         outcome,
         stored_at,
     })

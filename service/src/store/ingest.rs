@@ -15,6 +15,7 @@
 use serde::Serialize;
 use sqlx::sqlite::SqliteConnection;
 use sqlx::Row;
+use tidemark_feed::{BatchContent, BatchValues, Cell, NewValue};
 use tracing::debug;
 
 use super::{now_utc, Store, StoreError};
@@ -33,58 +34,6 @@ pub struct BatchFile {
     pub size_bytes: u64,
     /// `csv`, `arrow-file`, `arrow-stream`, or `None` when it could not be told.
     pub format: Option<&'static str>,
-}
-
-/// A value's content: a number, or an index into [`BatchValues::labels`].
-#[derive(Debug, Clone, Copy, PartialEq)]
-pub enum Cell {
-    Num(f64),
-    Label(u32),
-}
-
-/// One accepted value. Site, visit and column are indices into the tables of
-/// [`BatchValues`], so a million values do not carry a million strings.
-#[derive(Debug, Clone, Copy, PartialEq)]
-pub struct NewValue {
-    pub site: u32,
-    pub year: i32,
-    pub visit: u32,
-    pub column: u32,
-    pub cell: Cell,
-    pub line: u64,
-}
-
-/// The accepted values of one file, at most one per (site, year, visit, column).
-#[derive(Debug, Default, Clone)]
-pub struct BatchValues {
-    pub sites: Vec<String>,
-    pub visits: Vec<String>,
-    pub columns: Vec<String>,
-    pub labels: Vec<String>,
-    pub values: Vec<NewValue>,
-}
-
-/// One rejected value (or row) and why.
-#[derive(Debug, Clone, PartialEq, Eq)]
-pub struct NewRejection {
-    pub line: Option<u64>,
-    pub column: Option<String>,
-    pub raw: Option<String>,
-    pub reason: String,
-}
-
-/// What was made of a file.
-#[derive(Debug, Clone)]
-pub enum BatchContent {
-    Parsed {
-        rows_read: u64,
-        values: BatchValues,
-        rejections: Vec<NewRejection>,
-    },
-    /// The file could not be read at all; it goes to quarantine.
-    Unreadable { reason: String },
-    /// The caller found an ingested batch with the same hash and did not parse the file.
-    KnownDuplicate,
 }
 
 /// What [`Store::ingest_batch`] did.

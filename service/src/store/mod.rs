@@ -30,9 +30,7 @@ pub use drift::ComponentRow;
 pub use fits::{
     ForecastSet, NewExclusion, NewFit, PublishedFit, RecordedFit, RunOrigin, ScenarioValue,
 };
-pub use ingest::{
-    BatchContent, BatchFile, BatchOutcome, BatchRecord, BatchValues, Cell, NewRejection, NewValue,
-};
+pub use ingest::{BatchFile, BatchOutcome, BatchRecord};
 pub use lease::{LeaseAttempt, LeaseClaim, LeaseHolder};
 pub use report::{ForecastInterval, RunHistoryEntry, RunSeriesOutcome, SiteEffect};
 pub use series::SeriesRow;

@@ -1,8 +1,9 @@
 //! Reading a CSV feed file (UTF-8, header row, comma; a UTF-8 byte-order mark and CRLF
 //! line ends are tolerated) into a [`Collector`].
 
-use super::collect::{Collector, RawCell};
-use super::{FileLayout, Plan, Unreadable};
+use crate::batch::RejectionKind;
+use crate::collect::{Collector, RawCell};
+use crate::layout::{FileLayout, Plan, Unreadable};
 
 const BOM: &[u8] = b"\xEF\xBB\xBF";
 
@@ -85,6 +86,7 @@ pub fn read(bytes: &[u8], layout: &FileLayout) -> Result<Collector, Unreadable> 
             collector.reject_row(
                 last_line,
                 named,
+                RejectionKind::CutShort,
                 "the file ends inside a quoted field: it looks cut short; the row's values are not used (send the complete file again)",
             );
         } else {
@@ -149,7 +151,7 @@ fn take_row(
             .iter()
             .enumerate()
             .map(|(i, f)| (header.get(i).map(String::as_str), RawCell::Text(f)));
-        collector.reject_row(line, named, &reason);
+        collector.reject_row(line, named, RejectionKind::FieldCount, &reason);
         return;
     }
     let text = |i: usize| RawCell::Text(record.get(i).unwrap_or(""));

@@ -14,8 +14,8 @@ use arrow_array::types::{
 use arrow_array::{Array, RecordBatch};
 use arrow_schema::DataType;
 
-use super::collect::{Collector, RawCell};
-use super::{FileLayout, Unreadable};
+use crate::collect::{Collector, RawCell};
+use crate::layout::{FileLayout, Unreadable};
 
 /// First bytes of an Arrow IPC file.
 pub const FILE_MAGIC: &[u8] = b"ARROW1";
@@ -43,8 +43,8 @@ pub fn read(bytes: &[u8], layout: &FileLayout) -> Result<Collector, Unreadable> 
     })
 }
 
-/// Keep the panics that [`read`] catches off stderr: install once at start-up. Other
-/// panics still reach the previous hook.
+/// Keep the panics that [`crate::parse_bytes`] catches while decoding Arrow data off
+/// stderr: install once at start-up. Other panics still reach the previous hook.
 pub fn quiet_caught_panics() {
     let previous = std::panic::take_hook();
     std::panic::set_hook(Box::new(move |info| {

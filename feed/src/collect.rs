@@ -3,13 +3,29 @@
 
 use std::collections::HashMap;
 
-use crate::store::{BatchValues, Cell, NewRejection, NewValue};
+use crate::batch::{BatchValues, Cell, NewRejection, NewValue, RejectionKind};
 
 /// Visit label stored when a file has no visit column, or an empty visit cell.
 pub const DEFAULT_VISIT: &str = "1";
 
 /// Years outside this range are taken as typing errors.
 pub const YEARS: std::ops::RangeInclusive<i64> = 1800..=2200;
+
+/// Why one cell cannot be used: its kind, and the reason stored with its rejection.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct CellError {
+    pub kind: RejectionKind,
+    pub reason: String,
+}
+
+impl CellError {
+    fn new(kind: RejectionKind, reason: impl Into<String>) -> CellError {
+        CellError {
+            kind,
+            reason: reason.into(),
+        }
+    }
+}
 
 /// One cell as a reader found it.
 #[derive(Debug, Clone, Copy)]
@@ -113,6 +129,7 @@ impl Collector {
         &mut self,
         line: u64,
         cells: impl IntoIterator<Item = (Option<&'a str>, RawCell<'a>)>,
+        kind: RejectionKind,
         reason: &str,
     ) {
         self.rows_read += 1;
@@ -123,6 +140,7 @@ impl Collector {
                     line: Some(line),
                     column: col.map(str::to_string),
                     raw: cell.raw(),
+                    kind,
                     reason: reason.to_string(),
                 });
             }
@@ -132,6 +150,7 @@ impl Collector {
                 line: Some(line),
                 column: None,
                 raw: None,
+                kind,
                 reason: reason.to_string(),
             });
         }
@@ -159,18 +178,27 @@ impl Collector {
             _ => None,
         };
         let Some(site_code) = site_code else {
-            let reason = match site {
-                RawCell::Unsupported(ty) => format!(
-                    "site column `{}` holds a {ty}; expected text or an integer",
-                    self.site_col
+            let (kind, reason) = match site {
+                RawCell::Unsupported(ty) => (
+                    RejectionKind::SiteNotTextOrInteger,
+                    format!(
+                        "site column `{}` holds a {ty}; expected text or an integer",
+                        self.site_col
+                    ),
                 ),
-                RawCell::Float(_) => format!(
-                    "site column `{}` holds a floating-point number; expected text or an integer",
-                    self.site_col
+                RawCell::Float(_) => (
+                    RejectionKind::SiteNotTextOrInteger,
+                    format!(
+                        "site column `{}` holds a floating-point number; expected text or an integer",
+                        self.site_col
+                    ),
                 ),
-                _ => format!("row has no site (column `{}` is empty)", self.site_col),
+                _ => (
+                    RejectionKind::NoSite,
+                    format!("row has no site (column `{}` is empty)", self.site_col),
+                ),
             };
-            self.reject_row(line, named(), &reason);
+            self.reject_row(line, named(), kind, &reason);
             self.measures = measures;
             return;
         };
@@ -178,10 +206,10 @@ impl Collector {
             Ok(y) => y,
             Err(why) => {
                 let reason = format!(
-                    "{why} (column `{}`); the row's values are not used",
-                    self.year_col
+                    "{} (column `{}`); the row's values are not used",
+                    why.reason, self.year_col
                 );
-                self.reject_row(line, named(), &reason);
+                self.reject_row(line, named(), why.kind, &reason);
                 self.measures = measures;
                 return;
             }
@@ -217,18 +245,22 @@ impl Collector {
                         &mut self.values.labels,
                         &x.to_string(),
                     ))),
-                    RawCell::Unsupported(ty) => Err(format!("a {ty} cannot be a group label")),
+                    RawCell::Unsupported(ty) => Err(CellError::new(
+                        RejectionKind::NotALabel,
+                        format!("a {ty} cannot be a group label"),
+                    )),
                     RawCell::Empty => continue,
                 },
             };
             let cell_value = match parsed {
                 Ok(c) => c,
-                Err(reason) => {
+                Err(why) => {
                     self.rejections.push(NewRejection {
                         line: Some(line),
                         column: Some(m.name.clone()),
                         raw: cell.raw(),
-                        reason,
+                        kind: why.kind,
+                        reason: why.reason,
                     });
                     continue;
                 }
@@ -298,6 +330,7 @@ impl Collector {
                         line: Some(line),
                         column: Some(column.clone()),
                         raw,
+                        kind: RejectionKind::Conflict,
                         reason: reason.clone(),
                     });
                 }
@@ -318,39 +351,52 @@ fn same_cell(a: Cell, b: Cell) -> bool {
 }
 
 /// A measurement value: finite, within f64.
-pub fn parse_number(cell: RawCell<'_>) -> Result<f64, String> {
+pub fn parse_number(cell: RawCell<'_>) -> Result<f64, CellError> {
+    use RejectionKind::*;
+    let nan = || {
+        CellError::new(
+            NaN,
+            "NaN is not a value; leave the cell empty for a missing value",
+        )
+    };
+    let infinite = || CellError::new(Infinite, "infinite values are not accepted");
     match cell {
-        RawCell::Float(x) if x.is_nan() => {
-            Err("NaN is not a value; leave the cell empty for a missing value".into())
-        }
-        RawCell::Float(x) if x.is_infinite() => Err("infinite values are not accepted".into()),
+        RawCell::Float(x) if x.is_nan() => Err(nan()),
+        RawCell::Float(x) if x.is_infinite() => Err(infinite()),
         RawCell::Float(x) => Ok(x),
         RawCell::Int(i) => Ok(i as f64),
-        RawCell::Unsupported(ty) => Err(format!("a {ty} is not a number")),
-        RawCell::Empty => Err("empty".into()),
+        RawCell::Unsupported(ty) => Err(CellError::new(
+            NotANumber,
+            format!("a {ty} is not a number"),
+        )),
+        RawCell::Empty => Err(CellError::new(NotANumber, "empty")),
         RawCell::Text(t) => {
             let t = t.trim();
             match t.parse::<f64>() {
-                Err(_) => Err(format!("`{}` is not a number", excerpt(t))),
-                Ok(x) if x.is_nan() => {
-                    Err("NaN is not a value; leave the cell empty for a missing value".into())
-                }
+                Err(_) => Err(CellError::new(
+                    NotANumber,
+                    format!("`{}` is not a number", excerpt(t)),
+                )),
+                Ok(x) if x.is_nan() => Err(nan()),
                 Ok(x) if x.is_infinite() => {
                     let word = t.trim_start_matches(['+', '-']).to_ascii_lowercase();
                     if word.starts_with("inf") {
-                        Err("infinite values are not accepted".into())
+                        Err(infinite())
                     } else {
-                        Err(format!(
-                            "`{}` overflows a 64-bit floating-point number",
-                            excerpt(t)
+                        Err(CellError::new(
+                            TooLarge,
+                            format!("`{}` overflows a 64-bit floating-point number", excerpt(t)),
                         ))
                     }
                 }
                 // Parsing rounds a non-zero number below the smallest subnormal to zero,
                 // which would turn a small positive concentration into a zero (and drop
                 // it from a log-scale fit) without a word.
-                Ok(x) if x == 0.0 && has_nonzero_digit(t) => Err(format!(
-                    "`{t}` is too small for a 64-bit floating-point number (it would be stored as 0)"
+                Ok(x) if x == 0.0 && has_nonzero_digit(t) => Err(CellError::new(
+                    TooSmall,
+                    format!(
+                        "`{t}` is too small for a 64-bit floating-point number (it would be stored as 0)"
+                    ),
                 )),
                 Ok(x) => Ok(x),
             }
@@ -376,33 +422,50 @@ fn excerpt(t: &str) -> std::borrow::Cow<'_, str> {
 }
 
 /// A year: an integer (an integral decimal such as `2019.0` is accepted) within [`YEARS`].
-pub fn parse_year(cell: RawCell<'_>) -> Result<i32, String> {
+pub fn parse_year(cell: RawCell<'_>) -> Result<i32, CellError> {
+    use RejectionKind::*;
+    let no_year = || CellError::new(NoYear, "row has no year");
     let year = match cell {
-        RawCell::Empty => return Err("row has no year".into()),
-        RawCell::Text(t) if t.trim().is_empty() => return Err("row has no year".into()),
+        RawCell::Empty => return Err(no_year()),
+        RawCell::Text(t) if t.trim().is_empty() => return Err(no_year()),
         RawCell::Text(t) => {
             let t = t.trim();
             match t.parse::<i64>() {
                 Ok(y) => y,
                 Err(_) => match t.parse::<f64>() {
                     Ok(x) if x.is_finite() && x.fract() == 0.0 && x.abs() < 1e9 => x as i64,
-                    _ => return Err(format!("year `{}` is not an integer", excerpt(t))),
+                    _ => {
+                        return Err(CellError::new(
+                            YearNotAnInteger,
+                            format!("year `{}` is not an integer", excerpt(t)),
+                        ))
+                    }
                 },
             }
         }
         RawCell::Int(i) => i,
         RawCell::Float(x) if x.is_finite() && x.fract() == 0.0 && x.abs() < 1e9 => x as i64,
-        RawCell::Float(x) => return Err(format!("year `{x}` is not an integer")),
-        RawCell::Unsupported(ty) => return Err(format!("year is a {ty}, not an integer")),
+        RawCell::Float(x) => {
+            return Err(CellError::new(
+                YearNotAnInteger,
+                format!("year `{x}` is not an integer"),
+            ))
+        }
+        RawCell::Unsupported(ty) => {
+            return Err(CellError::new(
+                YearNotAnInteger,
+                format!("year is a {ty}, not an integer"),
+            ))
+        }
     };
     if !YEARS.contains(&year) {
-        return Err(format!(
-            "year {year} is outside {}..={}",
-            YEARS.start(),
-            YEARS.end()
+        return Err(CellError::new(
+            YearOutsideRange,
+            format!("year {year} is outside {}..={}", YEARS.start(), YEARS.end()),
         ));
     }
-    i32::try_from(year).map_err(|_| format!("year {year} is out of range"))
+    i32::try_from(year)
+        .map_err(|_| CellError::new(YearOutsideRange, format!("year {year} is out of range")))
 }
 
 #[cfg(test)]
@@ -419,46 +482,61 @@ mod tests {
             .collect()
     }
 
+    /// The error of a cell that must not parse: its kind and the start of its reason.
+    fn refused<T: std::fmt::Debug>(r: Result<T, CellError>) -> (RejectionKind, String) {
+        let e = r.unwrap_err();
+        (e.kind, e.reason)
+    }
+
     #[test]
     fn numbers() {
+        use RejectionKind::*;
         assert_eq!(parse_number(RawCell::Text(" 1.5 ")), Ok(1.5));
         assert_eq!(parse_number(RawCell::Text("-2e3")), Ok(-2000.0));
-        assert!(parse_number(RawCell::Text("1,5"))
-            .unwrap_err()
-            .contains("not a number"));
-        assert!(parse_number(RawCell::Text("NaN"))
-            .unwrap_err()
-            .contains("NaN"));
-        assert!(parse_number(RawCell::Text("-inf"))
-            .unwrap_err()
-            .contains("infinite"));
-        assert!(parse_number(RawCell::Text("1e400"))
-            .unwrap_err()
-            .contains("overflows"));
-        assert!(parse_number(RawCell::Text("1e-400"))
-            .unwrap_err()
-            .contains("too small"));
+        let cases = [
+            ("1,5", NotANumber, "not a number"),
+            ("NaN", NaN, "NaN"),
+            ("-inf", Infinite, "infinite"),
+            ("1e400", TooLarge, "overflows"),
+            ("1e-400", TooSmall, "too small"),
+        ];
+        for (text, kind, words) in cases {
+            let (k, reason) = refused(parse_number(RawCell::Text(text)));
+            assert_eq!(k, kind, "{text}");
+            assert!(reason.contains(words), "{text}: {reason}");
+        }
         assert_eq!(parse_number(RawCell::Text("0.000e-999")), Ok(0.0));
         assert_eq!(parse_number(RawCell::Text("-0")), Ok(0.0));
         assert_eq!(parse_number(RawCell::Text("5e-324")), Ok(5e-324));
         let long = "y".repeat(100_000);
-        assert!(parse_number(RawCell::Text(&long)).unwrap_err().len() < 100);
-        assert!(parse_number(RawCell::Float(f64::NAN)).is_err());
+        assert!(refused(parse_number(RawCell::Text(&long))).1.len() < 100);
+        assert_eq!(refused(parse_number(RawCell::Float(f64::NAN))).0, NaN);
+        assert_eq!(
+            refused(parse_number(RawCell::Unsupported("boolean"))).0,
+            NotANumber
+        );
         assert_eq!(parse_number(RawCell::Int(-3)), Ok(-3.0));
     }
 
     #[test]
     fn years() {
+        use RejectionKind::*;
         assert_eq!(parse_year(RawCell::Text("2019")), Ok(2019));
         assert_eq!(parse_year(RawCell::Text("2019.0")), Ok(2019));
-        assert!(parse_year(RawCell::Text("2019.5"))
-            .unwrap_err()
-            .contains("not an integer"));
-        assert!(parse_year(RawCell::Text("19x")).is_err());
-        assert!(parse_year(RawCell::Int(1700))
-            .unwrap_err()
-            .contains("outside"));
-        assert!(parse_year(RawCell::Empty).unwrap_err().contains("no year"));
+        let (kind, reason) = refused(parse_year(RawCell::Text("2019.5")));
+        assert_eq!(kind, YearNotAnInteger);
+        assert!(reason.contains("not an integer"), "{reason}");
+        assert_eq!(
+            refused(parse_year(RawCell::Text("19x"))).0,
+            YearNotAnInteger
+        );
+        let (kind, reason) = refused(parse_year(RawCell::Int(1700)));
+        assert_eq!(kind, YearOutsideRange);
+        assert!(reason.contains("outside"), "{reason}");
+        let (kind, reason) = refused(parse_year(RawCell::Empty));
+        assert_eq!(kind, NoYear);
+        assert!(reason.contains("no year"), "{reason}");
+        assert_eq!(refused(parse_year(RawCell::Text("  "))).0, NoYear);
     }
 
     #[test]
@@ -476,7 +554,7 @@ mod tests {
         assert_eq!(rejections.len(), 3);
         assert!(rejections
             .iter()
-            .all(|r| r.reason.contains("lines 2, 3, 4")));
+            .all(|r| r.reason.contains("lines 2, 3, 4") && r.kind == RejectionKind::Conflict));
         assert_eq!(rejections[1].raw.as_deref(), Some("2.0"));
     }
 
@@ -511,7 +589,11 @@ mod tests {
         assert!(values.values.is_empty());
         assert_eq!(rejections.len(), 3);
         assert!(rejections[0].reason.contains("no site"));
+        assert!(rejections[..2]
+            .iter()
+            .all(|r| r.kind == RejectionKind::NoSite));
         assert_eq!(rejections[2].column, None);
         assert!(rejections[2].reason.contains("20x0"));
+        assert_eq!(rejections[2].kind, RejectionKind::YearNotAnInteger);
     }
 }
