@@ -154,7 +154,7 @@ impl Lease {
     }
 
     /// The origin of a run this process makes while it holds the lease.
-    pub fn run_origin(&self, trigger: &'static str) -> crate::store::RunOrigin {
+    pub fn run_origin(&self, trigger: crate::vocabulary::RunTrigger) -> crate::store::RunOrigin {
         crate::store::RunOrigin {
             trigger,
             command: self.claim.command,

@@ -31,3 +31,6 @@ pub mod serve;
 pub mod signals;
 pub mod store;
 pub mod telemetry;
+/// The shared words (fit and run status, run trigger); they live with the store because the
+/// store derives their database form.
+pub use store::vocabulary;

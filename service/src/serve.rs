@@ -24,6 +24,7 @@ use crate::pipeline::run::{run_once, RunReport};
 use crate::signals::ShutdownSignals;
 use crate::store::RunOrigin;
 use crate::store::Store;
+use crate::vocabulary::{RunStatus, RunTrigger};
 
 /// Longest sleep between looks at the clock.
 pub const MAX_NAP: Duration = Duration::from_secs(1);
@@ -33,7 +34,7 @@ pub const STOP_GRACE: Duration = Duration::from_secs(8);
 
 /// The run in progress.
 struct Running {
-    trigger: &'static str,
+    trigger: RunTrigger,
     started: DateTime<Utc>,
     task: JoinHandle<anyhow::Result<RunReport>>,
 }
@@ -54,7 +55,7 @@ fn start(
 
 fn log_end(ended: Result<anyhow::Result<RunReport>, tokio::task::JoinError>) {
     match ended {
-        Ok(Ok(r)) if r.status == "succeeded" && !r.has_problems() => {
+        Ok(Ok(r)) if r.status == RunStatus::Succeeded && !r.has_problems() => {
             info!(run_id = r.run_id, status = %r.status, "run finished")
         }
         Ok(Ok(r)) => warn!(
@@ -103,7 +104,7 @@ pub async fn serve(store: Store, config: Config) -> anyhow::Result<()> {
             current = Some(start(
                 &store,
                 &config,
-                lease.run_origin("catch-up"),
+                lease.run_origin(RunTrigger::CatchUp),
                 &cancel,
             ));
         }
@@ -143,12 +144,12 @@ pub async fn serve(store: Store, config: Config) -> anyhow::Result<()> {
                             schedule.local(r.started)
                         );
                         info!("{why}");
-                        if let Err(e) = store.record_skipped_run(&lease.run_origin("schedule"), &why).await {
+                        if let Err(e) = store.record_skipped_run(&lease.run_origin(RunTrigger::Schedule), &why).await {
                             warn!("cannot record the skipped tick: {e}");
                         }
                     }
                     None => {
-                        current = Some(start(&store, &config, lease.run_origin("schedule"), &cancel))
+                        current = Some(start(&store, &config, lease.run_origin(RunTrigger::Schedule), &cancel))
                     }
                 }
             }

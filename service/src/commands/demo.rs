@@ -13,6 +13,7 @@ use crate::config::Config;
 use crate::pipeline::run::run_once;
 use crate::pipeline::SeriesOutcome;
 use crate::store::{RunOrigin, Store};
+use crate::vocabulary::RunTrigger;
 
 macro_rules! seasons {
     ($($year:literal),*) => {
@@ -137,7 +138,7 @@ pub async fn run(out: Option<PathBuf>) -> anyhow::Result<()> {
             b.set_message(format!("fitting {year}"));
         }
         let origin = RunOrigin {
-            trigger: "demo",
+            trigger: RunTrigger::Demo,
             command: "demo",
             holder: None,
         };

@@ -11,18 +11,21 @@ use super::Context;
 use crate::lease::Lease;
 use crate::pipeline::draws;
 use crate::pipeline::input::model_transform;
+use crate::vocabulary::{RunStatus, RunTrigger};
 
 pub async fn run(ctx: &Context, series: Option<String>) -> anyhow::Result<()> {
     let store = ctx.open_store().await?;
     let lease = Lease::acquire(&store, Arc::new(AtomicBool::new(false)), "forecast").await?;
-    let run_id = store.start_run(&lease.run_origin("manual")).await?;
+    let run_id = store
+        .start_run(&lease.run_origin(RunTrigger::Manual))
+        .await?;
     let outcome = rewrite(ctx, &store, series).await;
     let (status, message) = match &outcome {
         Ok(n) => (
-            "succeeded",
+            RunStatus::Succeeded,
             format!("forecasts rewritten for {n} version(s)"),
         ),
-        Err(e) => ("failed", format!("{e:#}")),
+        Err(e) => (RunStatus::Failed, format!("{e:#}")),
     };
     store.finish_run(run_id, status, Some(&message)).await?;
     lease.release().await?;

@@ -5,6 +5,7 @@ use std::path::PathBuf;
 use super::Context;
 use crate::ingest;
 use crate::store::RunOrigin;
+use crate::vocabulary::{RunStatus, RunTrigger};
 
 pub async fn run(ctx: &Context, files: &[PathBuf]) -> anyhow::Result<()> {
     let store = ctx.open_store().await?;
@@ -32,7 +33,7 @@ pub async fn run(ctx: &Context, files: &[PathBuf]) -> anyhow::Result<()> {
     // Ingest does not take the lease (batches are single transactions; a second writer
     // waits on the database lock), so its run has no lease holder.
     let origin = RunOrigin {
-        trigger: "manual",
+        trigger: RunTrigger::Manual,
         command: "ingest",
         holder: None,
     };
@@ -53,7 +54,11 @@ pub async fn run(ctx: &Context, files: &[PathBuf]) -> anyhow::Result<()> {
             }
         }
     }
-    let status = if failed > 0 { "partial" } else { "succeeded" };
+    let status = if failed > 0 {
+        RunStatus::Partial
+    } else {
+        RunStatus::Succeeded
+    };
     let message = format!(
         "{} file(s) ingested, {failed} file error(s)",
         files.len() - failed

@@ -10,6 +10,7 @@ use crate::pipeline::run::refit_run;
 use crate::pipeline::{RefitOptions, SeriesOutcome, SeriesReport};
 use crate::progress::FitProgress;
 use crate::signals::cancel_on_shutdown;
+use crate::vocabulary::{RunStatus, RunTrigger};
 
 /// One line per series, for people.
 pub fn describe(r: &SeriesReport) -> String {
@@ -69,11 +70,17 @@ pub async fn run(
         progress: FitProgress::on_terminal(),
         ..RefitOptions::default()
     };
-    let outcome = refit_run(&store, &ctx.config, &lease.run_origin("manual"), opts).await;
+    let outcome = refit_run(
+        &store,
+        &ctx.config,
+        &lease.run_origin(RunTrigger::Manual),
+        opts,
+    )
+    .await;
     watcher.abort();
     lease.release().await?;
     let run = outcome?;
-    if run.status == "failed" {
+    if run.status == RunStatus::Failed {
         anyhow::bail!("{}", run.message);
     }
     let reports = run.series;

@@ -11,13 +11,14 @@ use crate::lease::Lease;
 use crate::pipeline::run::run_once_with_progress;
 use crate::progress::FitProgress;
 use crate::signals::cancel_on_shutdown;
+use crate::vocabulary::{RunStatus, RunTrigger};
 
 pub async fn run(ctx: &Context) -> anyhow::Result<()> {
     let store = ctx.open_store().await?;
     let cancel = Arc::new(AtomicBool::new(false));
     let watcher = cancel_on_shutdown(cancel.clone())?;
     let lease = Lease::acquire(&store, cancel.clone(), "run-once").await?;
-    let origin = lease.run_origin("manual");
+    let origin = lease.run_origin(RunTrigger::Manual);
     let outcome = run_once_with_progress(
         &store,
         &ctx.config,
@@ -40,7 +41,7 @@ pub async fn run(ctx: &Context) -> anyhow::Result<()> {
     }
     println!("run {}: {}", report.run_id, report.status);
     store.close().await;
-    if report.has_problems() || report.status != "succeeded" {
+    if report.has_problems() || report.status != RunStatus::Succeeded {
         anyhow::bail!(
             "run {} finished {}: see the lines above and `tidemark status`",
             report.run_id,

@@ -6,6 +6,7 @@ use super::Context;
 use crate::ingest;
 use crate::lease::{own_claim, stale_reason};
 use crate::store::{BatchSummary, FitSummary, LeaseHolder, RunSummary};
+use crate::vocabulary::{FitStatus, RunStatus};
 
 /// How many recent runs and batches are shown.
 const RECENT: u32 = 10;
@@ -142,7 +143,7 @@ fn attention(
     let mut out = Vec::new();
     for s in series {
         let Some(f) = &s.latest_fit else { continue };
-        if f.status != "rejected" && f.status != "failed" {
+        if f.status == FitStatus::Published {
             continue;
         }
         let serving = s
@@ -156,7 +157,7 @@ fn attention(
             series: Some(s.name.clone()),
             fit_id: Some(f.fit_id),
             run_id: None,
-            status: f.status.clone(),
+            status: f.status.to_string(),
             at: f.created_at.clone(),
             message: format!(
                 "{}; {serving}",
@@ -165,14 +166,17 @@ fn attention(
         });
     }
     // Skipped ticks did no work; the newest run that did decides.
-    if let Some(r) = runs.iter().find(|r| r.status != "skipped") {
-        if matches!(r.status.as_str(), "failed" | "partial" | "abandoned") {
+    if let Some(r) = runs.iter().find(|r| r.status != RunStatus::Skipped) {
+        if matches!(
+            r.status,
+            RunStatus::Failed | RunStatus::Partial | RunStatus::Abandoned
+        ) {
             out.push(Attention {
                 kind: "run",
                 series: None,
                 fit_id: None,
                 run_id: Some(r.run_id),
-                status: r.status.clone(),
+                status: r.status.to_string(),
                 at: r
                     .finished_at
                     .clone()
@@ -223,12 +227,12 @@ fn fit_line(f: &FitSummary) -> String {
         format!(": {}", diag.join(", "))
     };
     // An attempt that published nothing is not a version: say what it tried to become.
-    let head = if f.status == "published" {
+    let head = if f.status == FitStatus::Published {
         format!("version {} published {}", f.version, f.created_at)
     } else {
         format!(
             "attempt {} {} (would have been version {})",
-            f.status.to_uppercase(),
+            f.status.as_str().to_uppercase(),
             f.created_at,
             f.version
         )
@@ -336,8 +340,8 @@ fn render_text(r: &StatusReport) -> String {
             "  run {} ({}) {} -> {} {}{}",
             run.run_id,
             match &run.command {
-                Some(c) if c != &run.trigger => format!("{} {c}", run.trigger),
-                _ => run.trigger.clone(),
+                Some(c) if c != run.trigger.as_str() => format!("{} {c}", run.trigger),
+                _ => run.trigger.to_string(),
             },
             run.started_at,
             run.finished_at.as_deref().unwrap_or("…"),

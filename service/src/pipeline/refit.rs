@@ -20,6 +20,7 @@ use super::{draws, input};
 use crate::config::{Config, LocationPrior, SdPrior, SeriesConfig};
 use crate::progress::{ChainBars, FitProgress};
 use crate::store::{ForecastSet, NewExclusion, NewFit, Store};
+use crate::vocabulary::FitStatus;
 
 /// Joint effect draws per chain kept with a version for forecasts (the forecast basis).
 pub const BASIS_DRAWS_PER_CHAIN: usize = 25;
@@ -231,7 +232,7 @@ async fn refit_series(
     let built = match input::build(series, &rows) {
         Ok(b) => b,
         Err(e) => {
-            fit.status = "failed".into();
+            fit.status = FitStatus::Failed;
             fit.message = Some(e.to_string());
             fit.wall_seconds = Some(started.elapsed().as_secs_f64());
             let recorded = store
@@ -324,7 +325,7 @@ async fn refit_series(
                         series.name
                     )));
                 }
-                fit.status = "failed".into();
+                fit.status = FitStatus::Failed;
                 fit.message = Some(format!("{label}: {e:#}"));
                 fit.wall_seconds = Some(started.elapsed().as_secs_f64());
                 let recorded = store
@@ -361,7 +362,11 @@ async fn refit_series(
     let publishing = Instant::now();
     let published = passes(&post.diagnostics, series);
     let d = post.diagnostics.clone();
-    fit.status = if published { "published" } else { "rejected" }.into();
+    fit.status = if published {
+        FitStatus::Published
+    } else {
+        FitStatus::Rejected
+    };
     fit.warm_start_from = from;
     fit.draws = Some(used.draws as i64);
     fit.warmup = Some(d.warmup as i64);

@@ -11,13 +11,14 @@ use crate::config::Config;
 use crate::ingest;
 use crate::progress::FitProgress;
 use crate::store::{RunOrigin, Store};
+use crate::vocabulary::RunStatus;
 
 /// What a run did.
 #[derive(Debug, Clone, serde::Serialize)]
 pub struct RunReport {
     pub run_id: i64,
     /// `succeeded`, `partial`, `failed` or `abandoned` (cut short by the cancel flag).
-    pub status: String,
+    pub status: RunStatus,
     pub files: Vec<String>,
     pub file_errors: Vec<String>,
     pub series: Vec<SeriesReport>,
@@ -56,7 +57,7 @@ pub async fn run_once_with_progress(
     progress: Option<FitProgress>,
 ) -> anyhow::Result<RunReport> {
     let run_id = store.start_run(origin).await?;
-    let span = info_span!("run", run_id, trigger = origin.trigger);
+    let span = info_span!("run", run_id, trigger = origin.trigger.as_str());
     async move {
         let mut report = RunReport::new(run_id);
         ingest_inbox(store, config, &cancel, &mut report).await?;
@@ -82,7 +83,7 @@ pub async fn refit_run(
     opts: RefitOptions,
 ) -> anyhow::Result<RunReport> {
     let run_id = store.start_run(origin).await?;
-    let span = info_span!("run", run_id, trigger = origin.trigger);
+    let span = info_span!("run", run_id, trigger = origin.trigger.as_str());
     async move {
         let mut report = RunReport::new(run_id);
         let opts = RefitOptions {
@@ -102,7 +103,7 @@ impl RunReport {
     fn new(run_id: i64) -> RunReport {
         RunReport {
             run_id,
-            status: "succeeded".into(),
+            status: RunStatus::Succeeded,
             files: Vec::new(),
             file_errors: Vec::new(),
             series: Vec::new(),
@@ -171,7 +172,7 @@ async fn refit_and_record(
             }
             report.series = series;
             if report.has_problems() {
-                report.status = "partial".into();
+                report.status = RunStatus::Partial;
             }
             let counts = |o: SeriesOutcome| report.series.iter().filter(|s| s.outcome == o).count();
             report.message = format!(
@@ -183,7 +184,7 @@ async fn refit_and_record(
             );
         }
         Err(e) => {
-            report.status = "failed".into();
+            report.status = RunStatus::Failed;
             report.message = format!("{e:#}");
         }
     }
@@ -197,7 +198,7 @@ async fn finish(
     cancel: &AtomicBool,
     report: &mut RunReport,
 ) -> anyhow::Result<()> {
-    if report.status != "failed" {
+    if report.status != RunStatus::Failed {
         report.message = format!(
             "{} file(s) ingested, {} file error(s); {}",
             report.files.len(),
@@ -205,8 +206,8 @@ async fn finish(
             report.message
         );
     }
-    if !report.file_errors.is_empty() && report.status == "succeeded" {
-        report.status = "partial".into();
+    if !report.file_errors.is_empty() && report.status == RunStatus::Succeeded {
+        report.status = RunStatus::Partial;
     }
     finish_with(store, cancel, config.series.len(), report).await
 }
@@ -220,16 +221,16 @@ async fn finish_with(
     expected: usize,
     report: &mut RunReport,
 ) -> anyhow::Result<()> {
-    let cut_short = report.series.len() < expected || report.status == "failed";
+    let cut_short = report.series.len() < expected || report.status == RunStatus::Failed;
     if cancel.load(std::sync::atomic::Ordering::Relaxed) && cut_short {
-        report.status = "abandoned".into();
+        report.status = RunStatus::Abandoned;
         report.message = format!(
             "abandoned: stopped at a safe point by a shutdown request; {}",
             report.message
         );
     }
     store
-        .finish_run(report.run_id, &report.status, Some(&report.message))
+        .finish_run(report.run_id, report.status, Some(&report.message))
         .await?;
     info!(status = %report.status, "{}", report.message);
     Ok(())

@@ -151,7 +151,8 @@ impl Report {
             let latest = store.latest_published_fit(name).await?;
             let attempt = store.latest_fit_attempt(name).await?;
             let unserved_attempt = attempt.filter(|a| {
-                a.status != "published" && latest.as_ref().is_none_or(|l| a.version > l.version)
+                a.status != crate::vocabulary::FitStatus::Published
+                    && latest.as_ref().is_none_or(|l| a.version > l.version)
             });
             let rows = store.variance_components(Some(name)).await?;
             let drift = drift::build(&rows).series.into_iter().next();

@@ -68,7 +68,7 @@ fn section(out: &mut String, s: &SeriesReport) -> Result<(), ReportError> {
              The version below keeps serving.</p>",
             a.version,
             a.fit_id,
-            esc(&a.status),
+            esc(a.status.as_str()),
             esc(a.message.as_deref().unwrap_or("no message"))
         );
     }
@@ -212,11 +212,11 @@ fn run_history(out: &mut String, r: &Report) {
             "<tr><td class=\"num\">{}</td><td>{}</td><td>{}</td><td>{}</td>\
              <td class=\"{}\">{}</td><td>{}</td><td>{}</td></tr>",
             run.run_id,
-            esc(&run.trigger),
+            esc(run.trigger.as_str()),
             esc(&run.started_at),
             esc(run.finished_at.as_deref().unwrap_or("–")),
-            esc(&run.status),
-            esc(&run.status),
+            esc(run.status.as_str()),
+            esc(run.status.as_str()),
             outcomes,
             esc(run.message.as_deref().unwrap_or(""))
         );

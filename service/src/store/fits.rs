@@ -8,13 +8,13 @@ use sqlx::{QueryBuilder, Row, Sqlite, Transaction};
 use tidemark_model::{ForecastRow, Summary};
 
 use super::{now_utc, Store, StoreError};
+use crate::vocabulary::{FitStatus, RunStatus, RunTrigger};
 
 /// Everything about a fit attempt except its summaries, draws and forecasts.
 #[derive(Debug, Clone, Default)]
 pub struct NewFit {
     pub series: String,
-    /// `published`, `rejected` or `failed`.
-    pub status: String,
+    pub status: FitStatus,
     pub data_through_year: Option<i64>,
     pub watermark: i64,
     pub n_obs: Option<i64>,
@@ -100,7 +100,7 @@ async fn insert_summaries(
 /// of the process, and that process's lease holder id when it holds the lease.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct RunOrigin {
-    pub trigger: &'static str,
+    pub trigger: RunTrigger,
     pub command: &'static str,
     pub holder: Option<String>,
 }
@@ -204,7 +204,7 @@ impl Store {
             )
             .bind(&fit.series)
             .bind(version)
-            .bind(&fit.status)
+            .bind(fit.status)
             .bind(now_utc())
             .bind(fit.data_through_year)
             .bind(fit.watermark)
@@ -251,7 +251,7 @@ impl Store {
                     .execute(&mut *tx)
                     .await?;
             }
-            if fit.status == "published" {
+            if fit.status == FitStatus::Published {
                 insert_forecasts(&mut tx, fit_id, forecasts).await?;
             }
             tx.commit().await?;
@@ -344,7 +344,7 @@ impl Store {
     pub async fn finish_run(
         &self,
         run_id: i64,
-        status: &str,
+        status: RunStatus,
         message: Option<&str>,
     ) -> Result<(), StoreError> {
         sqlx::query(

@@ -15,6 +15,7 @@ mod report;
 mod runs;
 mod series;
 mod status;
+pub mod vocabulary;
 
 use std::path::{Path, PathBuf};
 use std::str::FromStr;

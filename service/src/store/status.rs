@@ -5,16 +5,17 @@ use sqlx::sqlite::SqliteRow;
 use sqlx::Row;
 
 use super::{Store, StoreError};
+use crate::vocabulary::{FitStatus, RunStatus, RunTrigger};
 
 #[derive(Debug, Clone, PartialEq, Serialize, sqlx::FromRow)]
 pub struct RunSummary {
     pub run_id: i64,
-    pub trigger: String,
+    pub trigger: RunTrigger,
     /// The command that made the run; null for runs recorded before schema version 3.
     pub command: Option<String>,
     pub started_at: String,
     pub finished_at: Option<String>,
-    pub status: String,
+    pub status: RunStatus,
     pub message: Option<String>,
 }
 
@@ -38,7 +39,7 @@ pub struct FitSummary {
     pub fit_id: i64,
     pub series: String,
     pub version: i64,
-    pub status: String,
+    pub status: FitStatus,
     pub created_at: String,
     pub data_through_year: Option<i64>,
     pub watermark: i64,
