@@ -212,7 +212,7 @@ fn drift_flags_a_partition_that_moves_and_not_one_that_holds() {
     );
     let block: Vec<&str> = text
         .lines()
-        .skip_while(|l| l.trim() != "sd site")
+        .skip_while(|l| !l.trim().starts_with("sd site ("))
         .skip(2)
         .take(3)
         .collect();

@@ -229,7 +229,12 @@ pub fn render_text(report: &DriftReport) -> String {
         }
         quantities.sort_by_key(|(k, t)| (kind_rank(k), term_rank(t)));
         for (kind, term) in quantities {
-            let _ = writeln!(out, "  {kind} {term}");
+            let scale = if kind == "sd" {
+                "standard deviation, model scale"
+            } else {
+                "share of the variance, 0 to 1"
+            };
+            let _ = writeln!(out, "  {kind} {term} ({scale})");
             let _ = writeln!(
                 out,
                 "    {:>7} {:>7} {:>10} {:>10} {:>10} {:>10}  flag",

@@ -29,32 +29,53 @@ impl FitProgress {
 
     /// One bar per chain for one attempt of one series.
     pub fn chains(&self, series: &str, attempt: &str, chains: usize) -> ChainBars {
-        let style = ProgressStyle::with_template("{prefix:>28} [{bar:30}] {pos}/{len} {elapsed}")
+        ChainBars::new(
+            (0..chains).map(|_| self.multi.add(ProgressBar::no_length())),
+            series,
+            attempt,
+        )
+    }
+}
+
+/// The bars of one attempt; cleared when dropped. A chain that has not started yet
+/// (the pool runs as many chains at once as it has threads) says so instead of showing
+/// an empty `0/0` bar that looks finished.
+pub struct ChainBars {
+    bars: Vec<ProgressBar>,
+    running: ProgressStyle,
+}
+
+impl ChainBars {
+    fn new(bars: impl Iterator<Item = ProgressBar>, series: &str, attempt: &str) -> ChainBars {
+        let waiting = ProgressStyle::with_template("{prefix:>28} waiting for a free core")
+            .unwrap_or_else(|_| ProgressStyle::default_spinner());
+        let running = ProgressStyle::with_template("{prefix:>28} [{bar:30}] {pos}/{len} {elapsed}")
             .unwrap_or_else(|_| ProgressStyle::default_bar())
             .progress_chars("=> ");
-        let bars = (0..chains)
-            .map(|c| {
-                let bar = self.multi.add(ProgressBar::new(0));
-                bar.set_style(style.clone());
+        let bars = bars
+            .enumerate()
+            .map(|(c, bar)| {
+                bar.set_style(waiting.clone());
                 bar.set_prefix(format!("{series} {attempt} chain {}", c + 1));
                 bar
             })
             .collect();
-        ChainBars { bars }
+        ChainBars { bars, running }
     }
-}
 
-/// The bars of one attempt; cleared when dropped.
-pub struct ChainBars {
-    bars: Vec<ProgressBar>,
-}
-
-impl ChainBars {
     pub fn update(&self, p: tidemark_model::Progress) {
         if let Some(bar) = self.bars.get(p.chain) {
+            if bar.length().is_none() {
+                bar.set_style(self.running.clone());
+            }
             bar.set_length(p.total as u64);
             bar.set_position(p.iteration as u64);
         }
+    }
+
+    /// Chains that have reported progress.
+    pub fn started(&self) -> usize {
+        self.bars.iter().filter(|b| b.length().is_some()).count()
     }
 }
 
@@ -63,5 +84,30 @@ impl Drop for ChainBars {
         for bar in &self.bars {
             bar.finish_and_clear();
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_chain_is_waiting_until_it_reports() {
+        let bars = ChainBars::new(
+            (0..4).map(|_| {
+                ProgressBar::with_draw_target(None, indicatif::ProgressDrawTarget::hidden())
+            }),
+            "chlorophyll",
+            "warm",
+        );
+        assert_eq!(bars.started(), 0);
+        bars.update(tidemark_model::Progress {
+            chain: 2,
+            iteration: 10,
+            total: 2000,
+        });
+        assert_eq!(bars.started(), 1);
+        assert_eq!(bars.bars[2].length(), Some(2000));
+        assert_eq!(bars.bars[0].length(), None, "chain 1 still waiting");
     }
 }

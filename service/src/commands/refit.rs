@@ -41,7 +41,7 @@ pub fn describe(r: &SeriesReport) -> String {
             };
             let fit = r.fit_id.map_or(String::new(), |f| format!("fit {f}, "));
             let mut line = format!(
-                "{}: {head} ({fit}{start}, {:.1} s); sd median: {sds}; {diag}",
+                "{}: {head} ({fit}{start}, {:.1} s); sd median (model scale): {sds}; {diag}",
                 r.series, r.wall_seconds
             );
             if !r.message.is_empty() {
