@@ -125,12 +125,16 @@ impl Network {
         self.path("tidemark.db")
     }
 
-    /// Put a feed file into the inbox.
+    /// Put a feed file into the inbox the way the README asks deliveries to arrive:
+    /// written under a name the inbox ignores, then renamed, so a running `serve` never
+    /// reads half a file.
     pub fn drop_file(&self, name: &str, contents: impl AsRef<[u8]>) -> PathBuf {
         let inbox = self.path("inbox");
         std::fs::create_dir_all(&inbox).expect("inbox");
         let p = inbox.join(name);
-        std::fs::write(&p, contents).expect("write feed file");
+        let part = inbox.join(format!(".{name}.part"));
+        std::fs::write(&part, contents).expect("write feed file");
+        std::fs::rename(&part, &p).expect("rename feed file into the inbox");
         p
     }
 

@@ -15,7 +15,7 @@
 use serde::Serialize;
 use sqlx::sqlite::SqliteConnection;
 use sqlx::Row;
-use tidemark_feed::{BatchContent, BatchValues, Cell, NewValue};
+use tidemark_feed::{BatchContent, BatchValues, Cell, NewRejection, NewValue};
 use tracing::debug;
 
 use super::{now_utc, Store, StoreError};
@@ -92,7 +92,13 @@ impl Store {
             .map_err(|e| self.sql(e))?;
         let outcome = write_batch(&mut tx, file, content)
             .await
-            .map_err(|e| self.sql(e))?;
+            .map_err(|e| match e {
+                WriteError::Sql(e) => self.sql(e),
+                other => StoreError::Inconsistent {
+                    path: self.path().to_path_buf(),
+                    message: other.to_string(),
+                },
+            })?;
         tx.commit().await.map_err(|e| self.sql(e))?;
         Ok(outcome)
     }
@@ -145,11 +151,101 @@ fn count(n: u64) -> i64 {
     i64::try_from(n).unwrap_or(i64::MAX)
 }
 
+/// Why a batch could not be written: the database, or a broken expectation inside the
+/// transaction (never the feed's fault; the transaction rolls back).
+#[derive(Debug, thiserror::Error)]
+enum WriteError {
+    #[error(transparent)]
+    Sql(#[from] sqlx::Error),
+    #[error("site {0:?} is missing from `sites` right after it was inserted in this transaction")]
+    SiteMissing(String),
+}
+
+/// Debug timings of the steps of one batch.
+struct Phases {
+    batch_id: i64,
+    started: std::time::Instant,
+}
+
+impl Phases {
+    fn done(&self, name: &str) {
+        debug!(
+            batch_id = self.batch_id,
+            phase = name,
+            ms = self.started.elapsed().as_millis() as u64,
+            "ingest phase done"
+        )
+    }
+}
+
+/// A value re-sent for a key that already has a current value, with the id it gets if it
+/// becomes new history.
+type Resent<'a> = (i64, &'a NewValue);
+
 async fn write_batch(
     conn: &mut SqliteConnection,
     file: &BatchFile,
     content: &BatchContent,
-) -> Result<BatchOutcome, sqlx::Error> {
+) -> Result<BatchOutcome, WriteError> {
+    if let Some(outcome) = record_without_values(conn, file, content).await? {
+        return Ok(outcome);
+    }
+    let BatchContent::Parsed {
+        rows_read,
+        values,
+        rejections,
+    } = content
+    else {
+        unreachable!("record_without_values handles every other kind of content");
+    };
+    let batch_id = insert_batch_row(conn, file, "ingested", None, None).await?;
+    let phases = Phases {
+        batch_id,
+        started: std::time::Instant::now(),
+    };
+    let site_ids = site_ids(conn, batch_id, values).await?;
+    phases.done("sites");
+    let (mut max_id, resent) = insert_new_keys(conn, batch_id, values, &site_ids).await?;
+    phases.done("direct");
+    let (unchanged, superseding) = supersede_resent(
+        conn,
+        batch_id,
+        values,
+        &site_ids,
+        &resent,
+        &mut max_id,
+        &phases,
+    )
+    .await?;
+    advance_watermarks(conn, values, &max_id).await?;
+    phases.done("insert");
+    insert_rejections(conn, batch_id, rejections).await?;
+    phases.done("rejections");
+    let counts = BatchCounts {
+        rows_read: *rows_read,
+        accepted: values.values.len() as u64,
+        rejected: rejections.len() as u64,
+        superseding,
+        unchanged,
+    };
+    close_batch_row(conn, batch_id, &counts).await?;
+    Ok(BatchOutcome::Ingested {
+        batch_id,
+        rows_read: counts.rows_read,
+        values_accepted: counts.accepted,
+        values_rejected: counts.rejected,
+        values_superseding: counts.superseding,
+        values_unchanged: counts.unchanged,
+    })
+}
+
+/// A duplicate of an ingested batch, or a file that could not be read: one batch row, no
+/// values. `None` for parsed content.
+async fn record_without_values(
+    conn: &mut SqliteConnection,
+    file: &BatchFile,
+    content: &BatchContent,
+) -> Result<Option<BatchOutcome>, sqlx::Error> {
     if let Some(earlier) = ingested_with_sha(conn, &file.sha256).await? {
         let message = format!(
             "same content as batch {} ({}, received {})",
@@ -163,47 +259,30 @@ async fn write_batch(
             Some(earlier.batch_id),
         )
         .await?;
-        return Ok(BatchOutcome::Duplicate {
+        return Ok(Some(BatchOutcome::Duplicate {
             batch_id,
             duplicate_of: earlier.batch_id,
-        });
+        }));
     }
-    let (rows_read, values, rejections) = match content {
+    let reason = match content {
+        // Only reachable if the earlier batch vanished between the caller's look-up and
+        // this transaction: keep the file for a person to look at.
         BatchContent::KnownDuplicate => {
-            // Only reachable if the earlier batch vanished between the caller's look-up
-            // and this transaction: keep the file for a person to look at.
-            let reason = "the earlier batch with the same content is gone; ingest the file again";
-            let batch_id = insert_batch_row(conn, file, "quarantined", Some(reason), None).await?;
-            return Ok(BatchOutcome::Quarantined {
-                batch_id,
-                reason: reason.to_string(),
-            });
+            "the earlier batch with the same content is gone; ingest the file again".to_string()
         }
-        BatchContent::Unreadable { reason } => {
-            let batch_id = insert_batch_row(conn, file, "quarantined", Some(reason), None).await?;
-            return Ok(BatchOutcome::Quarantined {
-                batch_id,
-                reason: reason.clone(),
-            });
-        }
-        BatchContent::Parsed {
-            rows_read,
-            values,
-            rejections,
-        } => (*rows_read, values, rejections),
+        BatchContent::Unreadable { reason } => reason.clone(),
+        BatchContent::Parsed { .. } => return Ok(None),
     };
-    let batch_id = insert_batch_row(conn, file, "ingested", None, None).await?;
-    let started = std::time::Instant::now();
-    let phase = |name: &str| {
-        debug!(
-            batch_id,
-            phase = name,
-            ms = started.elapsed().as_millis() as u64,
-            "ingest phase done"
-        )
-    };
+    let batch_id = insert_batch_row(conn, file, "quarantined", Some(&reason), None).await?;
+    Ok(Some(BatchOutcome::Quarantined { batch_id, reason }))
+}
 
-    // Site ids, in the order of `values.sites`: insert the new codes, then read all ids.
+/// Site ids in the order of `values.sites`: insert the new codes, then read all ids.
+async fn site_ids(
+    conn: &mut SqliteConnection,
+    batch_id: i64,
+    values: &BatchValues,
+) -> Result<Vec<i64>, WriteError> {
     for chunk in values.sites.chunks(SITE_CHUNK) {
         let sql = multi_row_insert(
             "INSERT INTO sites (code, first_batch_id) VALUES ",
@@ -232,25 +311,33 @@ async fn write_batch(
     }
     let mut site_ids = Vec::with_capacity(values.sites.len());
     for code in &values.sites {
-        let id = id_of.get(code).copied().ok_or_else(|| {
-            sqlx::Error::Protocol(format!("site {code:?} vanished during ingest"))
-        })?;
+        let id = id_of
+            .get(code)
+            .copied()
+            .ok_or_else(|| WriteError::SiteMissing(code.clone()))?;
         site_ids.push(id);
     }
+    Ok(site_ids)
+}
 
-    phase("sites");
+/// Pass 1: value `i` gets id `base + 1 + i` and goes straight into `observations`; a
+/// value whose key already has a current value is skipped by the unique partial index and
+/// returned for pass 2. Also returns the largest stored value id per column of
+/// `values.columns` (0 = none stored).
+async fn insert_new_keys<'a>(
+    conn: &mut SqliteConnection,
+    batch_id: i64,
+    values: &'a BatchValues,
+    site_ids: &[i64],
+) -> Result<(Vec<i64>, Vec<Resent<'a>>), sqlx::Error> {
     let base: i64 = sqlx::query_scalar("SELECT COALESCE(MAX(value_id), 0) FROM observations")
         .fetch_one(&mut *conn)
         .await?;
 
-    // Pass 1: value `i` gets id `base + 1 + i` and goes straight into `observations`; a
-    // value whose key already has a current value is skipped by the unique partial index
-    // and kept for pass 2.
     const DIRECT: &str = "INSERT INTO observations (value_id, batch_id, site_id, year, visit, column_name, num_value, text_value, line) VALUES ";
     let direct_sql = |rows: usize| multi_row_insert(DIRECT, 9, rows) + " ON CONFLICT DO NOTHING";
     let full_chunk = direct_sql(INSERT_CHUNK);
     let mut existing: Vec<(i64, &NewValue)> = Vec::new();
-    // Largest stored value id per column of `values.columns` (0 = none stored).
     let mut max_id = vec![0i64; values.columns.len()];
     let mut first_id = base + 1;
     for chunk in values.values.chunks(INSERT_CHUNK) {
@@ -302,92 +389,112 @@ async fn write_batch(
         }
         first_id += chunk.len() as i64;
     }
-    phase("direct");
+    Ok((max_id, existing))
+}
 
-    // Pass 2, set-based, for values re-sent for a key that has a current value.
-    let (mut unchanged, mut superseding) = (0, 0);
-    if !existing.is_empty() {
-        sqlx::query(
-            "CREATE TEMP TABLE IF NOT EXISTS ingest_stage (
-                 new_id INTEGER PRIMARY KEY, site_id INTEGER NOT NULL, year INTEGER NOT NULL,
-                 visit TEXT NOT NULL, column_name TEXT NOT NULL, num_value REAL, text_value TEXT,
-                 line INTEGER NOT NULL)",
-        )
-        .execute(&mut *conn)
-        .await?;
-        sqlx::query("DELETE FROM temp.ingest_stage")
-            .execute(&mut *conn)
-            .await?;
-        const STAGE: &str = "INSERT INTO temp.ingest_stage (new_id, site_id, year, visit, column_name, num_value, text_value, line) VALUES ";
-        for chunk in existing.chunks(INSERT_CHUNK) {
-            let sql = multi_row_insert(STAGE, 8, chunk.len());
-            let mut q = sqlx::query(&sql);
-            for (id, v) in chunk {
-                let (num, text) = cell_columns(values, v);
-                q = q
-                    .bind(*id)
-                    .bind(site_ids[v.site as usize])
-                    .bind(v.year)
-                    .bind(values.visits[v.visit as usize].as_str())
-                    .bind(values.columns[v.column as usize].as_str())
-                    .bind(num)
-                    .bind(text)
-                    .bind(count(v.line));
-            }
-            q.execute(&mut *conn).await?;
-        }
-        phase("stage");
-
-        // A re-sent identical value is not new history.
-        unchanged = sqlx::query(
-            "DELETE FROM temp.ingest_stage WHERE EXISTS (
-                 SELECT 1 FROM observations o
-                 WHERE o.superseded_by IS NULL AND o.site_id = ingest_stage.site_id
-                   AND o.year = ingest_stage.year AND o.visit = ingest_stage.visit
-                   AND o.column_name = ingest_stage.column_name
-                   AND o.num_value IS ingest_stage.num_value AND o.text_value IS ingest_stage.text_value)",
-        )
-        .execute(&mut *conn)
-        .await?
-        .rows_affected();
-        phase("unchanged");
-
-        superseding = sqlx::query(
-            "UPDATE observations SET superseded_by = s.new_id
-             FROM temp.ingest_stage s
-             WHERE observations.superseded_by IS NULL AND observations.site_id = s.site_id
-               AND observations.year = s.year AND observations.visit = s.visit
-               AND observations.column_name = s.column_name",
-        )
-        .execute(&mut *conn)
-        .await?
-        .rows_affected();
-        phase("supersede");
-
-        sqlx::query(
-            "INSERT INTO observations (value_id, batch_id, site_id, year, visit, column_name, num_value, text_value, line)
-             SELECT new_id, ?1, site_id, year, visit, column_name, num_value, text_value, line
-             FROM temp.ingest_stage ORDER BY new_id",
-        )
-        .bind(batch_id)
-        .execute(&mut *conn)
-        .await?;
-        let staged_max: Vec<(String, i64)> = sqlx::query_as(
-            "SELECT column_name, MAX(new_id) FROM temp.ingest_stage GROUP BY column_name",
-        )
-        .fetch_all(&mut *conn)
-        .await?;
-        for (column, id) in staged_max {
-            if let Some(c) = values.columns.iter().position(|n| *n == column) {
-                max_id[c] = max_id[c].max(id);
-            }
-        }
-        sqlx::query("DELETE FROM temp.ingest_stage")
-            .execute(&mut *conn)
-            .await?;
+/// Pass 2, set-based, for values re-sent for a key that has a current value: an
+/// identical value is counted as unchanged; a different one supersedes the current value.
+/// Returns `(unchanged, superseding)` and raises `max_id` for the new rows.
+async fn supersede_resent(
+    conn: &mut SqliteConnection,
+    batch_id: i64,
+    values: &BatchValues,
+    site_ids: &[i64],
+    existing: &[Resent<'_>],
+    max_id: &mut [i64],
+    phases: &Phases,
+) -> Result<(u64, u64), sqlx::Error> {
+    if existing.is_empty() {
+        return Ok((0, 0));
     }
+    sqlx::query(
+        "CREATE TEMP TABLE IF NOT EXISTS ingest_stage (
+             new_id INTEGER PRIMARY KEY, site_id INTEGER NOT NULL, year INTEGER NOT NULL,
+             visit TEXT NOT NULL, column_name TEXT NOT NULL, num_value REAL, text_value TEXT,
+             line INTEGER NOT NULL)",
+    )
+    .execute(&mut *conn)
+    .await?;
+    sqlx::query("DELETE FROM temp.ingest_stage")
+        .execute(&mut *conn)
+        .await?;
+    const STAGE: &str = "INSERT INTO temp.ingest_stage (new_id, site_id, year, visit, column_name, num_value, text_value, line) VALUES ";
+    for chunk in existing.chunks(INSERT_CHUNK) {
+        let sql = multi_row_insert(STAGE, 8, chunk.len());
+        let mut q = sqlx::query(&sql);
+        for (id, v) in chunk {
+            let (num, text) = cell_columns(values, v);
+            q = q
+                .bind(*id)
+                .bind(site_ids[v.site as usize])
+                .bind(v.year)
+                .bind(values.visits[v.visit as usize].as_str())
+                .bind(values.columns[v.column as usize].as_str())
+                .bind(num)
+                .bind(text)
+                .bind(count(v.line));
+        }
+        q.execute(&mut *conn).await?;
+    }
+    phases.done("stage");
 
-    for (column, id) in values.columns.iter().zip(&max_id) {
+    // A re-sent identical value is not new history.
+    let unchanged = sqlx::query(
+        "DELETE FROM temp.ingest_stage WHERE EXISTS (
+             SELECT 1 FROM observations o
+             WHERE o.superseded_by IS NULL AND o.site_id = ingest_stage.site_id
+               AND o.year = ingest_stage.year AND o.visit = ingest_stage.visit
+               AND o.column_name = ingest_stage.column_name
+               AND o.num_value IS ingest_stage.num_value AND o.text_value IS ingest_stage.text_value)",
+    )
+    .execute(&mut *conn)
+    .await?
+    .rows_affected();
+    phases.done("unchanged");
+
+    let superseding = sqlx::query(
+        "UPDATE observations SET superseded_by = s.new_id
+         FROM temp.ingest_stage s
+         WHERE observations.superseded_by IS NULL AND observations.site_id = s.site_id
+           AND observations.year = s.year AND observations.visit = s.visit
+           AND observations.column_name = s.column_name",
+    )
+    .execute(&mut *conn)
+    .await?
+    .rows_affected();
+    phases.done("supersede");
+
+    sqlx::query(
+        "INSERT INTO observations (value_id, batch_id, site_id, year, visit, column_name, num_value, text_value, line)
+         SELECT new_id, ?1, site_id, year, visit, column_name, num_value, text_value, line
+         FROM temp.ingest_stage ORDER BY new_id",
+    )
+    .bind(batch_id)
+    .execute(&mut *conn)
+    .await?;
+    let staged_max: Vec<(String, i64)> = sqlx::query_as(
+        "SELECT column_name, MAX(new_id) FROM temp.ingest_stage GROUP BY column_name",
+    )
+    .fetch_all(&mut *conn)
+    .await?;
+    for (column, id) in staged_max {
+        if let Some(c) = values.columns.iter().position(|n| *n == column) {
+            max_id[c] = max_id[c].max(id);
+        }
+    }
+    sqlx::query("DELETE FROM temp.ingest_stage")
+        .execute(&mut *conn)
+        .await?;
+    Ok((unchanged, superseding))
+}
+
+/// Raise each column's watermark to the largest value id this batch stored in it.
+async fn advance_watermarks(
+    conn: &mut SqliteConnection,
+    values: &BatchValues,
+    max_id: &[i64],
+) -> Result<(), sqlx::Error> {
+    for (column, id) in values.columns.iter().zip(max_id) {
         if *id > 0 {
             sqlx::query(
                 "INSERT INTO column_watermarks (column_name, max_value_id) VALUES (?1, ?2)
@@ -399,7 +506,15 @@ async fn write_batch(
             .await?;
         }
     }
-    phase("insert");
+    Ok(())
+}
+
+/// Every rejected value of the batch, with its reason.
+async fn insert_rejections(
+    conn: &mut SqliteConnection,
+    batch_id: i64,
+    rejections: &[NewRejection],
+) -> Result<(), sqlx::Error> {
     for chunk in rejections.chunks(REJECT_CHUNK) {
         let sql = multi_row_insert(
             "INSERT INTO rejections (batch_id, line, column_name, raw_value, reason) VALUES ",
@@ -417,32 +532,37 @@ async fn write_batch(
         }
         q.execute(&mut *conn).await?;
     }
+    Ok(())
+}
 
-    phase("rejections");
-    let accepted = values.values.len() as u64;
-    let rejected = rejections.len() as u64;
+/// What a batch did, as recorded on its `ingest_batches` row.
+struct BatchCounts {
+    rows_read: u64,
+    accepted: u64,
+    rejected: u64,
+    superseding: u64,
+    unchanged: u64,
+}
+
+async fn close_batch_row(
+    conn: &mut SqliteConnection,
+    batch_id: i64,
+    c: &BatchCounts,
+) -> Result<(), sqlx::Error> {
     sqlx::query(
         "UPDATE ingest_batches SET rows_read = ?2, values_accepted = ?3, values_rejected = ?4,
              values_superseding = ?5, values_unchanged = ?6
          WHERE batch_id = ?1",
     )
     .bind(batch_id)
-    .bind(count(rows_read))
-    .bind(count(accepted))
-    .bind(count(rejected))
-    .bind(count(superseding))
-    .bind(count(unchanged))
+    .bind(count(c.rows_read))
+    .bind(count(c.accepted))
+    .bind(count(c.rejected))
+    .bind(count(c.superseding))
+    .bind(count(c.unchanged))
     .execute(&mut *conn)
     .await?;
-
-    Ok(BatchOutcome::Ingested {
-        batch_id,
-        rows_read,
-        values_accepted: accepted,
-        values_rejected: rejected,
-        values_superseding: superseding,
-        values_unchanged: unchanged,
-    })
+    Ok(())
 }
 
 fn cell_columns<'a>(values: &'a BatchValues, v: &NewValue) -> (Option<f64>, Option<&'a str>) {

@@ -62,6 +62,8 @@ pub enum StoreError {
         version: i64,
         description: String,
     },
+    #[error("database {path}: {message}; nothing was written")]
+    Inconsistent { path: PathBuf, message: String },
     #[error("database {path}: migration {version} was changed after it was applied (checksum differs); restore the original migration file")]
     Altered { path: PathBuf, version: i64 },
     #[error(
