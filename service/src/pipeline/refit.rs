@@ -12,7 +12,8 @@ use std::sync::Arc;
 use std::time::Instant;
 
 use tidemark_model::{
-    sample, Controls, FitDiagnostics, Posterior, SamplerSettings, SummaryKind, WarmStart,
+    sample, Controls, FitDiagnostics, ForecastTarget, Posterior, SamplerSettings, SummaryKind,
+    WarmStart,
 };
 use tracing::{info, info_span, warn, Instrument};
 
@@ -190,59 +191,20 @@ async fn refit_series(
     opts: &RefitOptions,
 ) -> anyhow::Result<SeriesReport> {
     let started = Instant::now();
-    let watermark = store.series_watermark(&series.columns()).await?;
-    let mut report = SeriesReport {
-        series: series.name.clone(),
-        outcome: SeriesOutcome::Unchanged,
-        fit_id: None,
-        version: None,
-        message: String::new(),
-        sd_q50: Vec::new(),
-        diagnostics: None,
-        wall_seconds: 0.0,
-        warm_start_from: None,
-        n_obs: None,
-        load_seconds: 0.0,
-        fit_seconds: 0.0,
-        publish_seconds: 0.0,
-        width80: Vec::new(),
+    let mut report = SeriesReport::unchanged(&series.name);
+    let Some(watermark) = detect_change(store, series, opts).await? else {
+        report.message = "no new data since the last fit".into();
+        return Ok(report);
     };
-    if !opts.force {
-        if let Some(last) = store.latest_attempt_watermark(&series.name).await? {
-            if last >= watermark {
-                report.message = "no new data since the last fit".into();
-                return Ok(report);
-            }
-        }
-    }
-    let mut fit = NewFit {
-        series: series.name.clone(),
-        watermark,
-        run_id: opts.run_id,
-        response: Some(series.response.clone()),
-        transform: Some(series.transform.to_string()),
-        seed: Some(series.sampler.seed as i64),
-        chains: Some(series.sampler.chains as i64),
-        draws: Some(series.sampler.draws as i64),
-        ..NewFit::default()
-    };
+    let mut fit = new_fit(series, watermark, opts.run_id);
     let rows = store
         .load_series_rows(&series.response, &series.covariates, &series.groups)
         .await?;
     let built = match input::build(series, &rows) {
         Ok(b) => b,
         Err(e) => {
-            fit.status = FitStatus::Failed;
-            fit.message = Some(e.to_string());
-            fit.wall_seconds = Some(started.elapsed().as_secs_f64());
-            let recorded = store
-                .record_fit(&fit, &[], None, ForecastSet::default(), &[])
-                .await?;
-            warn!(fit_id = recorded.fit_id, "{e}");
-            report.outcome = SeriesOutcome::Failed;
-            report.fit_id = Some(recorded.fit_id);
-            report.message = e.to_string();
-            return Ok(report);
+            warn!(series = %series.name, "{e}");
+            return record_failure(store, fit, report, e.to_string(), &[], started).await;
         }
     };
     let exclusions: Vec<NewExclusion> = built
@@ -262,23 +224,119 @@ async fn refit_series(
     fit.n_years = Some(data.n_years() as i64);
     fit.data_through_year = data.year_labels().last().map(|&y| y as i64);
 
-    // Warm start from the latest published version, when its draws decode.
-    let mut warm: Option<(i64, WarmStart)> = None;
-    if !opts.cold {
-        if let Some(published) = store.latest_published(&series.name).await? {
-            if let Some((_, blob)) = store.fit_draws(published.fit_id).await? {
-                match draws::decode(&blob) {
-                    Ok(decoded) => warm = Some((published.fit_id, decoded.warm_start)),
-                    Err(e) => warn!(
-                        fit_id = published.fit_id,
-                        "cannot read the draws of the last version, starting cold: {e}"
-                    ),
-                }
+    let warm = if opts.cold {
+        None
+    } else {
+        warm_start(store, &series.name).await?
+    };
+    let sampling = Instant::now();
+    let fitted = match attempt_fits(series, opts, data, attempt_plan(series, warm)).await? {
+        Attempts::Fitted(f) => f,
+        Attempts::Failed(message) => {
+            return record_failure(store, fit, report, message, &exclusions, started).await;
+        }
+    };
+    report.fit_seconds = sampling.elapsed().as_secs_f64();
+    publish(store, series, fit, report, *fitted, &exclusions, started).await
+}
+
+impl SeriesReport {
+    fn unchanged(series: &str) -> SeriesReport {
+        SeriesReport {
+            series: series.to_string(),
+            outcome: SeriesOutcome::Unchanged,
+            fit_id: None,
+            version: None,
+            message: String::new(),
+            sd_q50: Vec::new(),
+            diagnostics: None,
+            wall_seconds: 0.0,
+            warm_start_from: None,
+            n_obs: None,
+            load_seconds: 0.0,
+            fit_seconds: 0.0,
+            publish_seconds: 0.0,
+            width80: Vec::new(),
+        }
+    }
+}
+
+/// The series' current watermark when it needs a refit (new values since the latest
+/// attempt, no attempt yet, or `--force`); `None` when nothing changed.
+async fn detect_change(
+    store: &Store,
+    series: &SeriesConfig,
+    opts: &RefitOptions,
+) -> anyhow::Result<Option<i64>> {
+    let watermark = store.series_watermark(&series.columns()).await?;
+    if !opts.force {
+        if let Some(last) = store.latest_attempt_watermark(&series.name).await? {
+            if last >= watermark {
+                return Ok(None);
             }
         }
     }
+    Ok(Some(watermark))
+}
 
-    let priors = model_priors(series);
+fn new_fit(series: &SeriesConfig, watermark: i64, run_id: Option<i64>) -> NewFit {
+    NewFit {
+        series: series.name.clone(),
+        watermark,
+        run_id,
+        response: Some(series.response.clone()),
+        transform: Some(series.transform.to_string()),
+        seed: Some(series.sampler.seed as i64),
+        chains: Some(series.sampler.chains as i64),
+        draws: Some(series.sampler.draws as i64),
+        ..NewFit::default()
+    }
+}
+
+/// Record a `failed` attempt with its reason; the previous version keeps serving.
+async fn record_failure(
+    store: &Store,
+    mut fit: NewFit,
+    mut report: SeriesReport,
+    message: String,
+    exclusions: &[NewExclusion],
+    started: Instant,
+) -> anyhow::Result<SeriesReport> {
+    fit.status = FitStatus::Failed;
+    fit.message = Some(message.clone());
+    fit.wall_seconds = Some(started.elapsed().as_secs_f64());
+    let recorded = store
+        .record_fit(&fit, &[], None, ForecastSet::default(), exclusions)
+        .await?;
+    report.outcome = SeriesOutcome::Failed;
+    report.fit_id = Some(recorded.fit_id);
+    report.message = message;
+    Ok(report)
+}
+
+/// The latest published version's fit id and warm start, when its draws decode.
+async fn warm_start(store: &Store, series: &str) -> anyhow::Result<Option<(i64, WarmStart)>> {
+    let Some(published) = store.latest_published(series).await? else {
+        return Ok(None);
+    };
+    let Some((_, blob)) = store.fit_draws(published.fit_id).await? else {
+        return Ok(None);
+    };
+    match draws::decode(&blob) {
+        Ok(decoded) => Ok(Some((published.fit_id, decoded.warm_start))),
+        Err(e) => {
+            warn!(
+                fit_id = published.fit_id,
+                "cannot read the draws of the last version, starting cold: {e}"
+            );
+            Ok(None)
+        }
+    }
+}
+
+/// The attempts against the gate, in order: warm (when there is a previous version),
+/// cold, then cold with twice the draws and warm-up.
+fn attempt_plan(series: &SeriesConfig, warm: Option<(i64, WarmStart)>) -> Vec<Attempt> {
     let base = settings(series);
     let mut attempts: Vec<Attempt> = Vec::new();
     if let Some(w) = warm {
@@ -294,9 +352,36 @@ async fn refit_series(
         },
         None,
     ));
+    attempts
+}
+
+/// The attempt that ended the sequence: the first to pass the gate, else the last.
+struct Fitted {
+    post: Posterior,
+    used: SamplerSettings,
+    /// The fit a warm start came from.
+    from: Option<i64>,
+    /// Why earlier attempts did not pass.
+    notes: Vec<String>,
+}
+
+enum Attempts {
+    Fitted(Box<Fitted>),
+    /// The sampler failed (not the gate); the message says which attempt and why.
+    Failed(String),
+}
+
+/// Run the attempts until one passes the gate. A cancelled sampler is an error (nothing
+/// is recorded); any other sampler error ends the sequence as a failed attempt.
+async fn attempt_fits(
+    series: &SeriesConfig,
+    opts: &RefitOptions,
+    data: Arc<tidemark_model::Data>,
+    attempts: Vec<Attempt>,
+) -> anyhow::Result<Attempts> {
+    let priors = model_priors(series);
     let mut notes: Vec<String> = Vec::new();
     let mut last: Option<(Posterior, SamplerSettings, Option<i64>)> = None;
-    let sampling = Instant::now();
     for (label, settings, warm) in attempts {
         let (from, warm_state) = match warm {
             Some((id, w)) => (Some(id), Some(w)),
@@ -325,16 +410,7 @@ async fn refit_series(
                         series.name
                     )));
                 }
-                fit.status = FitStatus::Failed;
-                fit.message = Some(format!("{label}: {e:#}"));
-                fit.wall_seconds = Some(started.elapsed().as_secs_f64());
-                let recorded = store
-                    .record_fit(&fit, &[], None, ForecastSet::default(), &exclusions)
-                    .await?;
-                report.outcome = SeriesOutcome::Failed;
-                report.fit_id = Some(recorded.fit_id);
-                report.message = fit.message.clone().unwrap_or_default();
-                return Ok(report);
+                return Ok(Attempts::Failed(format!("{label}: {e:#}")));
             }
         };
         let ok = passes(&post.diagnostics, series);
@@ -358,7 +434,31 @@ async fn refit_series(
     let Some((post, used, from)) = last else {
         anyhow::bail!("no fit attempt was made for series {}", series.name);
     };
-    report.fit_seconds = sampling.elapsed().as_secs_f64();
+    Ok(Attempts::Fitted(Box::new(Fitted {
+        post,
+        used,
+        from,
+        notes,
+    })))
+}
+
+/// Record the attempt that ended the sequence: a published version with its summaries,
+/// draws and forecasts, or a rejected attempt with its diagnostics.
+async fn publish(
+    store: &Store,
+    series: &SeriesConfig,
+    mut fit: NewFit,
+    mut report: SeriesReport,
+    fitted: Fitted,
+    exclusions: &[NewExclusion],
+    started: Instant,
+) -> anyhow::Result<SeriesReport> {
+    let Fitted {
+        post,
+        used,
+        from,
+        notes,
+    } = fitted;
     let publishing = Instant::now();
     let published = passes(&post.diagnostics, series);
     let d = post.diagnostics.clone();
@@ -432,7 +532,7 @@ async fn refit_series(
             &summaries,
             blob.as_deref().map(|b| (draws::FORMAT, b)),
             forecasts.set(),
-            &exclusions,
+            exclusions,
         )
         .await?;
     report.publish_seconds = publishing.elapsed().as_secs_f64();
@@ -454,20 +554,20 @@ async fn refit_series(
     report.n_obs = fit.n_obs;
     report.wall_seconds = fit.wall_seconds.unwrap_or_default();
     for target in [
-        "known_site_known_year",
-        "known_site_new_year",
-        "new_site_known_year",
-        "new_site_new_year",
+        ForecastTarget::KnownSiteKnownYear,
+        ForecastTarget::KnownSiteNewYear,
+        ForecastTarget::NewSiteKnownYear,
+        ForecastTarget::NewSiteNewYear,
     ] {
         let widths: Vec<f64> = forecasts
             .rows
             .iter()
-            .filter(|f| f.target.as_str() == target)
+            .filter(|f| f.target == target)
             .map(|f| f.q90 - f.q10)
             .collect();
         if !widths.is_empty() {
             report.width80.push((
-                target.to_string(),
+                target.as_str().to_string(),
                 widths.iter().sum::<f64>() / widths.len() as f64,
             ));
         }
