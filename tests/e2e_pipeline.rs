@@ -518,6 +518,47 @@ fn the_demo_publishes_a_version_per_season() {
             .unwrap()
             >= 5
     );
+    // The 2026 versions recover the generator's true sds. Seven 90% intervals would all
+    // hold only about half the time, so each is widened to a 99% interval: on the log
+    // scale, where an sd's posterior is close to normal, the stored 5% and 95% quantiles
+    // give its centre and spread (z 1.645 -> 2.576). All seven then hold by chance with
+    // probability above 93%, and a fit that missed a component or mislabelled one fails.
+    let truth = include_str!("../demo-feed/truth/parameters.csv");
+    let mut checked = 0;
+    for line in truth.lines().skip(1) {
+        let cells: Vec<&str> = line.split(',').collect();
+        let (series, parameter, value) = (cells[0], cells[1], cells[2]);
+        let Some(term) = parameter.strip_prefix("sd_") else {
+            continue;
+        };
+        if series == "temperature" {
+            continue;
+        }
+        let value: f64 = value.parse().unwrap();
+        let interval = query(&format!(
+            "SELECT p.q05 || ' ' || p.q95 FROM latest_fits f JOIN posterior_summary p ON p.fit_id = f.fit_id \
+             WHERE f.series = '{series}' AND f.data_through_year = 2026 AND p.kind = 'sd' AND p.term = '{term}'"
+        ));
+        let q: Vec<f64> = interval
+            .split(' ')
+            .map(|v| {
+                v.parse()
+                    .unwrap_or_else(|_| panic!("{series} {term}: {interval:?}"))
+            })
+            .collect();
+        let (lo, hi) = (q[0].ln(), q[1].ln());
+        let (centre, half) = ((lo + hi) / 2.0, (hi - lo) / 2.0 * 2.576 / 1.645);
+        let bounds = ((centre - half).exp(), (centre + half).exp());
+        assert!(
+            bounds.0 <= value && value <= bounds.1,
+            "{series} sd {term}: true {value} outside the 99% interval {bounds:?} (90%: {q:?})"
+        );
+        checked += 1;
+    }
+    assert_eq!(
+        checked, 7,
+        "residual, site and year of both series, and the crew"
+    );
 }
 
 /// `known_site_max_gap` leaves out known-site forecasts of a site no longer visited; the

@@ -116,3 +116,322 @@ pub fn simulate(spec: &NetworkSpec) -> (Data, Truth) {
         truth,
     )
 }
+
+// ---------------------------------------------------------------------------------------
+// Surveys: a network with a sampling schedule, a per-visit covariate, a grouping factor
+// (e.g. field crew) drawn per visit, and several responses on their own scales. This is
+// what the demo feed is made from, so every draw must be reproducible bit for bit on any
+// machine: normal deviates use `libm` (not the platform's maths library) and integer
+// draws use `u32` (not `usize`, whose sampling depends on the pointer width).
+
+/// When a site of a survey is in the network.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SurveySite {
+    /// First season in the network; a site is always sampled in its first season.
+    pub first_year: i32,
+    /// Last season in the network, if the site is dropped.
+    pub last_year: Option<i32>,
+    /// Seasons the site is planned not to be sampled (on top of random skips).
+    pub gaps: Vec<i32>,
+    /// `(season, visits)`: seasons with a planned number of visits (1 or 2), which
+    /// override the random skip and second visit; e.g. an intensive survey.
+    pub planned: Vec<(i32, u32)>,
+}
+
+/// A covariate recorded at each visit:
+/// `x = centre + u_year + u_site + noise`, rounded to `resolution`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct CovariateSpec {
+    pub centre: f64,
+    pub sd_year: f64,
+    pub sd_site: f64,
+    pub sd_visit: f64,
+    /// The recorded value is a multiple of this (e.g. 0.1); responses are generated from
+    /// the rounded value, so the recorded covariate is exactly the one in the model.
+    pub resolution: f64,
+    /// The covariate enters the responses as `(x - reference)`, so each intercept is the
+    /// model-scale value at the reference.
+    pub reference: f64,
+}
+
+/// The scale on which a response is Gaussian.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Scale {
+    /// The response itself.
+    Identity,
+    /// The log of the response (the written value is `exp` of the model-scale value).
+    Log,
+}
+
+/// One response of a survey, on its model scale:
+/// `z = intercept + coef·(x − reference) + a_site + b_year + c_group + e`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ResponseSpec {
+    pub scale: Scale,
+    pub intercept: f64,
+    pub coef: f64,
+    pub sd_site: f64,
+    pub sd_year: f64,
+    /// Zero: the grouping factor has no effect on this response.
+    pub sd_group: f64,
+    pub sd_residual: f64,
+}
+
+/// Shape and true parameters of a survey.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SurveySpec {
+    pub sites: Vec<SurveySite>,
+    pub first_year: i32,
+    pub last_year: i32,
+    /// Chance that an established site is not sampled in a season.
+    pub p_skip: f64,
+    /// Chance that a sampled site-season gets a second visit.
+    pub p_second_visit: f64,
+    /// Levels of the grouping factor; each visit draws one uniformly.
+    pub groups: usize,
+    pub covariate: CovariateSpec,
+    pub responses: Vec<ResponseSpec>,
+    pub seed: u64,
+}
+
+/// One generated visit.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SurveyVisit {
+    /// Index into [`SurveySpec::sites`].
+    pub site: usize,
+    pub year: i32,
+    /// 1 or 2 within the site and season.
+    pub visit: u32,
+    /// Level of the grouping factor, `0..groups`.
+    pub group: usize,
+    /// The recorded (rounded) covariate.
+    pub covariate: f64,
+    /// One value per response, on the response scale (not rounded).
+    pub values: Vec<f64>,
+}
+
+/// Realized effects of one component: by site, by season (from `first_year`), by group.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Effects {
+    pub site: Vec<f64>,
+    pub year: Vec<f64>,
+    pub group: Vec<f64>,
+}
+
+/// The realized effects behind a generated survey.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SurveyTruth {
+    /// Site and year parts of the covariate (`group` is empty).
+    pub covariate: Effects,
+    /// One per response, in the order of [`SurveySpec::responses`]; `group` is all zero
+    /// for a response with `sd_group == 0`.
+    pub responses: Vec<Effects>,
+}
+
+/// Named random streams, so that one component's draws do not shift another's.
+const STREAM_EFFECTS: u64 = 1;
+const STREAM_COVARIATE: u64 = 2;
+const STREAM_SCHEDULE: u64 = 3;
+const STREAM_VISITS: u64 = 4;
+
+fn stream(seed: u64, id: u64) -> ChaCha8Rng {
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    rng.set_stream(id);
+    rng
+}
+
+/// A standard normal deviate by the polar method, with `libm` for the logarithm so the
+/// value is the same on every platform.
+fn portable_normal(rng: &mut ChaCha8Rng) -> f64 {
+    loop {
+        let u = 2.0 * rng.gen::<f64>() - 1.0;
+        let v = 2.0 * rng.gen::<f64>() - 1.0;
+        let s = u * u + v * v;
+        if s > 0.0 && s < 1.0 {
+            return u * libm::sqrt(-2.0 * libm::log(s) / s);
+        }
+    }
+}
+
+fn round_to(x: f64, resolution: f64) -> f64 {
+    // Dividing by the resolution's reciprocal keeps e.g. 0.1 steps exact decimals
+    // (21.3, not 21.300000000000001) after the round.
+    let steps = libm::round(x / resolution);
+    let inverse = libm::round(1.0 / resolution);
+    if inverse >= 1.0 && (1.0 / inverse - resolution).abs() < 1e-12 {
+        steps / inverse
+    } else {
+        steps * resolution
+    }
+}
+
+/// Generate a survey: visits in season order, then site order, then visit number.
+///
+/// # Panics
+/// On a spec that cannot describe a survey (no seasons, no groups, negative sds,
+/// probabilities outside `[0, 1]`, a non-positive resolution, a planned season outside
+/// its site's seasons). Specs are written by
+/// programmers, not read from feeds.
+pub fn simulate_survey(spec: &SurveySpec) -> (Vec<SurveyVisit>, SurveyTruth) {
+    assert!(spec.last_year >= spec.first_year, "a survey needs a season");
+    assert!(spec.groups >= 1, "a survey needs at least one group level");
+    assert!(u32::try_from(spec.groups).is_ok(), "too many group levels");
+    assert!((0.0..=1.0).contains(&spec.p_skip) && (0.0..=1.0).contains(&spec.p_second_visit));
+    assert!(
+        spec.covariate.resolution > 0.0,
+        "resolution must be positive"
+    );
+    assert!(
+        spec.sites
+            .iter()
+            .flat_map(|s| &s.planned)
+            .all(|(_, n)| (1..=2).contains(n)),
+        "a planned season has 1 or 2 visits"
+    );
+    for site in &spec.sites {
+        for (year, _) in &site.planned {
+            assert!(
+                *year >= site.first_year
+                    && !matches!(site.last_year, Some(last) if *year > last)
+                    && !site.gaps.contains(year),
+                "a planned season {year} lies outside its site's seasons"
+            );
+        }
+    }
+    let c = &spec.covariate;
+    for sd in [c.sd_year, c.sd_site, c.sd_visit].into_iter().chain(
+        spec.responses
+            .iter()
+            .flat_map(|r| [r.sd_site, r.sd_year, r.sd_group, r.sd_residual]),
+    ) {
+        assert!(
+            sd >= 0.0 && sd.is_finite(),
+            "sds must be finite and non-negative"
+        );
+    }
+    let n_years = (spec.last_year - spec.first_year + 1) as usize;
+    let n_sites = spec.sites.len();
+
+    let mut rng = stream(spec.seed, STREAM_EFFECTS);
+    let draw = |n: usize, sd: f64, rng: &mut ChaCha8Rng| -> Vec<f64> {
+        (0..n).map(|_| sd * portable_normal(rng)).collect()
+    };
+    let responses: Vec<Effects> = spec
+        .responses
+        .iter()
+        .map(|r| Effects {
+            site: draw(n_sites, r.sd_site, &mut rng),
+            year: draw(n_years, r.sd_year, &mut rng),
+            group: draw(spec.groups, r.sd_group, &mut rng),
+        })
+        .collect();
+    let mut rng = stream(spec.seed, STREAM_COVARIATE);
+    let covariate = Effects {
+        year: draw(n_years, c.sd_year, &mut rng),
+        site: draw(n_sites, c.sd_site, &mut rng),
+        group: Vec::new(),
+    };
+
+    let mut schedule = stream(spec.seed, STREAM_SCHEDULE);
+    let mut rng = stream(spec.seed, STREAM_VISITS);
+    let mut visits = Vec::new();
+    for (t, year) in (spec.first_year..=spec.last_year).enumerate() {
+        for (s, site) in spec.sites.iter().enumerate() {
+            let active =
+                year >= site.first_year && !matches!(site.last_year, Some(last) if year > last);
+            if !active || site.gaps.contains(&year) {
+                continue;
+            }
+            // Both draws are made for every active site-season, so a change of p_skip
+            // does not shift which site-seasons get a second visit.
+            let skip = schedule.gen::<f64>() < spec.p_skip;
+            let second = schedule.gen::<f64>() < spec.p_second_visit;
+            let n = match site.planned.iter().find(|(y, _)| *y == year) {
+                Some((_, n)) => *n,
+                None if year > site.first_year && skip => continue,
+                None => 1 + u32::from(second),
+            };
+            for visit in 1..=n {
+                let group = rng.gen_range(0..spec.groups as u32) as usize;
+                let x = round_to(
+                    c.centre
+                        + covariate.year[t]
+                        + covariate.site[s]
+                        + c.sd_visit * portable_normal(&mut rng),
+                    c.resolution,
+                );
+                let values = spec
+                    .responses
+                    .iter()
+                    .zip(&responses)
+                    .map(|(r, e)| {
+                        let z = r.intercept
+                            + r.coef * (x - c.reference)
+                            + e.site[s]
+                            + e.year[t]
+                            + e.group[group]
+                            + r.sd_residual * portable_normal(&mut rng);
+                        match r.scale {
+                            Scale::Identity => z,
+                            Scale::Log => libm::exp(z),
+                        }
+                    })
+                    .collect();
+                visits.push(SurveyVisit {
+                    site: s,
+                    year,
+                    visit,
+                    group,
+                    covariate: x,
+                    values,
+                });
+            }
+        }
+    }
+    (
+        visits,
+        SurveyTruth {
+            covariate,
+            responses,
+        },
+    )
+}
+
+/// Group label used by [`survey_data`].
+pub fn group_label(g: usize) -> String {
+    format!("G{g:02}")
+}
+
+/// One response of a survey as a [`Data`] set on its model scale, with the covariate
+/// entered as `(x − reference)` and, when the response has a group effect, the grouping
+/// factor named `group`.
+pub fn survey_data(
+    spec: &SurveySpec,
+    visits: &[SurveyVisit],
+    response: usize,
+) -> Result<Data, crate::ModelError> {
+    let r = &spec.responses[response];
+    let grouped = r.sd_group > 0.0;
+    let groups = if grouped {
+        vec!["group".to_string()]
+    } else {
+        vec![]
+    };
+    let mut b = DataBuilder::new(vec!["x".to_string()], groups);
+    for v in visits {
+        let label = group_label(v.group);
+        let g: &[&str] = if grouped { &[&label] } else { &[] };
+        let z = match r.scale {
+            Scale::Identity => v.values[response],
+            Scale::Log => libm::log(v.values[response]),
+        };
+        b.push(
+            &site_label(v.site),
+            v.year,
+            g,
+            &[v.covariate - spec.covariate.reference],
+            z,
+        )?;
+    }
+    b.build()
+}

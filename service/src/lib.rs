@@ -20,6 +20,7 @@
 pub mod cli;
 pub mod commands;
 pub mod config;
+pub mod demo_feed;
 pub mod drift;
 pub mod ingest;
 pub mod lease;
