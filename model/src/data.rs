@@ -40,7 +40,7 @@ pub struct Data {
 }
 
 /// Below this many levels a variance is weakly identified (common practice: 5).
-pub const FEW_LEVELS: usize = 5;
+pub(crate) const FEW_LEVELS: usize = 5;
 
 impl DataBuilder {
     /// Start a data set with the given covariate and further grouping-factor names.

@@ -27,7 +27,7 @@ mod priors;
 mod reml;
 mod stats;
 
-pub use data::{Data, DataBuilder, FEW_LEVELS};
+pub use data::{Data, DataBuilder};
 pub use error::ModelError;
 pub use priors::{NormalPrior, Priors, ResolvedPriors, SdPrior};
 pub use reml::{fit_point, CoefEstimate, Method, PointFit};
@@ -45,8 +45,7 @@ pub use sampler::{Controls, Progress, SamplerSettings, WarmStart};
 mod forecast;
 pub mod simulate;
 pub use forecast::{
-    forecast, forecast_baseline, mixture_quantile, ForecastBasis, ForecastRow, ForecastTarget,
-    Scenario, Transform,
+    forecast, forecast_baseline, ForecastBasis, ForecastRow, ForecastTarget, Scenario, Transform,
 };
 pub mod calibration;
 pub mod sbc;
