@@ -1,4 +1,5 @@
-//! Benchmarks of the model engine on generated networks (DESIGN §5, issue B1–B3).
+//! Benchmarks of the model engine on generated networks B1–B3 (docs/architecture.md,
+//! "Contracts with outside readers"; figures in docs/benchmarks.md).
 //!
 //! `cargo bench -p tidemark-model --bench networks -- [b1] [b2] [b3] [reml]` (all when none
 //! is named). Figures are wall-clock on this machine; peak memory is the process's

@@ -1,4 +1,4 @@
-//! Posterior predictive forecasts for the four targets of DESIGN §3.
+//! Posterior predictive forecasts for the four targets of README.md "Forecast targets".
 //!
 //! For each saved effect draw `d`, a target's predictive distribution on the model scale
 //! is `N(m_d, v_d)`: `m_d` holds the parts the target knows (intercept and covariates,

@@ -1,7 +1,8 @@
 //! # tidemark-model
 //!
 //! Pure computation for the crossed random-effects model of a monitoring network
-//! (DESIGN §3): `y = x'beta + a_site + b_year + c_group + e`, Gaussian on the model scale.
+//! (docs/architecture.md, "Model"): `y = x'beta + a_site + b_year + c_group + e`,
+//! Gaussian on the model scale.
 //! No I/O, no async, no global state; deterministic for a given seed.
 //!
 //! ```
