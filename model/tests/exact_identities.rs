@@ -9,7 +9,6 @@ fn small_spec() -> NetworkSpec {
     NetworkSpec {
         sites: 9,
         years: 6,
-        visits: 2,
         missing: 0.25,
         covariates: 1,
         seed: 11,
