@@ -3,39 +3,19 @@
 
 mod common;
 
-use common::{Network, Value};
+use common::{ConfigBuilder, Network, Sampler, Value, CHLOROPHYLL};
 use tidemark_model::simulate::{simulate_rows, NetworkSpec};
 
 /// One series on the log scale with a covariate; a small sampler for speed.
 fn config(max_rhat: f64) -> String {
-    format!(
-        r#"
-[store]
-database = "tidemark.db"
-
-[feed]
-inbox = "inbox"
-archive = "archive"
-quarantine = "quarantine"
-
-[[series]]
-name = "chlorophyll"
-response = "chl_ug_l"
-transform = "log"
-site = "lake"
-year = "season"
-visit = "visit"
-covariates = ["surface_temp_c"]
-
-[series.sampler]
-chains = 4
-draws = 500
-warmup = 300
-seed = 3
-max_rhat = {max_rhat}
-min_ess = 200
-"#
-    )
+    ConfigBuilder::new()
+        .series(CHLOROPHYLL)
+        .sampler(Sampler {
+            seed: 3,
+            max_rhat,
+            ..Default::default()
+        })
+        .build()
 }
 
 const AWKWARD: &str = "S6';DROP TABLE fits;--";
@@ -46,16 +26,15 @@ fn feed(years: std::ops::Range<i32>) -> String {
     let spec = NetworkSpec {
         sites: 15,
         years: 8,
-        visits: 2,
         missing: 0.1,
         covariates: 1,
-        sd_residual: 0.3,
         sd_site: 0.5,
         sd_year: 0.3,
         intercept: 1.0,
         coef: 0.05,
         first_year: 2015,
         seed: 21,
+        ..Default::default()
     };
     let (rows, _) = simulate_rows(&spec);
     let mut out = String::from("lake,season,visit,surface_temp_c,chl_ug_l\n");

@@ -8,33 +8,16 @@ use std::path::Path;
 use std::process::Command;
 use std::time::{Duration, Instant};
 
-use common::Network;
+use common::{ConfigBuilder, Network, Sampler, PHOSPHORUS};
 use tidemark_model::simulate::{simulate_rows, NetworkSpec};
 
-const CONFIG: &str = r#"
-[store]
-database = "tidemark.db"
-
-[feed]
-inbox = "inbox"
-archive = "archive"
-quarantine = "quarantine"
-
-[[series]]
-name = "phosphorus"
-response = "tp_ug_l"
-site = "lake"
-year = "season"
-visit = "visit"
-
-[series.sampler]
-chains = 4
-draws = 500
-warmup = 300
-seed = 5
-max_rhat = 1.05
-min_ess = 200
-"#;
+/// One series as measured; the small default sampler.
+fn config() -> String {
+    ConfigBuilder::new()
+        .series(PHOSPHORUS)
+        .sampler(Sampler::default())
+        .build()
+}
 
 /// Site codes that must reach the page verbatim and harmless.
 const SQL_CODE: &str = "S6';DROP TABLE fits;--";
@@ -73,16 +56,15 @@ fn base() -> NetworkSpec {
     NetworkSpec {
         sites: 15,
         years: 8,
-        visits: 2,
         missing: 0.1,
         covariates: 0,
-        sd_residual: 0.3,
         sd_site: 0.4,
         sd_year: 0.3,
         intercept: 20.0,
         coef: 0.0,
         first_year: 2015,
         seed: 31,
+        ..Default::default()
     }
 }
 
@@ -90,7 +72,7 @@ fn base() -> NetworkSpec {
 /// network (the partition holds); then 30 new lakes whose site-to-site spread is ten
 /// times larger (the partition moves: sd site must jump).
 fn three_deliveries() -> Network {
-    let net = Network::with_config(CONFIG);
+    let net = Network::with_config(&config());
     net.ok(&["init"]);
     net.drop_file("a-2015-2020.csv", feed(&base(), "Lake", 2015..2021));
     net.ok(&["run-once"]);
@@ -383,7 +365,7 @@ fn the_report_renders_in_headless_chromium() {
         ] {
             std::fs::copy(from, keep.join(name)).unwrap();
         }
-        std::fs::write(keep.join("tidemark.toml"), CONFIG).unwrap();
+        std::fs::write(keep.join("tidemark.toml"), config()).unwrap();
     }
 
     let decoder = png::Decoder::new(std::fs::File::open(&png_path).expect("screenshot written"));

@@ -8,45 +8,24 @@ use std::collections::BTreeSet;
 use std::process::Child;
 use std::time::{Duration, Instant};
 
-use common::{dead_pid, host_name, spawn_logged, wait_until, Network};
+use common::{
+    dead_pid, host_name, spawn_logged, wait_until, ConfigBuilder, Network, Sampler, CHLOROPHYLL,
+};
 use rand::{Rng, SeedableRng};
 use tidemark_model::simulate::{simulate_rows, NetworkSpec};
 
 /// One series; a small sampler and an easy gate, so every completed run publishes.
 fn config(cron: &str, extra_schedule: &str, draws: u32) -> String {
-    format!(
-        r#"
-[store]
-database = "tidemark.db"
-
-[feed]
-inbox = "inbox"
-archive = "archive"
-quarantine = "quarantine"
-
-[schedule]
-cron = "{cron}"
-timezone = "Europe/Helsinki"
-{extra_schedule}
-
-[[series]]
-name = "chlorophyll"
-response = "chl_ug_l"
-transform = "log"
-site = "lake"
-year = "season"
-visit = "visit"
-covariates = ["surface_temp_c"]
-
-[series.sampler]
-chains = 4
-draws = {draws}
-warmup = 300
-seed = 5
-max_rhat = 1.2
-min_ess = 50
-"#
-    )
+    ConfigBuilder::new()
+        .schedule(cron, "Europe/Helsinki", extra_schedule)
+        .series(CHLOROPHYLL)
+        .sampler(Sampler {
+            draws,
+            max_rhat: 1.2,
+            min_ess: 50,
+            ..Default::default()
+        })
+        .build()
 }
 
 /// Invented test data: a generated network as feed rows (lake, season, visit, temp, chl).
@@ -54,16 +33,15 @@ fn network_rows(sites: usize, years: usize) -> Vec<(String, i32, u32, f64, f64)>
     let spec = NetworkSpec {
         sites,
         years,
-        visits: 2,
         missing: 0.1,
         covariates: 1,
-        sd_residual: 0.3,
         sd_site: 0.5,
         sd_year: 0.3,
         intercept: 1.0,
         coef: 0.05,
         first_year: 2001,
         seed: 17,
+        ..Default::default()
     };
     let (rows, _) = simulate_rows(&spec);
     let mut visit = std::collections::HashMap::new();

@@ -1,4 +1,5 @@
-//! Benchmarks of the model engine on generated networks (DESIGN §5, issue B1–B3).
+//! Benchmarks of the model engine on generated networks B1–B3 (docs/architecture.md,
+//! "Contracts with outside readers"; figures in docs/benchmarks.md).
 //!
 //! `cargo bench -p tidemark-model --bench networks -- [b1] [b2] [b3] [reml]` (all when none
 //! is named). Figures are wall-clock on this machine; peak memory is the process's
@@ -50,15 +51,9 @@ fn describe(label: &str, post: &Posterior, secs: f64) {
     );
 }
 
+/// B1 is the default network: 200 sites x 20 years x 2 visits, 15% missing, 2 covariates.
 fn b1_spec() -> NetworkSpec {
-    NetworkSpec {
-        sites: 200,
-        years: 20,
-        visits: 2,
-        missing: 0.15,
-        covariates: 2,
-        ..Default::default()
-    }
+    NetworkSpec::default()
 }
 
 fn b1() {
@@ -132,7 +127,6 @@ fn b3() {
     let spec = NetworkSpec {
         sites: 20_000,
         years: 26,
-        visits: 2,
         missing: 0.4,
         ..Default::default()
     };

@@ -1,10 +1,11 @@
 //! Observations of one series, indexed by site, year and further grouping factors.
 //!
 //! `DataBuilder` takes rows with their labels as the store holds them; `build` checks the
-//! guards of DESIGN §3 (empty data, non-finite values, a constant response, constant or
-//! collinear covariates, factors with too few or unreplicated levels) and turns labels
-//! into dense level indices. Labels are sorted (sites as text, years as numbers) so that a
-//! fit does not depend on the order in which rows arrive.
+//! guards of README.md ("What Tidemark fits", Guards): empty data, non-finite values, a
+//! constant response, constant or collinear covariates, factors with too few or
+//! unreplicated levels; and it turns labels into dense level indices. Labels are sorted
+//! (sites as text, years as numbers) so that a fit does not depend on the order in which
+//! rows arrive.
 
 use crate::error::ModelError;
 use std::collections::BTreeMap;
@@ -40,7 +41,7 @@ pub struct Data {
 }
 
 /// Below this many levels a variance is weakly identified (common practice: 5).
-pub const FEW_LEVELS: usize = 5;
+pub(crate) const FEW_LEVELS: usize = 5;
 
 impl DataBuilder {
     /// Start a data set with the given covariate and further grouping-factor names.

@@ -1,4 +1,4 @@
-//! Posterior predictive forecasts for the four targets of DESIGN §3.
+//! Posterior predictive forecasts for the four targets of README.md "Forecast targets".
 //!
 //! For each saved effect draw `d`, a target's predictive distribution on the model scale
 //! is `N(m_d, v_d)`: `m_d` holds the parts the target knows (intercept and covariates,
@@ -163,7 +163,7 @@ fn norm_pdf(z: f64) -> f64 {
 }
 
 /// Quantile `p` of the equal-weight mixture of `N(means[d], sds[d]^2)`.
-pub fn mixture_quantile(means: &[f64], sds: &[f64], p: f64) -> f64 {
+pub(crate) fn mixture_quantile(means: &[f64], sds: &[f64], p: f64) -> f64 {
     let n = means.len() as f64;
     let cdf_pdf = |z: f64| -> (f64, f64) {
         let mut f = 0.0;

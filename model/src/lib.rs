@@ -1,7 +1,8 @@
 //! # tidemark-model
 //!
 //! Pure computation for the crossed random-effects model of a monitoring network
-//! (DESIGN §3): `y = x'beta + a_site + b_year + c_group + e`, Gaussian on the model scale.
+//! (docs/architecture.md, "Model"): `y = x'beta + a_site + b_year + c_group + e`,
+//! Gaussian on the model scale.
 //! No I/O, no async, no global state; deterministic for a given seed.
 //!
 //! ```
@@ -27,7 +28,7 @@ mod priors;
 mod reml;
 mod stats;
 
-pub use data::{Data, DataBuilder, FEW_LEVELS};
+pub use data::{Data, DataBuilder};
 pub use error::ModelError;
 pub use priors::{NormalPrior, Priors, ResolvedPriors, SdPrior};
 pub use reml::{fit_point, CoefEstimate, Method, PointFit};
@@ -45,8 +46,7 @@ pub use sampler::{Controls, Progress, SamplerSettings, WarmStart};
 mod forecast;
 pub mod simulate;
 pub use forecast::{
-    forecast, forecast_baseline, mixture_quantile, ForecastBasis, ForecastRow, ForecastTarget,
-    Scenario, Transform,
+    forecast, forecast_baseline, ForecastBasis, ForecastRow, ForecastTarget, Scenario, Transform,
 };
 pub mod calibration;
 pub mod sbc;

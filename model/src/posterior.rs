@@ -229,14 +229,7 @@ pub fn sample(
     let sd_names = data.sd_names();
     let m = sd_names.len();
     let resolved = priors.resolve(&sd_names, &data.covariate_names, stats.y_mean, stats.y_sd)?;
-    let mut beta_prior = BetaPrior {
-        mean: vec![resolved.intercept.mean - stats.y_mean],
-        prec: vec![1.0 / resolved.intercept.sd.powi(2)],
-    };
-    for (_, p) in &resolved.coefficients {
-        beta_prior.mean.push(p.mean);
-        beta_prior.prec.push(1.0 / p.sd.powi(2));
-    }
+    let beta_prior = beta_prior(&resolved, &stats);
     let target = Target {
         stats: &stats,
         sd_priors: resolved.sd.iter().map(|(_, p)| *p).collect(),
@@ -308,18 +301,28 @@ pub fn sample(
             .collect::<Result<Vec<_>, _>>()
     })?;
 
-    let warmup = starts[0].warmup;
-    Ok(assemble(
-        data,
-        &stats,
-        settings,
-        resolved,
+    let run = ChainRun {
         outputs,
-        warmup,
-        warm.is_some(),
-        warnings,
-        &pool,
+        warmup: starts[0].warmup,
+        warm_started: warm.is_some(),
+    };
+    Ok(assemble(
+        data, &stats, settings, resolved, run, warnings, &pool,
     ))
+}
+
+/// The coefficients' normal priors as means and precisions; the intercept's mean is moved
+/// by the response mean because the chains work on the centred response.
+fn beta_prior(resolved: &ResolvedPriors, stats: &SuffStats) -> BetaPrior {
+    let mut prior = BetaPrior {
+        mean: vec![resolved.intercept.mean - stats.y_mean],
+        prec: vec![1.0 / resolved.intercept.sd.powi(2)],
+    };
+    for (_, p) in &resolved.coefficients {
+        prior.mean.push(p.mean);
+        prior.prec.push(1.0 / p.sd.powi(2));
+    }
+    prior
 }
 
 /// Mode and curvature of the log posterior of the log standard deviations.
@@ -397,39 +400,96 @@ fn summarise(
     }
 }
 
-#[allow(clippy::too_many_arguments)]
+/// The chains' output and how they were started.
+struct ChainRun {
+    outputs: Vec<ChainOutput>,
+    warmup: usize,
+    warm_started: bool,
+}
+
+/// The posterior from the chains' output: saved draws, effect draws, summaries with their
+/// diagnostics, and the warm start for the next version.
 fn assemble(
     data: &Data,
     stats: &SuffStats,
     settings: &SamplerSettings,
     priors: ResolvedPriors,
-    outputs: Vec<ChainOutput>,
-    warmup: usize,
-    warm_started: bool,
+    run: ChainRun,
     warnings: Vec<String>,
     pool: &rayon::ThreadPool,
 ) -> Posterior {
     let sd_names = data.sd_names();
-    let m = sd_names.len();
-    let lay = &stats.layout;
-    let p = lay.p;
-    let chains = outputs.len();
-    let draws = settings.draws;
     let mut coef_names = vec!["intercept".to_string()];
     coef_names.extend(data.covariate_names.iter().cloned());
+    let chains = run.outputs.len();
+    let draws = settings.draws;
 
-    let mut sd_draws = Vec::with_capacity(chains * draws * m);
-    let mut coef_draws = Vec::with_capacity(chains * draws * p);
-    for out in &outputs {
+    let (sd_draws, coef_draws) = saved_draws(&run.outputs, stats, draws);
+    let effects = effect_draws(&run.outputs, stats, sd_names.len(), draws, &coef_draws);
+    let saved = SavedDraws {
+        chains,
+        draws,
+        m: sd_names.len(),
+        p: coef_names.len(),
+        sd: &sd_draws,
+        coef: &coef_draws,
+        effects: &effects,
+    };
+    let summaries = summarise_all(&saved, summary_rows(data, &sd_names, &coef_names), pool);
+    let diagnostics = fit_diagnostics(&summaries, &run, settings.steps_per_draw);
+    let warm_start = WarmStart::from_draws(&sd_names, chains, draws, &sd_draws);
+
+    Posterior {
+        sd_names,
+        coef_names,
+        site_labels: data.site_labels.clone(),
+        year_labels: data.year_labels.clone(),
+        group_names: data.group_names.clone(),
+        group_labels: data.group_labels.clone(),
+        covariate_means: data.covariate_means(),
+        site_last_year: data.site_last_year(),
+        n_obs: data.n_obs(),
+        chains,
+        draws,
+        sd_draws,
+        coef_draws,
+        effects,
+        summaries,
+        diagnostics,
+        priors,
+        warm_start,
+        warnings,
+    }
+}
+
+/// Every saved draw, chain after chain: the standard deviations as sampled, and the
+/// coefficients moved from the standardised scale the chains use to original units.
+fn saved_draws(outputs: &[ChainOutput], stats: &SuffStats, draws: usize) -> (Vec<f64>, Vec<f64>) {
+    let p = stats.layout.p;
+    let mut sd_draws = Vec::with_capacity(outputs.iter().map(|o| o.sd.len()).sum());
+    let mut coef_draws = Vec::with_capacity(outputs.len() * draws * p);
+    for out in outputs {
         sd_draws.extend_from_slice(&out.sd);
         for d in 0..draws {
             coef_draws.extend(stats.coef_to_original(&out.beta_std[d * p..(d + 1) * p]));
         }
     }
+    (sd_draws, coef_draws)
+}
 
-    // Effect draws, chain after chain.
+/// The thinned effect draws of all chains, turned level-major (see [`EffectDraws`]), with
+/// the standard deviations and coefficients of the same draws beside them.
+fn effect_draws(
+    outputs: &[ChainOutput],
+    stats: &SuffStats,
+    m: usize,
+    draws: usize,
+    coef_draws: &[f64],
+) -> EffectDraws {
+    let lay = &stats.layout;
+    let p = lay.p;
     let per_chain = outputs[0].effect_index.len();
-    let n_eff = per_chain * chains;
+    let n_eff = per_chain * outputs.len();
     let n_sites = stats.n_sites;
     let mut effects = EffectDraws {
         n: n_eff,
@@ -471,125 +531,164 @@ fn assemble(
             effects.draw_index.push(c * draws + d);
         }
     }
+    effects
+}
 
-    // Per-chain series of every saved quantity, then summaries in parallel.
-    enum Source {
-        Sd(usize),
-        Share(usize),
-        Coef(usize),
-        Site(usize),
-        Year(usize),
-        Group(usize, usize),
-    }
-    let mut jobs: Vec<(SummaryKind, String, Option<String>, Source)> = Vec::new();
+/// Where the draws of one summarised quantity are read from.
+enum Source {
+    Sd(usize),
+    /// Variance share of a component: its variance over the sum of all variances.
+    Share(usize),
+    Coef(usize),
+    Site(usize),
+    Year(usize),
+    Group(usize, usize),
+}
+
+/// One row of the summary table, before its numbers are known.
+struct SummaryRow {
+    kind: SummaryKind,
+    term: String,
+    level: Option<String>,
+    source: Source,
+}
+
+/// The rows of the summary table in their stored order: standard deviations, shares,
+/// coefficients, then site, year and group effects level by level.
+fn summary_rows(data: &Data, sd_names: &[String], coef_names: &[String]) -> Vec<SummaryRow> {
+    let row = |kind, term: &str, level: Option<String>, source| SummaryRow {
+        kind,
+        term: term.to_string(),
+        level,
+        source,
+    };
+    let mut rows = Vec::new();
     for (k, name) in sd_names.iter().enumerate() {
-        jobs.push((SummaryKind::Sd, name.clone(), None, Source::Sd(k)));
+        rows.push(row(SummaryKind::Sd, name, None, Source::Sd(k)));
     }
     for (k, name) in sd_names.iter().enumerate() {
-        jobs.push((SummaryKind::Share, name.clone(), None, Source::Share(k)));
+        rows.push(row(SummaryKind::Share, name, None, Source::Share(k)));
     }
     for (j, name) in coef_names.iter().enumerate() {
-        jobs.push((SummaryKind::Coef, name.clone(), None, Source::Coef(j)));
+        rows.push(row(SummaryKind::Coef, name, None, Source::Coef(j)));
     }
     for (s, label) in data.site_labels.iter().enumerate() {
-        jobs.push((
+        rows.push(row(
             SummaryKind::Effect,
-            "site".into(),
+            "site",
             Some(label.clone()),
             Source::Site(s),
         ));
     }
     for (t, label) in data.year_labels.iter().enumerate() {
-        jobs.push((
+        rows.push(row(
             SummaryKind::Effect,
-            "year".into(),
+            "year",
             Some(label.to_string()),
             Source::Year(t),
         ));
     }
     for (k, name) in data.group_names.iter().enumerate() {
         for (l, label) in data.group_labels[k].iter().enumerate() {
-            jobs.push((
+            rows.push(row(
                 SummaryKind::Effect,
-                name.clone(),
+                name,
                 Some(label.clone()),
                 Source::Group(k, l),
             ));
         }
     }
-    let series = |source: &Source| -> Vec<Vec<f64>> {
+    rows
+}
+
+/// The draws of a posterior being assembled, read one quantity at a time.
+struct SavedDraws<'a> {
+    chains: usize,
+    draws: usize,
+    m: usize,
+    p: usize,
+    /// `chains x draws x m`, chain-major.
+    sd: &'a [f64],
+    /// `chains x draws x p`, original units.
+    coef: &'a [f64],
+    effects: &'a EffectDraws,
+}
+
+impl SavedDraws<'_> {
+    /// The draws of one quantity, one vector per chain.
+    fn per_chain(&self, source: &Source) -> Vec<Vec<f64>> {
+        let (chains, draws, m, p) = (self.chains, self.draws, self.m, self.p);
+        let saved = |value: &dyn Fn(usize) -> f64| -> Vec<Vec<f64>> {
+            (0..chains)
+                .map(|c| (0..draws).map(|d| value(c * draws + d)).collect())
+                .collect()
+        };
+        let thinned = |levels: &[f64], l: usize| -> Vec<Vec<f64>> {
+            let n = self.effects.n;
+            levels[l * n..(l + 1) * n]
+                .chunks(self.effects.per_chain)
+                .map(|c| c.to_vec())
+                .collect()
+        };
         match *source {
-            Source::Sd(k) => (0..chains)
-                .map(|c| {
-                    (0..draws)
-                        .map(|d| sd_draws[(c * draws + d) * m + k])
-                        .collect()
-                })
-                .collect(),
-            Source::Share(k) => (0..chains)
-                .map(|c| {
-                    (0..draws)
-                        .map(|d| {
-                            let row = &sd_draws[(c * draws + d) * m..(c * draws + d + 1) * m];
-                            row[k] * row[k] / row.iter().map(|s| s * s).sum::<f64>()
-                        })
-                        .collect()
-                })
-                .collect(),
-            Source::Coef(j) => (0..chains)
-                .map(|c| {
-                    (0..draws)
-                        .map(|d| coef_draws[(c * draws + d) * p + j])
-                        .collect()
-                })
-                .collect(),
-            Source::Site(s) => effects.site[s * n_eff..(s + 1) * n_eff]
-                .chunks(per_chain)
-                .map(|c| c.to_vec())
-                .collect(),
-            Source::Year(t) => effects.year[t * n_eff..(t + 1) * n_eff]
-                .chunks(per_chain)
-                .map(|c| c.to_vec())
-                .collect(),
-            Source::Group(k, l) => effects.groups[k][l * n_eff..(l + 1) * n_eff]
-                .chunks(per_chain)
-                .map(|c| c.to_vec())
-                .collect(),
+            Source::Sd(k) => saved(&|i| self.sd[i * m + k]),
+            Source::Share(k) => saved(&|i| {
+                let row = &self.sd[i * m..(i + 1) * m];
+                row[k] * row[k] / row.iter().map(|s| s * s).sum::<f64>()
+            }),
+            Source::Coef(j) => saved(&|i| self.coef[i * p + j]),
+            Source::Site(s) => thinned(&self.effects.site, s),
+            Source::Year(t) => thinned(&self.effects.year, t),
+            Source::Group(k, l) => thinned(&self.effects.groups[k], l),
         }
-    };
-    let draws_table = ZTable::new(2 * (draws / 2) * chains);
-    let effects_table = ZTable::new(2 * (per_chain / 2) * chains);
-    let summaries: Vec<Summary> = pool.install(|| {
-        jobs.par_iter()
-            .map(|(kind, term, level, source)| {
-                let table = if *kind == SummaryKind::Effect {
+    }
+}
+
+/// Summaries of every row, in parallel on the fit's worker threads.
+fn summarise_all(
+    saved: &SavedDraws,
+    rows: Vec<SummaryRow>,
+    pool: &rayon::ThreadPool,
+) -> Vec<Summary> {
+    // One normal-quantile table per split-chain length, shared by all rows of that length.
+    let draws_table = ZTable::new(2 * (saved.draws / 2) * saved.chains);
+    let effects_table = ZTable::new(2 * (saved.effects.per_chain / 2) * saved.chains);
+    pool.install(|| {
+        rows.into_par_iter()
+            .map(|row| {
+                let table = if row.kind == SummaryKind::Effect {
                     &effects_table
                 } else {
                     &draws_table
                 };
-                summarise(*kind, term, level.clone(), &series(source), table)
+                let chains = saved.per_chain(&row.source);
+                summarise(row.kind, &row.term, row.level, &chains, table)
             })
             .collect()
-    });
+    })
+}
 
-    let gated = summaries.iter().filter(|s| s.kind != SummaryKind::Effect);
-    let worst = |f: fn(&Summary) -> f64, max: bool| {
-        let vals = gated.clone().map(f).map(|v| {
-            if v.is_nan() {
-                if max {
-                    f64::INFINITY
-                } else {
-                    0.0
-                }
-            } else {
-                v
-            }
-        });
-        if max {
-            vals.fold(f64::NEG_INFINITY, f64::max)
-        } else {
-            vals.fold(f64::INFINITY, f64::min)
-        }
+/// The gate's figures (worst R-hat and ESS over every quantity but the random effects)
+/// and the cost of the run.
+fn fit_diagnostics(summaries: &[Summary], run: &ChainRun, steps_per_draw: usize) -> FitDiagnostics {
+    let gated: Vec<&Summary> = summaries
+        .iter()
+        .filter(|s| s.kind != SummaryKind::Effect)
+        .collect();
+    // An undefined figure counts as the worst possible, so that it cannot pass the gate.
+    let max_of = |f: fn(&Summary) -> f64| {
+        gated
+            .iter()
+            .map(|s| f(s))
+            .map(|v| if v.is_nan() { f64::INFINITY } else { v })
+            .fold(f64::NEG_INFINITY, f64::max)
+    };
+    let min_of = |f: fn(&Summary) -> f64| {
+        gated
+            .iter()
+            .map(|s| f(s))
+            .map(|v| if v.is_nan() { 0.0 } else { v })
+            .fold(f64::INFINITY, f64::min)
     };
     let max_rhat_effects = summaries
         .iter()
@@ -597,42 +696,19 @@ fn assemble(
         .map(|s| s.rhat)
         .filter(|r| r.is_finite())
         .fold(1.0, f64::max);
-    let (accepted, proposed) = outputs
+    let (accepted, proposed) = run
+        .outputs
         .iter()
         .fold((0, 0), |(a, p), o| (a + o.accepted, p + o.proposed));
-    let diagnostics = FitDiagnostics {
-        max_rhat: worst(|s| s.rhat, true),
-        min_ess_bulk: worst(|s| s.ess_bulk, false),
-        min_ess_tail: worst(|s| s.ess_tail, false),
+    FitDiagnostics {
+        max_rhat: max_of(|s| s.rhat),
+        min_ess_bulk: min_of(|s| s.ess_bulk),
+        min_ess_tail: min_of(|s| s.ess_tail),
         max_rhat_effects,
         acceptance_rate: accepted as f64 / proposed.max(1) as f64,
-        warmup,
-        warm_started,
-        steps_per_draw: settings.steps_per_draw,
-    };
-
-    let warm_start = WarmStart::from_draws(&sd_names, chains, draws, &sd_draws);
-
-    Posterior {
-        sd_names,
-        coef_names,
-        site_labels: data.site_labels.clone(),
-        year_labels: data.year_labels.clone(),
-        group_names: data.group_names.clone(),
-        group_labels: data.group_labels.clone(),
-        covariate_means: data.covariate_means(),
-        site_last_year: data.site_last_year(),
-        n_obs: data.n_obs(),
-        chains,
-        draws,
-        sd_draws,
-        coef_draws,
-        effects,
-        summaries,
-        diagnostics,
-        priors,
-        warm_start,
-        warnings,
+        warmup: run.warmup,
+        warm_started: run.warm_started,
+        steps_per_draw,
     }
 }
 
@@ -661,14 +737,7 @@ pub fn location_conditional(
         )));
     }
     let resolved = priors.resolve(&sd_names, &data.covariate_names, stats.y_mean, stats.y_sd)?;
-    let mut beta_prior = BetaPrior {
-        mean: vec![resolved.intercept.mean - stats.y_mean],
-        prec: vec![1.0 / resolved.intercept.sd.powi(2)],
-    };
-    for (_, p) in &resolved.coefficients {
-        beta_prior.mean.push(p.mean);
-        beta_prior.prec.push(1.0 / p.sd.powi(2));
-    }
+    let beta_prior = beta_prior(&resolved, &stats);
     let fac =
         crate::marginal::Factorised::new(&stats, sds, Some(&beta_prior)).ok_or_else(|| {
             ModelError::Numerical("conditional precision not positive definite".into())

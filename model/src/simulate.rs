@@ -25,6 +25,11 @@ pub struct NetworkSpec {
     pub seed: u64,
 }
 
+/// The benchmark network B1 (`model/benches/networks.rs`): 200 sites x 20 years from 2000,
+/// two visits per observed site-year, 15% of site-years unobserved, two covariates with
+/// coefficient 0.1, intercept 2, and sds 0.3 (residual), 0.6 (site), 0.4 (year) — sites
+/// vary more than years, as in many monitoring networks. Tests override what they need,
+/// usually the size and the seed.
 impl Default for NetworkSpec {
     fn default() -> Self {
         NetworkSpec {

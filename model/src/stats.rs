@@ -1,9 +1,10 @@
 //! Sufficient statistics of the crossed model, built in one pass over the observations.
 //!
-//! Notation (DESIGN §3): `y = W u + Z a + e`, where `a` are the site effects and
-//! `u = (b, c, beta)` stacks the year effects, the effects of further grouping factors and
-//! the fixed coefficients (intercept first, then standardised covariates) — `beta` last so
-//! that the trailing block of a Cholesky factor belongs to the coefficients.
+//! Notation (docs/architecture.md, "Notation in the code"): `y = W u + Z a + e`, where `a`
+//! are the site effects and `u = (b, c, beta)` stacks the year effects, the effects of
+//! further grouping factors and the fixed coefficients (intercept first, then standardised
+//! covariates) — `beta` last so that the trailing block of a Cholesky factor belongs to the
+//! coefficients.
 //!
 //! Because every observation belongs to exactly one site, `Z'Z = diag(n_s)` and the site
 //! block of the normal equations is diagonal. Eliminating it (a Schur complement) only

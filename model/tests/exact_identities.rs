@@ -9,7 +9,6 @@ fn small_spec() -> NetworkSpec {
     NetworkSpec {
         sites: 9,
         years: 6,
-        visits: 2,
         missing: 0.25,
         covariates: 1,
         seed: 11,
@@ -154,7 +153,8 @@ fn conditional_of_location_parameters_equals_a_dense_solve() {
 }
 
 /// The −2 REML log-likelihood from the Schur complement equals the dense formula
-/// `log|V| + log|X'V^-1 X| + r'V^-1 r + (n-p) log 2pi` (DESIGN §5) at the estimate.
+/// `log|V| + log|X'V^-1 X| + r'V^-1 r + (n-p) log 2pi` (docs/architecture.md,
+/// "Parameterisation") at the estimate.
 #[test]
 fn neg2_reml_loglik_equals_the_dense_formula() {
     let spec = NetworkSpec {

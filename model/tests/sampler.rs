@@ -9,7 +9,6 @@ fn network() -> Data {
     simulate(&NetworkSpec {
         sites: 40,
         years: 10,
-        visits: 2,
         seed: 5,
         ..Default::default()
     })
@@ -156,7 +155,6 @@ fn a_single_year_is_refused_by_reml_and_fitted_from_the_prior_by_the_sampler() {
     let data = simulate(&NetworkSpec {
         sites: 30,
         years: 1,
-        visits: 2,
         seed: 8,
         ..Default::default()
     })
@@ -173,4 +171,78 @@ fn a_single_year_is_refused_by_reml_and_fitted_from_the_prior_by_the_sampler() {
     // Half-normal(0.5): median 0.5 * 0.6745 = 0.337 (closed form); the data add almost nothing.
     let year = post.summary(SummaryKind::Sd, "year", None).unwrap();
     assert!((year.q50 - 0.337).abs() < 0.08, "{year:?}");
+}
+
+/// Each summary row is computed from the draws it names (standard deviations, variance
+/// shares, coefficients, effects), and the gate's figures are the worst of the gated rows.
+#[test]
+fn summaries_and_gate_figures_come_from_the_stored_draws() {
+    let data = network();
+    let post = fit(&data, &settings(0), None);
+    let m = post.sd_names.len();
+    let p = post.coef_names.len();
+    let n = (post.chains * post.draws) as f64;
+    let close = |a: f64, b: f64| (a - b).abs() <= 1e-12 * a.abs().max(1.0);
+    for (k, name) in post.sd_names.iter().enumerate() {
+        let rows = post.sd_draws.chunks(m);
+        let sd_mean = rows.clone().map(|r| r[k]).sum::<f64>() / n;
+        let share_mean = rows
+            .map(|r| r[k] * r[k] / r.iter().map(|s| s * s).sum::<f64>())
+            .sum::<f64>()
+            / n;
+        let sd = post.summary(SummaryKind::Sd, name, None).unwrap();
+        let share = post.summary(SummaryKind::Share, name, None).unwrap();
+        assert!(close(sd.mean, sd_mean), "{name}: {} vs {sd_mean}", sd.mean);
+        assert!(
+            close(share.mean, share_mean),
+            "{name}: {} vs {share_mean}",
+            share.mean
+        );
+    }
+    for (j, name) in post.coef_names.iter().enumerate() {
+        let mean = post.coef_draws.chunks(p).map(|r| r[j]).sum::<f64>() / n;
+        let coef = post.summary(SummaryKind::Coef, name, None).unwrap();
+        assert!(close(coef.mean, mean), "{name}: {} vs {mean}", coef.mean);
+    }
+    let eff = &post.effects;
+    for (s, label) in post.site_labels.iter().enumerate() {
+        let mean = eff.site[s * eff.n..(s + 1) * eff.n].iter().sum::<f64>() / eff.n as f64;
+        let row = post
+            .summary(SummaryKind::Effect, "site", Some(label))
+            .unwrap();
+        assert!(
+            close(row.mean, mean),
+            "site {label}: {} vs {mean}",
+            row.mean
+        );
+    }
+    for (t, year) in post.year_labels.iter().enumerate() {
+        let mean = eff.year[t * eff.n..(t + 1) * eff.n].iter().sum::<f64>() / eff.n as f64;
+        let row = post
+            .summary(SummaryKind::Effect, "year", Some(&year.to_string()))
+            .unwrap();
+        assert!(close(row.mean, mean), "year {year}: {} vs {mean}", row.mean);
+    }
+    let gated = || {
+        post.summaries
+            .iter()
+            .filter(|s| s.kind != SummaryKind::Effect)
+    };
+    let d = &post.diagnostics;
+    assert_eq!(d.max_rhat, gated().map(|s| s.rhat).fold(f64::MIN, f64::max));
+    assert_eq!(
+        d.min_ess_bulk,
+        gated().map(|s| s.ess_bulk).fold(f64::MAX, f64::min)
+    );
+    assert_eq!(
+        d.min_ess_tail,
+        gated().map(|s| s.ess_tail).fold(f64::MAX, f64::min)
+    );
+    let effect_rhat = post
+        .summaries
+        .iter()
+        .filter(|s| s.kind == SummaryKind::Effect)
+        .map(|s| s.rhat)
+        .fold(1.0, f64::max);
+    assert_eq!(d.max_rhat_effects, effect_rhat);
 }

@@ -86,7 +86,6 @@ async fn main() -> anyhow::Result<()> {
     let spec = NetworkSpec {
         sites,
         years: 26,
-        visits: 2,
         missing: 0.4,
         ..NetworkSpec::default()
     };

@@ -1,6 +1,6 @@
-//! The `tidemark.toml` configuration: its TOML shape (DESIGN.md §4.2), its defaults, and the
-//! checks run at start-up so that a mistake is reported once, naming the file and the key,
-//! instead of surfacing in the middle of a nightly run.
+//! The `tidemark.toml` configuration: its TOML shape (README.md, "Configuration
+//! reference"), its defaults, and the checks run at start-up so that a mistake is reported
+//! once, naming the file and the key, instead of surfacing in the middle of a nightly run.
 
 use std::collections::{BTreeMap, BTreeSet};
 use std::fmt;

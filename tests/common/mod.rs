@@ -43,6 +43,109 @@ year = "season"
 visit = "visit"
 "#;
 
+/// The chlorophyll series of [`CONFIG`] without its crew factor: log scale, one covariate.
+pub const CHLOROPHYLL: &str = r#"name = "chlorophyll"
+response = "chl_ug_l"
+transform = "log"
+site = "lake"
+year = "season"
+visit = "visit"
+covariates = ["surface_temp_c"]
+"#;
+
+/// The phosphorus series of [`CONFIG`]: as measured, no covariates.
+pub const PHOSPHORUS: &str = r#"name = "phosphorus"
+response = "tp_ug_l"
+site = "lake"
+year = "season"
+visit = "visit"
+"#;
+
+/// A series' `[series.sampler]` table; the defaults are a small sampler for speed.
+#[derive(Debug, Clone, Copy)]
+pub struct Sampler {
+    pub chains: u32,
+    pub draws: u32,
+    pub warmup: u32,
+    pub seed: u64,
+    pub max_rhat: f64,
+    pub min_ess: u32,
+}
+
+impl Default for Sampler {
+    fn default() -> Self {
+        Sampler {
+            chains: 4,
+            draws: 500,
+            warmup: 300,
+            seed: 5,
+            max_rhat: 1.05,
+            min_ess: 200,
+        }
+    }
+}
+
+/// The config of an end-to-end test: the usual store and feed folders, then what varies
+/// (a schedule, the series and their samplers).
+///
+/// ```ignore
+/// let toml = ConfigBuilder::new()
+///     .series(CHLOROPHYLL)
+///     .sampler(Sampler { seed: 3, ..Default::default() })
+///     .build();
+/// ```
+#[derive(Debug, Clone, Default)]
+pub struct ConfigBuilder {
+    schedule: Option<String>,
+    series: Vec<String>,
+}
+
+impl ConfigBuilder {
+    pub fn new() -> ConfigBuilder {
+        ConfigBuilder::default()
+    }
+
+    /// A `[schedule]` table; `extra` holds further lines of it (or is empty).
+    pub fn schedule(mut self, cron: &str, timezone: &str, extra: &str) -> ConfigBuilder {
+        self.schedule = Some(format!(
+            "[schedule]\ncron = \"{cron}\"\ntimezone = \"{timezone}\"\n{extra}\n"
+        ));
+        self
+    }
+
+    /// One more `[[series]]` table with the given keys.
+    pub fn series(mut self, keys: &str) -> ConfigBuilder {
+        self.series.push(format!("[[series]]\n{keys}"));
+        self
+    }
+
+    /// The sampler of the series added last.
+    pub fn sampler(mut self, s: Sampler) -> ConfigBuilder {
+        let last = self
+            .series
+            .last_mut()
+            .expect("a sampler belongs to a series: call `series` first");
+        last.push_str(&format!(
+            "\n[series.sampler]\nchains = {}\ndraws = {}\nwarmup = {}\nseed = {}\nmax_rhat = {}\nmin_ess = {}\n",
+            s.chains, s.draws, s.warmup, s.seed, s.max_rhat, s.min_ess
+        ));
+        self
+    }
+
+    pub fn build(self) -> String {
+        let mut out = String::from(
+            "[store]\ndatabase = \"tidemark.db\"\n\n\
+             [feed]\ninbox = \"inbox\"\narchive = \"archive\"\nquarantine = \"quarantine\"\n\n",
+        );
+        if let Some(schedule) = &self.schedule {
+            out.push_str(schedule);
+            out.push('\n');
+        }
+        out.push_str(&self.series.join("\n"));
+        out
+    }
+}
+
 /// One SQL value as read back.
 #[derive(Debug, Clone, PartialEq)]
 pub enum Value {
