@@ -192,30 +192,35 @@ impl Report {
 }
 
 /// Write `contents` to `path` atomically: a reader sees the old file or the new one,
-/// never a part. The temporary file lives in the same directory, so the rename does not
-/// cross file systems.
+/// never a part (see [`write_bytes_atomically`]).
 pub fn write_atomically(path: &Path, contents: &str) -> Result<(), ReportError> {
-    let fail = |source: std::io::Error| ReportError::Write {
+    write_bytes_atomically(path, contents.as_bytes()).map_err(|source| ReportError::Write {
         path: path.to_path_buf(),
         source,
-    };
+    })
+}
+
+/// Write `contents` to `path` atomically. The temporary file lives in the same directory,
+/// so the rename does not cross file systems; it is synced before the rename, so a crash
+/// leaves the old file or the whole new one.
+pub fn write_bytes_atomically(path: &Path, contents: &[u8]) -> std::io::Result<()> {
     let dir = match path.parent() {
         Some(d) if !d.as_os_str().is_empty() => d,
         _ => Path::new("."),
     };
     let mut builder = tempfile::Builder::new();
-    builder.prefix(".tidemark-report-").suffix(".tmp");
+    builder.prefix(".tidemark-").suffix(".tmp");
     #[cfg(unix)]
     {
         use std::os::unix::fs::PermissionsExt as _;
-        // A report is meant to be read by others; the default of a temporary file is
-        // owner-only.
+        // A report or an export is meant to be read by others; the default of a
+        // temporary file is owner-only.
         builder.permissions(std::fs::Permissions::from_mode(0o644));
     }
-    let mut tmp = builder.tempfile_in(dir).map_err(fail)?;
-    tmp.write_all(contents.as_bytes()).map_err(fail)?;
-    tmp.as_file().sync_all().map_err(fail)?;
-    tmp.persist(path).map_err(|e| fail(e.error))?;
+    let mut tmp = builder.tempfile_in(dir)?;
+    tmp.write_all(contents)?;
+    tmp.as_file().sync_all()?;
+    tmp.persist(path).map_err(|e| e.error)?;
     Ok(())
 }
 

@@ -8,6 +8,7 @@
 //! Invariant: only this module writes SQL (checked by `tests/e2e_store.rs::only_the_store_writes_sql`).
 
 mod drift;
+mod export;
 mod fits;
 mod ingest;
 mod lease;
@@ -27,6 +28,7 @@ use sqlx::sqlite::{
 use sqlx::Row;
 
 pub use drift::ComponentRow;
+pub use export::{DriftExportRow, ForecastExportRow, PosteriorExportRow, VersionDraws};
 pub use fits::{ForecastSet, NewExclusion, NewFit, PublishedFit, RecordedFit, ScenarioValue};
 pub use ingest::{
     BatchContent, BatchFile, BatchOutcome, BatchRecord, BatchValues, Cell, NewRejection, NewValue,
