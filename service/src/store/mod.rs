@@ -34,7 +34,7 @@ pub use ingest::{
     BatchContent, BatchFile, BatchOutcome, BatchRecord, BatchValues, Cell, NewRejection, NewValue,
 };
 pub use lease::{LeaseAttempt, LeaseClaim, LeaseHolder};
-pub use report::{ForecastInterval, RunHistoryEntry, RunSeriesOutcome, SiteEffect};
+pub use report::{ForecastBand, ForecastInterval, RunHistoryEntry, RunSeriesOutcome, SiteEffect};
 pub use series::SeriesRow;
 pub use status::{BatchSummary, FitSummary, RunSummary};
 
