@@ -8,16 +8,33 @@ use std::path::Path;
 use std::process::Command;
 use std::time::{Duration, Instant};
 
-use common::{ConfigBuilder, Network, Sampler, PHOSPHORUS};
+use common::Network;
 use tidemark_model::simulate::{simulate_rows, NetworkSpec};
 
-/// One series as measured; the small default sampler.
-fn config() -> String {
-    ConfigBuilder::new()
-        .series(PHOSPHORUS)
-        .sampler(Sampler::default())
-        .build()
-}
+const CONFIG: &str = r#"
+[store]
+database = "tidemark.db"
+
+[feed]
+inbox = "inbox"
+archive = "archive"
+quarantine = "quarantine"
+
+[[series]]
+name = "phosphorus"
+response = "tp_ug_l"
+site = "lake"
+year = "season"
+visit = "visit"
+
+[series.sampler]
+chains = 4
+draws = 500
+warmup = 300
+seed = 5
+max_rhat = 1.05
+min_ess = 200
+"#;
 
 /// Site codes that must reach the page verbatim and harmless.
 const SQL_CODE: &str = "S6';DROP TABLE fits;--";
@@ -56,15 +73,16 @@ fn base() -> NetworkSpec {
     NetworkSpec {
         sites: 15,
         years: 8,
+        visits: 2,
         missing: 0.1,
         covariates: 0,
+        sd_residual: 0.3,
         sd_site: 0.4,
         sd_year: 0.3,
         intercept: 20.0,
         coef: 0.0,
         first_year: 2015,
         seed: 31,
-        ..Default::default()
     }
 }
 
@@ -72,7 +90,7 @@ fn base() -> NetworkSpec {
 /// network (the partition holds); then 30 new lakes whose site-to-site spread is ten
 /// times larger (the partition moves: sd site must jump).
 fn three_deliveries() -> Network {
-    let net = Network::with_config(&config());
+    let net = Network::with_config(CONFIG);
     net.ok(&["init"]);
     net.drop_file("a-2015-2020.csv", feed(&base(), "Lake", 2015..2021));
     net.ok(&["run-once"]);
@@ -219,6 +237,29 @@ fn drift_flags_a_partition_that_moves_and_not_one_that_holds() {
     assert!(stderr.contains("no series named \"nitrogen\"") && stderr.contains("phosphorus"));
 }
 
+/// Charts on the page of [`three_deliveries`]: three per series plus 12 site panels.
+const CHARTS: usize = 3 + 12;
+
+/// The first run of more than seven digits after a decimal point in the page's text
+/// (chart labels included), if any.
+fn regex_free_long_number(html: &str) -> Option<String> {
+    let b = html.as_bytes();
+    let mut i = 0;
+    while i < b.len() {
+        if b[i] == b'.' && i > 0 && b[i - 1].is_ascii_digit() {
+            let digits = b[i + 1..].iter().take_while(|c| c.is_ascii_digit()).count();
+            // Attribute values (coordinates, font sizes) are not labels.
+            let in_tag = html[..i].rfind('<') > html[..i].rfind('>');
+            if digits > 7 && !in_tag {
+                return Some(html[i.saturating_sub(10)..i + 1 + digits].to_string());
+            }
+            i += digits;
+        }
+        i += 1;
+    }
+    None
+}
+
 fn write_report(net: &Network) -> (std::path::PathBuf, String) {
     let out = net.path("reports/latest.html");
     std::fs::create_dir_all(out.parent().unwrap()).unwrap();
@@ -235,9 +276,22 @@ fn the_report_is_one_self_contained_page_with_escaped_codes() {
     assert_eq!(html.matches("<html").count(), 1);
     assert!(html.starts_with("<!DOCTYPE html>"));
     assert!(html.trim_end().ends_with("</html>"));
-    // One series: variance components, interval widths, site effects.
-    assert_eq!(html.matches("<svg").count(), 3, "three charts");
-    assert_eq!(html.matches("</svg>").count(), 3);
+    // One series: variance components, interval widths, site effects, and a small chart
+    // for each of the 12 most extreme of its 45 sites.
+    assert_eq!(html.matches("<svg").count(), CHARTS, "every chart");
+    assert_eq!(html.matches("</svg>").count(), CHARTS);
+    assert!(html.contains("the 12 sites with the largest site effects"));
+    // Axes say their scale; tick labels are short numbers, never 15-digit floats.
+    for axis in [
+        "sd (model scale = response scale, tp_ug_l units; log axis)",
+        "width of the 80% interval (response scale, tp_ug_l units)",
+        "site effect (response scale, tp_ug_l units; 0 = network mean)",
+        "tp_ug_l units",
+    ] {
+        assert!(html.contains(axis), "axis description {axis:?} missing");
+    }
+    let long_number = regex_free_long_number(&html);
+    assert!(long_number.is_none(), "a long tick label: {long_number:?}");
     // Nothing is loaded from anywhere: no URL, no script, no linked resource.
     for needle in [
         "http:", "https:", "<script", "<link", "<img", "<iframe", "src=", "url(", "@import",
@@ -277,7 +331,7 @@ fn the_report_is_one_self_contained_page_with_escaped_codes() {
     // The database is intact, and the file was replaced atomically (no temporary left).
     assert_eq!(net.scalar("SELECT COUNT(*) FROM fits").int(), 3);
     let (_, again) = write_report(&net);
-    assert_eq!(again.matches("<svg").count(), 3);
+    assert_eq!(again.matches("<svg").count(), CHARTS);
     let leftovers: Vec<_> = std::fs::read_dir(out.parent().unwrap())
         .unwrap()
         .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
@@ -312,8 +366,11 @@ fn chromium() -> String {
     );
 }
 
-fn screenshot(html: &Path, png: &Path) {
+/// Run headless Chromium on `html` at `width` x 2000 with `mode` (`--screenshot=…` or
+/// `--dump-dom`), in a fresh profile; returns its stdout.
+fn chromium_at(html: &Path, width: u32, extra: &str, mode: &str) -> String {
     let profile = tempfile::tempdir().unwrap();
+    let out = tempfile::NamedTempFile::new().unwrap();
     let mut child = Command::new(chromium())
         .args([
             "--headless",
@@ -327,10 +384,11 @@ fn screenshot(html: &Path, png: &Path) {
             "--hide-scrollbars",
         ])
         .arg(format!("--user-data-dir={}", profile.path().display()))
-        .arg(format!("--screenshot={}", png.display()))
-        .arg("--window-size=1200,2000")
+        .arg(extra)
+        .arg(mode)
+        .arg(format!("--window-size={width},2000"))
         .arg(format!("file://{}", html.display()))
-        .stdout(std::process::Stdio::null())
+        .stdout(out.reopen().unwrap())
         .stderr(std::process::Stdio::null())
         .spawn()
         .expect("start chromium");
@@ -342,37 +400,85 @@ fn screenshot(html: &Path, png: &Path) {
         }
         if start.elapsed() > Duration::from_secs(120) {
             let _ = child.kill();
-            panic!("chromium did not finish the screenshot within 120 s");
+            panic!("chromium did not finish within 120 s");
         }
         std::thread::sleep(Duration::from_millis(100));
     }
+    std::fs::read_to_string(out.path()).unwrap()
 }
 
-#[test]
-fn the_report_renders_in_headless_chromium() {
-    let net = three_deliveries();
-    let (out, _) = write_report(&net);
-    let png_path = net.path("reports/latest.png");
-    screenshot(&out, &png_path);
-    // To look at the page and the screenshot yourself: TIDEMARK_KEEP_REPORT=DIR.
-    if let Some(keep) = std::env::var_os("TIDEMARK_KEEP_REPORT") {
-        let keep = Path::new(&keep);
-        std::fs::create_dir_all(keep).unwrap();
-        for (from, name) in [
-            (&out, "report.html"),
-            (&png_path, "report.png"),
-            (&net.db_path(), "tidemark.db"),
-        ] {
-            std::fs::copy(from, keep.join(name)).unwrap();
-        }
-        std::fs::write(keep.join("tidemark.toml"), config()).unwrap();
-    }
+fn screenshot(html: &Path, png: &Path, width: u32) {
+    chromium_at(
+        html,
+        width,
+        "--disable-extensions",
+        &format!("--screenshot={}", png.display()),
+    );
+}
 
-    let decoder = png::Decoder::new(std::fs::File::open(&png_path).expect("screenshot written"));
+/// Layout facts of the page in a viewport `width` px wide, measured by a harness page
+/// that only this test writes (the product page has no JavaScript): the page is loaded
+/// unchanged into an iframe of that width (headless Chromium's window cannot be narrower
+/// than 500 px, an iframe can), and a script reads its document's scroll width, its
+/// viewport width, the number of SVG charts, the right edge of the widest one and each
+/// chart's title (its first text).
+fn measure(html: &Path, width: u32) -> (f64, f64, usize, f64, Vec<String>) {
+    let harness = html.with_file_name(format!("harness-{width}.html"));
+    let page = html.file_name().unwrap().to_string_lossy();
+    std::fs::write(
+        &harness,
+        format!(
+            r#"<!DOCTYPE html><html><body style="margin:0">
+<iframe id="f" src="{page}" style="width:{width}px;height:1500px;border:0"></iframe>
+<script>
+document.getElementById('f').addEventListener('load', function () {{
+  var doc = this.contentDocument, win = this.contentWindow;
+  var svgs = Array.from(doc.querySelectorAll('svg'));
+  var right = Math.max.apply(null, svgs.map(function (s) {{ return s.getBoundingClientRect().right; }}));
+  var titles = svgs.map(function (s) {{ var t = s.querySelector('text'); return t ? t.textContent.trim() : ''; }});
+  var o = document.createElement('pre');
+  o.id = 'measure';
+  o.textContent = 'MEASURE ' + doc.documentElement.scrollWidth + ' ' + win.innerWidth + ' ' +
+    svgs.length + ' ' + right + ' ' + titles.join('|');
+  document.body.appendChild(o);
+}});
+</script></body></html>"#
+        ),
+    )
+    .unwrap();
+    let dom = chromium_at(
+        &harness,
+        1280,
+        "--allow-file-access-from-files",
+        "--dump-dom",
+    );
+    let line = dom
+        .lines()
+        .find_map(|l| l.split("<pre id=\"measure\">MEASURE ").nth(1))
+        .unwrap_or_else(|| panic!("no measurement in the DOM at width {width}:\n{dom}"));
+    let line = line.split("</pre>").next().unwrap();
+    let mut parts = line.splitn(5, ' ');
+    let mut num = || -> f64 { parts.next().unwrap().parse().unwrap() };
+    let (scroll, viewport, svgs, right) = (num(), num(), num(), num());
+    let titles = parts
+        .next()
+        .unwrap_or("")
+        .split('|')
+        .map(|t| {
+            t.replace("&amp;", "&")
+                .replace("&lt;", "<")
+                .replace("&gt;", ">")
+        })
+        .collect();
+    (scroll, viewport, svgs as usize, right, titles)
+}
+
+fn check_png(png_path: &Path, width: u32) {
+    let decoder = png::Decoder::new(std::fs::File::open(png_path).expect("screenshot written"));
     let mut reader = decoder.read_info().unwrap();
     let mut buf = vec![0; reader.output_buffer_size()];
     let info = reader.next_frame(&mut buf).unwrap();
-    assert_eq!((info.width, info.height), (1200, 2000));
+    assert_eq!((info.width, info.height), (width, 2000));
     let channels = info.color_type.samples();
     assert!(
         channels >= 3,
@@ -387,15 +493,15 @@ fn the_report_renders_in_headless_chromium() {
     let share = non_white as f64 / pixels.len() as f64;
     assert!(
         share > 0.03,
-        "the screenshot is nearly blank: {share:.4} non-white"
+        "{width}: the screenshot is nearly blank: {share:.4} non-white"
     );
     let distinct: std::collections::HashSet<[u8; 3]> = pixels.iter().copied().collect();
     assert!(
         distinct.len() > 50,
-        "only {} distinct colours",
+        "{width}: only {} distinct colours",
         distinct.len()
     );
-    // The charts were drawn: the palette's blue and vermillion lines are on screen.
+    // The charts were drawn: the palette's blue and vermillion are on screen.
     let near = |c: [u8; 3]| {
         pixels.iter().any(|p| {
             p.iter()
@@ -403,6 +509,98 @@ fn the_report_renders_in_headless_chromium() {
                 .all(|(&a, b)| (i32::from(a) - i32::from(b)).abs() <= 12)
         })
     };
-    assert!(near([0, 114, 178]), "no chart blue in the screenshot");
-    assert!(near([213, 94, 0]), "no chart vermillion in the screenshot");
+    assert!(
+        near([0, 114, 178]),
+        "{width}: no chart blue in the screenshot"
+    );
+    assert!(
+        near([213, 94, 0]),
+        "{width}: no chart vermillion in the screenshot"
+    );
+}
+
+#[test]
+fn the_report_renders_in_headless_chromium() {
+    let net = three_deliveries();
+    // Two runs with nothing new: they tell the same thing and share one history line.
+    net.ok(&["run-once"]);
+    net.ok(&["run-once"]);
+    let (out, html) = write_report(&net);
+    assert!(
+        html.contains("×2<"),
+        "two identical runs collapse into one line"
+    );
+    assert_eq!(
+        html.matches("<td class=\"num count\">").count(),
+        4,
+        "3 + 1 history lines"
+    );
+    // To look at the page and the screenshots yourself: TIDEMARK_KEEP_REPORT=DIR.
+    let keep = std::env::var_os("TIDEMARK_KEEP_REPORT").map(std::path::PathBuf::from);
+    // Screenshots at a desktop width and at the narrowest window headless Chromium has.
+    for width in [1280, 500] {
+        let png_path = net.path(&format!("reports/latest-{width}.png"));
+        screenshot(&out, &png_path, width);
+        if let Some(keep) = &keep {
+            std::fs::create_dir_all(keep).unwrap();
+            std::fs::copy(&png_path, keep.join(format!("report-{width}.png"))).unwrap();
+        }
+        check_png(&png_path, width);
+    }
+    // Layout at a desktop width and at a phone's.
+    for width in [1280, 420] {
+        let (scroll, viewport, svgs, right, titles) = measure(&out, width);
+        assert_eq!(viewport, f64::from(width), "the viewport is the window");
+        assert!(
+            scroll <= viewport,
+            "{width}: the page scrolls sideways ({scroll} > {viewport})"
+        );
+        assert!(right <= viewport + 0.5, "{width}: a chart ends at {right}");
+        assert_eq!(svgs, CHARTS, "{width}: every chart is in the DOM");
+        for title in [
+            "Standard deviations by published version",
+            "Width of the 80% forecast interval",
+            "Site effects, latest version",
+        ] {
+            assert!(
+                titles.iter().any(|t| t.starts_with(title)),
+                "{width}: no chart titled {title:?} in {titles:?}"
+            );
+        }
+    }
+    if let Some(keep) = &keep {
+        for (from, name) in [(&out, "report.html"), (&net.db_path(), "tidemark.db")] {
+            std::fs::copy(from, keep.join(name)).unwrap();
+        }
+        std::fs::write(keep.join("tidemark.toml"), CONFIG).unwrap();
+    }
+}
+
+#[test]
+fn named_report_sites_get_their_own_charts() {
+    let net = three_deliveries();
+    let config = CONFIG.replace(
+        "visit = \"visit\"\n",
+        &format!(
+            "visit = \"visit\"\nreport_sites = [\"Lake 01\", {:?}, \"Nowhere <x>\"]\n",
+            MARKUP_CODE
+        ),
+    );
+    std::fs::write(net.config_path(), config).unwrap();
+    let (_, html) = write_report(&net);
+    assert!(html.contains("the sites named in <code>report_sites</code>"));
+    assert_eq!(
+        html.matches("<svg").count(),
+        3 + 2,
+        "two named sites have data"
+    );
+    assert!(html.contains("No stored value or forecast") && html.contains("Nowhere &lt;x&gt;"));
+    assert!(!html.contains(MARKUP_CODE));
+    // Each panel has next year's band: the known-site forecast exists for both sites.
+    assert!(!html.contains("no next-year forecast"));
+    let next = net.scalar(
+        "SELECT COUNT(*) FROM latest_forecasts WHERE target = 'known_site_new_year' \
+         AND site IN ('Lake 01', 'Lake <b>&\"7') AND year = 2022",
+    );
+    assert_eq!(next.int(), 2);
 }

@@ -113,6 +113,36 @@ pub enum Command {
         #[arg(long, value_name = "NAME")]
         series: Option<String>,
     },
+    /// Write forecasts, posterior summaries, drift rows or draws as CSV, Parquet or Arrow
+    ///
+    /// WHAT is one of: `forecasts` (rows of the `latest_forecasts` view), `posterior` (the
+    /// posterior summaries of each series' latest published version), `drift` (rows of the
+    /// `variance_drift` view) or `draws` (every stored draw of one published version, one
+    /// row per value: needs --series and --version). The columns are listed in README.md
+    /// § Exports. CSV leaves a missing value empty and writes every number so that it
+    /// parses back exactly. With --out the file is replaced atomically; without it (or
+    /// with `--out -`) the export goes to stdout.
+    #[command(disable_version_flag = true)]
+    Export {
+        /// What to export
+        #[arg(value_enum, value_name = "WHAT")]
+        what: commands::export::ExportWhat,
+        /// File format
+        #[arg(long, value_enum, default_value = "csv", value_name = "FORMAT")]
+        format: commands::export::ExportFormat,
+        /// The file to write; `-` or none means stdout
+        #[arg(long, value_name = "FILE")]
+        out: Option<PathBuf>,
+        /// Only this series
+        #[arg(long, value_name = "NAME")]
+        series: Option<String>,
+        /// Only this forecast target (`forecasts` only)
+        #[arg(long, value_name = "TARGET")]
+        target: Option<String>,
+        /// The published version whose draws to export (`draws` only)
+        #[arg(long, value_name = "V")]
+        version: Option<i64>,
+    },
     /// Replay the demo feed (an invented lake network) season by season through the pipeline
     Demo {
         /// Folder for the demo's config, feed folders and database [default: ./tidemark-demo]
@@ -224,5 +254,23 @@ pub async fn dispatch(cli: Cli) -> anyhow::Result<()> {
             commands::drift::run(&ctx, series, filter, json).await
         }
         Command::Report { out, series } => commands::report::run(&ctx, &out, series).await,
+        Command::Export {
+            what,
+            format,
+            out,
+            series,
+            target,
+            version,
+        } => {
+            let args = commands::export::ExportArgs {
+                what,
+                format,
+                out,
+                series,
+                target,
+                version,
+            };
+            commands::export::run(&ctx, args).await
+        }
     }
 }

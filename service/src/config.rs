@@ -80,6 +80,9 @@ pub struct SeriesConfig {
     /// Known-site forecasts are written only for sites observed within this many years
     /// of the data-through year (`None`: every site).
     pub known_site_max_gap: Option<u32>,
+    /// Sites the report draws one small chart each for (observed values and next year's
+    /// forecast band); empty: the report picks the most extreme sites by site effect.
+    pub report_sites: Vec<String>,
 }
 
 impl Config {
@@ -105,6 +108,9 @@ impl Config {
         }
     }
 }
+
+/// At most this many sites may be named in `report_sites` (one small chart each).
+pub const MAX_REPORT_SITES: usize = 48;
 
 impl SeriesConfig {
     /// Every stored column this series reads: response, covariates, groups.
@@ -277,6 +283,8 @@ struct RawSeries {
     #[serde(default)]
     sampler: SamplerConfig,
     known_site_max_gap: Option<u32>,
+    #[serde(default)]
+    report_sites: Vec<String>,
 }
 
 fn default_transform() -> String {
@@ -511,6 +519,30 @@ impl Config {
                 }
             }
 
+            let mut named = BTreeSet::new();
+            for site in &rs.report_sites {
+                if site.trim().is_empty() {
+                    return Err(invalid(
+                        &at("report_sites"),
+                        "site codes must not be empty".into(),
+                    ));
+                }
+                if !named.insert(site.as_str()) {
+                    return Err(invalid(
+                        &at("report_sites"),
+                        format!("site {site:?} is named twice"),
+                    ));
+                }
+            }
+            if rs.report_sites.len() > MAX_REPORT_SITES {
+                return Err(invalid(
+                    &at("report_sites"),
+                    format!(
+                        "names {} sites; at most {MAX_REPORT_SITES} fit on the report page",
+                        rs.report_sites.len()
+                    ),
+                ));
+            }
             check_priors(&rs.priors, &at("priors")).map_err(|(k, m)| invalid(&k, m))?;
             check_sampler(&rs.sampler, &at("sampler")).map_err(|(k, m)| invalid(&k, m))?;
 
@@ -523,6 +555,7 @@ impl Config {
                 priors: rs.priors,
                 sampler: rs.sampler,
                 known_site_max_gap: rs.known_site_max_gap,
+                report_sites: rs.report_sites,
             });
         }
 
@@ -823,5 +856,32 @@ draws = 500
     #[test]
     fn at_least_one_series() {
         assert!(message("[store]\ndatabase = \"x.db\"\n").contains("series"));
+    }
+
+    #[test]
+    fn report_sites_are_optional_unique_and_not_empty() {
+        assert!(parse(GOOD).unwrap().series[0].report_sites.is_empty());
+        let with = |sites: &str| {
+            GOOD.replace(
+                "groups = [\"crew\"]",
+                &format!("groups = [\"crew\"]\nreport_sites = {sites}"),
+            )
+        };
+        let c = parse(&with(r#"["Lake A", "Lake <B>"]"#)).unwrap();
+        assert_eq!(c.series[0].report_sites, ["Lake A", "Lake <B>"]);
+        let twice = message(&with(r#"["Lake A", "Lake A"]"#));
+        assert!(
+            twice.contains("series[0].report_sites") && twice.contains("named twice"),
+            "{twice}"
+        );
+        let empty = message(&with(r#"[" "]"#));
+        assert!(empty.contains("must not be empty"), "{empty}");
+        let many: Vec<String> = (0..=MAX_REPORT_SITES)
+            .map(|i| format!("\"L{i}\""))
+            .collect();
+        let over = message(&with(&format!("[{}]", many.join(", "))));
+        assert!(over.contains("at most 48"), "{over}");
+        let typo = message(&with("\"Lake A\""));
+        assert!(typo.contains("report_sites"), "{typo}");
     }
 }

@@ -3,6 +3,7 @@
 
 pub mod demo;
 pub mod drift;
+pub mod export;
 pub mod forecast;
 pub mod ingest;
 pub mod init;
@@ -59,12 +60,15 @@ pub fn select_series<'a>(
 /// Print `text` to stdout; a reader that stopped early (`tidemark drift | head`) is not an
 /// error.
 pub fn print_out(text: &str) -> anyhow::Result<()> {
+    print_bytes(text.as_bytes())
+}
+
+/// Write `bytes` to stdout; a reader that stopped early (`tidemark export drift | head`)
+/// is not an error.
+pub fn print_bytes(bytes: &[u8]) -> anyhow::Result<()> {
     use std::io::Write as _;
     let mut stdout = std::io::stdout().lock();
-    match stdout
-        .write_all(text.as_bytes())
-        .and_then(|()| stdout.flush())
-    {
+    match stdout.write_all(bytes).and_then(|()| stdout.flush()) {
         Err(e) if e.kind() != std::io::ErrorKind::BrokenPipe => {
             Err(anyhow::Error::new(e).context("cannot write to stdout"))
         }

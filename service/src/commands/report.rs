@@ -4,18 +4,23 @@
 use std::path::Path;
 
 use super::Context;
-use crate::report::{self, Report};
+use crate::report::{self, Report, ReportSeries};
 
 pub async fn run(ctx: &Context, out: &Path, series: Option<String>) -> anyhow::Result<()> {
     if let Some(name) = &series {
         super::require_series(ctx, name)?;
     }
-    let chosen: Vec<(String, String, String)> = ctx
+    let chosen: Vec<ReportSeries> = ctx
         .config
         .series
         .iter()
         .filter(|s| series.as_ref().is_none_or(|n| *n == s.name))
-        .map(|s| (s.name.clone(), s.response.clone(), s.transform.to_string()))
+        .map(|s| ReportSeries {
+            name: s.name.clone(),
+            response: s.response.clone(),
+            transform: s.transform.to_string(),
+            sites: s.report_sites.clone(),
+        })
         .collect();
     let store = ctx.open_store().await?;
     let collected = Report::collect(&store, &chosen).await;

@@ -350,3 +350,70 @@ pub fn decode(blob: &[u8]) -> Result<Decoded, ArrowError> {
     };
     Ok(Decoded { warm_start, basis })
 }
+
+/// One stored draw in long form: the quantity (`kind`, `term`, `level`), the chain and
+/// the draw's index within that chain (both from 0), and its value.
+#[derive(Debug, Clone, PartialEq)]
+pub struct LongDraw {
+    pub kind: String,
+    pub term: String,
+    pub level: Option<String>,
+    pub chain: u32,
+    pub draw: u32,
+    pub value: f64,
+}
+
+/// Every value of a file written by [`encode`], one row per value, in stored order.
+pub fn long_form(blob: &[u8]) -> Result<Vec<LongDraw>, ArrowError> {
+    let reader = FileReader::try_new(std::io::Cursor::new(blob), None)?;
+    let mut out = Vec::new();
+    for batch in reader {
+        let batch = batch?;
+        let text = |i: usize, name: &str| {
+            batch
+                .column(i)
+                .as_any()
+                .downcast_ref::<StringArray>()
+                .cloned()
+                .ok_or_else(|| bad(name))
+        };
+        let count = |i: usize, name: &str| {
+            batch
+                .column(i)
+                .as_any()
+                .downcast_ref::<UInt32Array>()
+                .cloned()
+                .ok_or_else(|| bad(name))
+        };
+        let (kind, term, level) = (text(0, "kind")?, text(1, "term")?, text(2, "level")?);
+        let (chains, per_chain) = (count(3, "chains")?, count(4, "draws")?);
+        let values = batch
+            .column(5)
+            .as_any()
+            .downcast_ref::<ListArray>()
+            .ok_or_else(|| bad("values"))?;
+        for r in 0..batch.num_rows() {
+            let list = values.value(r);
+            let v = list
+                .as_any()
+                .downcast_ref::<Float64Array>()
+                .ok_or_else(|| bad("values items"))?;
+            let per = per_chain.value(r).max(1) as usize;
+            if v.len() != chains.value(r) as usize * per_chain.value(r) as usize {
+                return Err(bad("a row's value count is not chains x draws_per_chain"));
+            }
+            let lvl = (!level.is_null(r)).then(|| level.value(r).to_string());
+            for (i, &value) in v.values().iter().enumerate() {
+                out.push(LongDraw {
+                    kind: kind.value(r).to_string(),
+                    term: term.value(r).to_string(),
+                    level: lvl.clone(),
+                    chain: (i / per) as u32,
+                    draw: (i % per) as u32,
+                    value,
+                });
+            }
+        }
+    }
+    Ok(out)
+}

@@ -21,6 +21,10 @@ pub use page::CAUTION;
 /// At most this many site effects are drawn; beyond it the lowest and highest halves are.
 pub const MAX_SITES_SHOWN: usize = 60;
 
+/// Without `report_sites`, this many sites get a small chart: the most extreme by the
+/// median of their site effect.
+pub const EXTREME_SITES_SHOWN: usize = 12;
+
 /// How many recent runs the history table lists.
 pub const RUNS_SHOWN: u32 = 50;
 
@@ -76,6 +80,32 @@ pub struct SeriesReport {
     pub widths: Vec<TargetWidths>,
     /// Every site effect of the latest version, lowest median first.
     pub site_effects: Vec<SiteEffect>,
+    /// The sites drawn one chart each, in the order drawn.
+    pub panels: Vec<SitePanelData>,
+    /// Whether the panels' sites were named in the config (else: the most extreme).
+    pub panels_named: bool,
+    /// Sites named in the config with neither observations nor a forecast.
+    pub unknown_sites: Vec<String>,
+}
+
+/// One site's observed values and next year's 80% forecast band.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SitePanelData {
+    pub site: String,
+    /// `(year, value)` of every stored visit, response scale.
+    pub observed: Vec<(i64, f64)>,
+    /// `(year, q10, q50, q90)` from target `known_site_new_year`.
+    pub band: Option<(i64, f64, f64, f64)>,
+}
+
+/// What the report is asked to show about one configured series.
+#[derive(Debug, Clone)]
+pub struct ReportSeries {
+    pub name: String,
+    pub response: String,
+    pub transform: String,
+    /// `report_sites` from the config; empty: pick the most extreme sites.
+    pub sites: Vec<String>,
 }
 
 /// Everything the page shows.
@@ -140,14 +170,63 @@ pub fn sites_to_show(effects: &[SiteEffect]) -> (Vec<SiteEffect>, Option<usize>)
     (shown, Some(half - 1))
 }
 
+/// The sites that get a small chart: the named ones, else the [`EXTREME_SITES_SHOWN`]
+/// with the largest absolute median effect (ties by code), lowest median first.
+pub fn panel_sites(effects: &[SiteEffect], named: &[String]) -> Vec<String> {
+    if !named.is_empty() {
+        return named.to_vec();
+    }
+    let mut ranked: Vec<&SiteEffect> = effects.iter().filter(|e| e.q50.is_some()).collect();
+    ranked.sort_by(|a, b| {
+        let size = |e: &SiteEffect| e.q50.map_or(0.0, f64::abs);
+        size(b)
+            .total_cmp(&size(a))
+            .then_with(|| a.site.cmp(&b.site))
+    });
+    ranked.truncate(EXTREME_SITES_SHOWN);
+    ranked.sort_by(|a, b| {
+        a.q50
+            .unwrap_or(0.0)
+            .total_cmp(&b.q50.unwrap_or(0.0))
+            .then_with(|| a.site.cmp(&b.site))
+    });
+    ranked.into_iter().map(|e| e.site.clone()).collect()
+}
+
+/// Consecutive runs that tell the same thing (trigger, status, message and every
+/// series' outcome, fit and message), as `(newest, oldest, count)` indices into `runs`
+/// (newest first).
+pub fn collapse_runs(runs: &[RunHistoryEntry]) -> Vec<(usize, usize, usize)> {
+    let same = |a: &RunHistoryEntry, b: &RunHistoryEntry| {
+        a.run.trigger == b.run.trigger
+            && a.run.status == b.run.status
+            && a.run.message == b.run.message
+            && a.series == b.series
+    };
+    let mut out: Vec<(usize, usize, usize)> = Vec::new();
+    for (i, r) in runs.iter().enumerate() {
+        match out.last_mut() {
+            Some((first, last, count)) if same(&runs[*first], r) => {
+                *last = i;
+                *count += 1;
+            }
+            _ => out.push((i, i, 1)),
+        }
+    }
+    out
+}
+
 impl Report {
-    /// Read what the page shows for `series` (name, response, transform), in that order.
-    pub async fn collect(
-        store: &Store,
-        series: &[(String, String, String)],
-    ) -> Result<Report, ReportError> {
+    /// Read what the page shows for `series`, in that order.
+    pub async fn collect(store: &Store, series: &[ReportSeries]) -> Result<Report, ReportError> {
         let mut out = Vec::new();
-        for (name, response, transform) in series {
+        for ReportSeries {
+            name,
+            response,
+            transform,
+            sites,
+        } in series
+        {
             let latest = store.latest_published_fit(name).await?;
             let attempt = store.latest_fit_attempt(name).await?;
             let unserved_attempt = attempt.filter(|a| {
@@ -167,6 +246,35 @@ impl Report {
                 }
                 None => (Vec::new(), Vec::new()),
             };
+            let mut panels = Vec::new();
+            let mut unknown_sites = Vec::new();
+            if let Some(fit) = &latest {
+                let chosen = panel_sites(&site_effects, sites);
+                let bands = store
+                    .forecast_bands(fit.fit_id, "known_site_new_year")
+                    .await?;
+                let rows = store.load_series_rows(response, &[], &[]).await?;
+                for site in chosen {
+                    let observed: Vec<(i64, f64)> = rows
+                        .iter()
+                        .filter(|r| r.site == site)
+                        .filter_map(|r| Some((r.year, r.response?)))
+                        .collect();
+                    let band = bands
+                        .iter()
+                        .find(|b| b.site == site)
+                        .and_then(|b| Some((b.year, b.q10?, b.q50?, b.q90?)));
+                    if observed.is_empty() && band.is_none() {
+                        unknown_sites.push(site);
+                    } else {
+                        panels.push(SitePanelData {
+                            site,
+                            observed,
+                            band,
+                        });
+                    }
+                }
+            }
             out.push(SeriesReport {
                 name: name.clone(),
                 transform: transform.clone(),
@@ -176,6 +284,9 @@ impl Report {
                 drift,
                 widths,
                 site_effects,
+                panels,
+                panels_named: !sites.is_empty(),
+                unknown_sites,
             });
         }
         Ok(Report {
@@ -193,30 +304,35 @@ impl Report {
 }
 
 /// Write `contents` to `path` atomically: a reader sees the old file or the new one,
-/// never a part. The temporary file lives in the same directory, so the rename does not
-/// cross file systems.
+/// never a part (see [`write_bytes_atomically`]).
 pub fn write_atomically(path: &Path, contents: &str) -> Result<(), ReportError> {
-    let fail = |source: std::io::Error| ReportError::Write {
+    write_bytes_atomically(path, contents.as_bytes()).map_err(|source| ReportError::Write {
         path: path.to_path_buf(),
         source,
-    };
+    })
+}
+
+/// Write `contents` to `path` atomically. The temporary file lives in the same directory,
+/// so the rename does not cross file systems; it is synced before the rename, so a crash
+/// leaves the old file or the whole new one.
+pub fn write_bytes_atomically(path: &Path, contents: &[u8]) -> std::io::Result<()> {
     let dir = match path.parent() {
         Some(d) if !d.as_os_str().is_empty() => d,
         _ => Path::new("."),
     };
     let mut builder = tempfile::Builder::new();
-    builder.prefix(".tidemark-report-").suffix(".tmp");
+    builder.prefix(".tidemark-").suffix(".tmp");
     #[cfg(unix)]
     {
         use std::os::unix::fs::PermissionsExt as _;
-        // A report is meant to be read by others; the default of a temporary file is
-        // owner-only.
+        // A report or an export is meant to be read by others; the default of a
+        // temporary file is owner-only.
         builder.permissions(std::fs::Permissions::from_mode(0o644));
     }
-    let mut tmp = builder.tempfile_in(dir).map_err(fail)?;
-    tmp.write_all(contents.as_bytes()).map_err(fail)?;
-    tmp.as_file().sync_all().map_err(fail)?;
-    tmp.persist(path).map_err(|e| fail(e.error))?;
+    let mut tmp = builder.tempfile_in(dir)?;
+    tmp.write_all(contents)?;
+    tmp.as_file().sync_all()?;
+    tmp.persist(path).map_err(|e| e.error)?;
     Ok(())
 }
 
@@ -247,6 +363,79 @@ mod tests {
         assert_eq!((t.n, t.min, t.max), (5, 1.0, 5.0));
         assert!((t.q25 - 2.0).abs() < 1e-12 && (t.median - 3.0).abs() < 1e-12);
         assert!((quantile_sorted(&[0.0, 1.0], 0.25) - 0.25).abs() < 1e-12);
+    }
+
+    #[test]
+    fn panels_go_to_named_sites_or_the_most_extreme() {
+        let effects: Vec<SiteEffect> = [-3.0, -0.1, 0.2, 2.0, 0.0]
+            .iter()
+            .enumerate()
+            .map(|(i, &m)| SiteEffect {
+                site: format!("L{i}"),
+                q05: None,
+                q50: Some(m),
+                q95: None,
+            })
+            .collect();
+        let named = vec!["L2".to_string(), "Z".to_string()];
+        assert_eq!(panel_sites(&effects, &named), named);
+        let many: Vec<SiteEffect> = (0..20)
+            .map(|i| SiteEffect {
+                site: format!("S{i:02}"),
+                q05: None,
+                q50: Some(f64::from(i) - 9.5),
+                q95: None,
+            })
+            .collect();
+        let picked = panel_sites(&many, &[]);
+        assert_eq!(picked.len(), EXTREME_SITES_SHOWN);
+        // The four closest to zero (S08..S11) are left out; lowest median first.
+        assert_eq!(picked.first().map(String::as_str), Some("S00"));
+        assert_eq!(picked.last().map(String::as_str), Some("S19"));
+        assert!(!picked
+            .iter()
+            .any(|s| ["S08", "S09", "S10", "S11"].contains(&s.as_str())));
+        assert_eq!(panel_sites(&effects, &[])[0], "L0");
+    }
+
+    #[test]
+    fn consecutive_identical_runs_collapse_into_one_line() {
+        use crate::store::{RunSeriesOutcome, RunSummary};
+        use crate::vocabulary::{RunStatus, RunTrigger};
+        let run = |id: i64, status: &str, outcome: &str| RunHistoryEntry {
+            run: RunSummary {
+                run_id: id,
+                trigger: RunTrigger::Schedule,
+                command: Some("serve".into()),
+                started_at: format!("t{id}"),
+                finished_at: None,
+                status: if status == "skipped" {
+                    RunStatus::Skipped
+                } else {
+                    RunStatus::Succeeded
+                },
+                message: None,
+            },
+            series: vec![RunSeriesOutcome {
+                series: "p".into(),
+                outcome: outcome.into(),
+                fit_id: None,
+                message: Some("no new data".into()),
+            }],
+        };
+        let runs = vec![
+            run(9, "succeeded", "unchanged"),
+            run(8, "succeeded", "unchanged"),
+            run(7, "succeeded", "unchanged"),
+            run(6, "skipped", "unchanged"),
+            run(5, "succeeded", "unchanged"),
+            run(4, "succeeded", "published"),
+        ];
+        assert_eq!(
+            collapse_runs(&runs),
+            vec![(0, 2, 3), (3, 3, 1), (4, 4, 1), (5, 5, 1)]
+        );
+        assert!(collapse_runs(&[]).is_empty());
     }
 
     #[test]

@@ -4,7 +4,10 @@
 
 use std::fmt::Write as _;
 
-use super::{charts, sites_to_show, Report, ReportError, SeriesReport, MAX_SITES_SHOWN};
+use super::{
+    charts, collapse_runs, sites_to_show, Report, ReportError, SeriesReport, EXTREME_SITES_SHOWN,
+    MAX_SITES_SHOWN,
+};
 use crate::store::FitSummary;
 
 /// The cautions every report carries (README.md § Cautions says the same).
@@ -24,6 +27,13 @@ p.meta { color: #555; margin-top: 0; }
 figure { margin: 0.8em 0; }
 figcaption { color: #444; font-size: 0.9em; margin-top: 0.2em; }
 svg { max-width: 100%; height: auto; display: block; }
+body { overflow-wrap: anywhere; }
+.scroll { overflow-x: auto; max-width: 100%; }
+.panels { display: grid; grid-template-columns: repeat(auto-fill, minmax(240px, 1fr)); gap: 0.6em; }
+.panels figure { margin: 0; min-width: 0; }
+td.count { white-space: nowrap; }
+table { overflow-wrap: normal; }
+td.num { white-space: nowrap; }
 table { border-collapse: collapse; font-size: 0.85em; margin: 0.5em 0; }
 th, td { border: 1px solid #ddd; padding: 0.25em 0.5em; text-align: left; vertical-align: top; }
 th { background: #f3f3f3; }
@@ -87,16 +97,24 @@ fn section(out: &mut String, s: &SeriesReport) -> Result<(), ReportError> {
         esc(&fit_line(latest))
     );
 
+    let log = s.transform == "log";
+    let units = format!("{} units", s.response);
+    let sd_axis = if log {
+        format!("sd (model scale: natural log of {}; log axis)", s.response)
+    } else {
+        format!("sd (model scale = response scale, {units}; log axis)")
+    };
     // (a) Variance components across versions.
     if let Some(drift) = &s.drift {
         let _ = writeln!(
             out,
             "<h3>Variance components across versions</h3>\n<figure>\n{}\n<figcaption>Median and \
              90% interval of each standard deviation on the model scale, one point per published \
-             version. A red ring marks a flagged version: its 90% interval excludes the previous \
+             version, on a log axis so that the wide intervals of early versions do not squash \
+             later ones. A red ring marks a flagged version: its 90% interval excludes the previous \
              version's median. This is a screening rule, not a statistical test; a flag asks a \
              person to look.</figcaption>\n</figure>",
-            charts::variance_components(drift)?
+            charts::variance_components(drift, &sd_axis)?
         );
         let flagged: Vec<_> = drift
             .versions
@@ -108,7 +126,7 @@ fn section(out: &mut String, s: &SeriesReport) -> Result<(), ReportError> {
         } else {
             let _ = writeln!(
                 out,
-                "<table>\n<caption>Flagged changes ({})</caption>\n<tr><th>version</th>\
+                "<div class=\"scroll\"><table>\n<caption>Flagged changes ({})</caption>\n<tr><th>version</th>\
                  <th>data through</th><th>quantity</th><th>previous median</th><th>q05</th>\
                  <th>q50</th><th>q95</th><th>change</th></tr>",
                 flagged.len()
@@ -131,15 +149,15 @@ fn section(out: &mut String, s: &SeriesReport) -> Result<(), ReportError> {
                         .map_or_else(|| "–".to_string(), |d| format!("{d:+.4}"))
                 );
             }
-            let _ = writeln!(out, "</table>");
+            let _ = writeln!(out, "</table></div>");
         }
     }
 
     // (b) Interval widths by target.
-    let units = if s.transform == "log" {
-        "response units, back-transformed"
+    let width_units = if log {
+        format!("response scale, {units}, back-transformed")
     } else {
-        "response units"
+        format!("response scale, {units}")
     };
     if s.widths.is_empty() {
         let _ = writeln!(out, "<p>The latest version has no forecasts.</p>");
@@ -151,7 +169,7 @@ fn section(out: &mut String, s: &SeriesReport) -> Result<(), ReportError> {
              version's forecasts, per target: dot = median, box = middle half, line = range. \
              A monitored site next year is narrow when years vary little; an unmonitored site \
              is wide when sites differ a lot.</figcaption>\n</figure>",
-            charts::interval_widths(&s.widths, units)?
+            charts::interval_widths(&s.widths, &width_units)?
         );
     }
 
@@ -168,12 +186,77 @@ fn section(out: &mut String, s: &SeriesReport) -> Result<(), ReportError> {
             ),
             None => String::new(),
         };
+        let (scale, reading) = if log {
+            (
+                charts::EffectScale::Factor,
+                " The series is fitted on the log scale, so each effect is drawn as exp(effect): \
+                 the factor by which the site's typical value differs from the network median \
+                 (2 = twice the median, 0.5 = half), on a log axis.",
+            )
+        } else {
+            (
+                charts::EffectScale::Additive,
+                " Effects are in the response's own units: the difference from the network mean.",
+            )
+        };
         let _ = writeln!(
             out,
             "<h3>Site effects</h3>\n<figure>\n{}\n<figcaption>Each site's effect in the latest \
-             version, ranked by its median, with its 90% interval.{note}</figcaption>\n</figure>",
-            charts::site_effects(&shown, gap)?
+             version, ranked by its median, with its 90% interval.{reading}{note}</figcaption>\n\
+             </figure>",
+            charts::site_effects(&shown, gap, scale, &format!("response scale, {units}"))?
         );
+    }
+
+    // (d) Small multiples: observed values and next year's band at chosen sites.
+    if !s.panels.is_empty() || !s.unknown_sites.is_empty() {
+        let which = if s.panels_named {
+            "the sites named in <code>report_sites</code>".to_string()
+        } else {
+            format!(
+                "the {} sites with the largest site effects (either direction; name others \
+                 with <code>report_sites</code> in the config)",
+                EXTREME_SITES_SHOWN.min(s.panels.len())
+            )
+        };
+        let _ = writeln!(
+            out,
+            "<h3>Observed values and next year's forecast at chosen sites</h3>\n\
+             <p>For {which}: every stored value by year (blue dots, response scale, {}{}) and \
+             the forecast for next year at that site (target <code>known_site_new_year</code>): \
+             the 80% interval q10–q90 as the shaded bar, the median as its line.</p>\n\
+             <div class=\"panels\">",
+            esc(&units),
+            if log { ", log axis" } else { "" }
+        );
+        for p in &s.panels {
+            let panel = charts::SitePanel {
+                site: &p.site,
+                observed: &p.observed,
+                band: p.band,
+            };
+            let _ = writeln!(
+                out,
+                "<figure>\n{}\n<figcaption>{}{}</figcaption>\n</figure>",
+                charts::site_panel(&panel, log, &units)?,
+                esc(&p.site),
+                if p.band.is_none() {
+                    " — no next-year forecast in the latest version"
+                } else {
+                    ""
+                }
+            );
+        }
+        let _ = writeln!(out, "</div>");
+        if !s.unknown_sites.is_empty() {
+            let names: Vec<String> = s.unknown_sites.iter().map(|n| esc(n)).collect();
+            let _ = writeln!(
+                out,
+                "<p class=\"warning\">No stored value or forecast for these sites named in \
+                 <code>report_sites</code>: {}.</p>",
+                names.join(", ")
+            );
+        }
     }
     let _ = writeln!(out, "</section>");
     Ok(())
@@ -187,10 +270,14 @@ fn run_history(out: &mut String, r: &Report) {
     }
     let _ = writeln!(
         out,
-        "<table>\n<tr><th>run</th><th>trigger</th><th>started</th><th>finished</th>\
-         <th>status</th><th>outcome per series</th><th>message</th></tr>"
+        "<p>Consecutive runs that ended the same way (same trigger, status, message and \
+         outcome per series) are shown as one line with their count.</p>\n\
+         <div class=\"scroll\"><table>\n<tr><th>run</th><th>runs</th><th>trigger</th>\
+         <th>started</th><th>finished</th><th>status</th><th>outcome per series</th>\
+         <th>message</th></tr>"
     );
-    for entry in &r.runs {
+    for (newest, oldest, count) in collapse_runs(&r.runs) {
+        let (entry, first) = (&r.runs[newest], &r.runs[oldest].run);
         let run = &entry.run;
         let mut outcomes = String::new();
         for s in &entry.series {
@@ -207,13 +294,22 @@ fn run_history(out: &mut String, r: &Report) {
                     .unwrap_or_default()
             );
         }
+        let (ids, started) = if count == 1 {
+            (run.run_id.to_string(), esc(&run.started_at))
+        } else {
+            (
+                format!("{}–{}", first.run_id, run.run_id),
+                format!("{} … {}", esc(&first.started_at), esc(&run.started_at)),
+            )
+        };
         let _ = writeln!(
             out,
-            "<tr><td class=\"num\">{}</td><td>{}</td><td>{}</td><td>{}</td>\
-             <td class=\"{}\">{}</td><td>{}</td><td>{}</td></tr>",
-            run.run_id,
+            "<tr><td class=\"num\">{}</td><td class=\"num count\">×{}</td><td>{}</td>\
+             <td>{}</td><td>{}</td><td class=\"{}\">{}</td><td>{}</td><td>{}</td></tr>",
+            ids,
+            count,
             esc(run.trigger.as_str()),
-            esc(&run.started_at),
+            started,
             esc(run.finished_at.as_deref().unwrap_or("–")),
             esc(run.status.as_str()),
             esc(run.status.as_str()),
@@ -221,7 +317,7 @@ fn run_history(out: &mut String, r: &Report) {
             esc(run.message.as_deref().unwrap_or(""))
         );
     }
-    let _ = writeln!(out, "</table>\n</section>");
+    let _ = writeln!(out, "</table></div>\n</section>");
 }
 
 /// The whole page.
@@ -244,9 +340,10 @@ pub fn render(r: &Report) -> Result<String, ReportError> {
     run_history(&mut out, r);
     let _ = writeln!(
         out,
-        "<section>\n<h2>Cautions</h2>\n<p class=\"caution\">{}</p>\n<p>Variance components \
-         and effects are on the model scale of each series (after its transform); forecast \
-         widths are on the response's own scale. The drift flag is a screening rule, not a \
+        "<section>\n<h2>Cautions</h2>\n<p class=\"caution\">{}</p>\n<p>Standard deviations \
+         are on the model scale of each series (after its transform); site effects of a log \
+         series are shown as factors (exp of the effect), forecast widths and the site charts \
+         on the response's own scale. The drift flag is a screening rule, not a \
          statistical test.</p>\n</section>\n</body>\n</html>",
         esc(CAUTION)
     );

@@ -8,6 +8,7 @@
 //! Invariant: only this module writes SQL (checked by `tests/e2e_store.rs::only_the_store_writes_sql`).
 
 mod drift;
+mod export;
 mod fits;
 mod ingest;
 mod lease;
@@ -28,12 +29,13 @@ use sqlx::sqlite::{
 use sqlx::Row;
 
 pub use drift::ComponentRow;
+pub use export::{DriftExportRow, ForecastExportRow, PosteriorExportRow, VersionDraws};
 pub use fits::{
     ForecastSet, NewExclusion, NewFit, PublishedFit, RecordedFit, RunOrigin, ScenarioValue,
 };
 pub use ingest::{BatchFile, BatchOutcome, BatchRecord};
 pub use lease::{LeaseAttempt, LeaseClaim, LeaseHolder};
-pub use report::{ForecastInterval, RunHistoryEntry, RunSeriesOutcome, SiteEffect};
+pub use report::{ForecastBand, ForecastInterval, RunHistoryEntry, RunSeriesOutcome, SiteEffect};
 pub use series::SeriesRow;
 pub use status::{BatchSummary, FitSummary, RunSummary};
 

@@ -24,6 +24,16 @@ pub struct SiteEffect {
     pub q95: Option<f64>,
 }
 
+/// The q10, q50 and q90 of one site's forecast row of one target.
+#[derive(Debug, Clone, PartialEq, sqlx::FromRow)]
+pub struct ForecastBand {
+    pub site: String,
+    pub year: i64,
+    pub q10: Option<f64>,
+    pub q50: Option<f64>,
+    pub q90: Option<f64>,
+}
+
 /// What one run did for one series (a `run_series` row).
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct RunSeriesOutcome {
@@ -63,6 +73,26 @@ impl Store {
             })
             .collect::<Result<_, sqlx::Error>>()
             .map_err(|e| self.sql(e))
+    }
+
+    /// The per-site rows of `target` in the forecasts of `fit_id` (the baseline scenario
+    /// when a fit has several), by site.
+    pub async fn forecast_bands(
+        &self,
+        fit_id: i64,
+        target: &str,
+    ) -> Result<Vec<ForecastBand>, StoreError> {
+        sqlx::query_as(
+            "SELECT site, year, q10, q50, q90 FROM forecasts
+             WHERE fit_id = ?1 AND target = ?2 AND site IS NOT NULL
+               AND (scenario IS NULL OR scenario = 'baseline')
+             ORDER BY site, year",
+        )
+        .bind(fit_id)
+        .bind(target)
+        .fetch_all(&self.pool)
+        .await
+        .map_err(|e| self.sql(e))
     }
 
     /// The site effects of `fit_id`, ordered by their median (lowest first).
