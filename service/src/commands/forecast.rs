@@ -41,7 +41,7 @@ async fn rewrite(
     let names = super::select_series(ctx, series.as_deref())?;
     let mut rewritten = 0;
     for s in names {
-        let Some(latest) = store.latest_published(&s.name).await? else {
+        let Some(latest) = store.serving_fit(&s.name).await? else {
             println!("{}: no published version yet", s.name);
             continue;
         };

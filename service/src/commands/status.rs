@@ -82,8 +82,8 @@ pub async fn run(ctx: &Context, json: bool) -> anyhow::Result<()> {
     let mut series = Vec::new();
     for s in &config.series {
         let data_watermark = store.series_watermark(&s.columns()).await?;
-        let latest_fit = store.latest_fit_attempt(&s.name).await?;
-        let latest_published = store.latest_published_fit(&s.name).await?;
+        let latest_fit = store.newest_attempt_summary(&s.name).await?;
+        let latest_published = store.serving_fit_summary(&s.name).await?;
         let data_changed = latest_fit
             .as_ref()
             .is_none_or(|f| data_watermark > f.watermark);

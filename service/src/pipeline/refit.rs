@@ -270,7 +270,7 @@ async fn detect_change(
 ) -> anyhow::Result<Option<i64>> {
     let watermark = store.series_watermark(&series.columns()).await?;
     if !opts.force {
-        if let Some(last) = store.latest_attempt_watermark(&series.name).await? {
+        if let Some(last) = store.fitted_watermark(&series.name).await? {
             if last >= watermark {
                 return Ok(None);
             }
@@ -316,7 +316,7 @@ async fn record_failure(
 
 /// The latest published version's fit id and warm start, when its draws decode.
 async fn warm_start(store: &Store, series: &str) -> anyhow::Result<Option<(i64, WarmStart)>> {
-    let Some(published) = store.latest_published(series).await? else {
+    let Some(published) = store.serving_fit(series).await? else {
         return Ok(None);
     };
     let Some((_, blob)) = store.fit_draws(published.fit_id).await? else {

@@ -227,8 +227,8 @@ impl Report {
             sites,
         } in series
         {
-            let latest = store.latest_published_fit(name).await?;
-            let attempt = store.latest_fit_attempt(name).await?;
+            let latest = store.serving_fit_summary(name).await?;
+            let attempt = store.newest_attempt_summary(name).await?;
             let unserved_attempt = attempt.filter(|a| {
                 a.status != crate::vocabulary::FitStatus::Published
                     && latest.as_ref().is_none_or(|l| a.version > l.version)

@@ -1,5 +1,5 @@
 //! Writing fits: a version (fit row, summaries, draws, forecasts) in one transaction;
-//! rewriting the forecasts of the latest version; runs and their per-series outcomes.
+//! rewriting the forecasts of the latest version.
 //!
 //! Invariant: everything a version consists of becomes visible in one transaction, or not
 //! at all (`tests/e2e_pipeline.rs`).
@@ -8,7 +8,7 @@ use sqlx::{QueryBuilder, Row, Sqlite, Transaction};
 use tidemark_model::{ForecastRow, Summary};
 
 use super::{now_utc, Store, StoreError};
-use crate::vocabulary::{FitStatus, RunStatus, RunTrigger};
+use crate::vocabulary::FitStatus;
 
 /// Everything about a fit attempt except its summaries, draws and forecasts.
 #[derive(Debug, Clone, Default)]
@@ -94,15 +94,6 @@ async fn insert_summaries(
         q.build().execute(&mut **tx).await?;
     }
     Ok(())
-}
-
-/// Who makes a run: its trigger (`schedule`, `catch-up`, `manual`, `demo`), the command
-/// of the process, and that process's lease holder id when it holds the lease.
-#[derive(Debug, Clone, PartialEq, Eq)]
-pub struct RunOrigin {
-    pub trigger: RunTrigger,
-    pub command: &'static str,
-    pub holder: Option<String>,
 }
 
 /// A covariate value a forecast scenario holds fixed (original units).
@@ -261,7 +252,7 @@ impl Store {
     }
 
     /// The latest published version of `series`, if any.
-    pub async fn latest_published(&self, series: &str) -> Result<Option<PublishedFit>, StoreError> {
+    pub async fn serving_fit(&self, series: &str) -> Result<Option<PublishedFit>, StoreError> {
         let row = sqlx::query(
             "SELECT fit_id, version, watermark, transform FROM fits
              WHERE series = ?1 AND status = 'published' ORDER BY version DESC LIMIT 1",
@@ -283,7 +274,7 @@ impl Store {
     }
 
     /// The watermark of the latest fit attempt of `series` (published or not).
-    pub async fn latest_attempt_watermark(&self, series: &str) -> Result<Option<i64>, StoreError> {
+    pub async fn fitted_watermark(&self, series: &str) -> Result<Option<i64>, StoreError> {
         sqlx::query_scalar(
             "SELECT watermark FROM fits WHERE series = ?1 ORDER BY fit_id DESC LIMIT 1",
         )
@@ -323,63 +314,5 @@ impl Store {
             tx.commit().await
         };
         run.await.map_err(|e| self.sql(e))
-    }
-
-    /// Open a run record; returns its id.
-    pub async fn start_run(&self, origin: &RunOrigin) -> Result<i64, StoreError> {
-        sqlx::query_scalar(
-            "INSERT INTO runs (trigger, started_at, status, command, holder)
-             VALUES (?1, ?2, 'running', ?3, ?4) RETURNING run_id",
-        )
-        .bind(origin.trigger)
-        .bind(now_utc())
-        .bind(origin.command)
-        .bind(&origin.holder)
-        .fetch_one(&self.pool)
-        .await
-        .map_err(|e| self.sql(e))
-    }
-
-    /// Close a run record.
-    pub async fn finish_run(
-        &self,
-        run_id: i64,
-        status: RunStatus,
-        message: Option<&str>,
-    ) -> Result<(), StoreError> {
-        sqlx::query(
-            "UPDATE runs SET finished_at = ?2, status = ?3, message = ?4 WHERE run_id = ?1",
-        )
-        .bind(run_id)
-        .bind(now_utc())
-        .bind(status)
-        .bind(message)
-        .execute(&self.pool)
-        .await
-        .map_err(|e| self.sql(e))?;
-        Ok(())
-    }
-
-    /// Record what a run did for one series.
-    pub async fn record_run_series(
-        &self,
-        run_id: i64,
-        series: &str,
-        outcome: &str,
-        fit_id: Option<i64>,
-        message: Option<&str>,
-    ) -> Result<(), StoreError> {
-        sqlx::query(
-            "INSERT OR REPLACE INTO run_series (run_id, series, outcome, fit_id, message) VALUES (?1, ?2, ?3, ?4, ?5)",
-        )
-        .bind(run_id)
-        .bind(series)
-        .bind(outcome)
-        .bind(fit_id)
-        .bind(message)
-        .execute(&self.pool)
-        .await
-        .map_err(|e| self.sql(e))?;
-        Ok(())
     }
 }

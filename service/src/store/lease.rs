@@ -145,15 +145,8 @@ impl Store {
                 ),
                 None => "abandoned: its process stopped before the run finished".to_string(),
             };
-            let abandoned_runs: Vec<i64> = sqlx::query_scalar(
-                "UPDATE runs SET status = 'abandoned', finished_at = ?1,
-                        message = COALESCE(message || '; ', '') || ?2
-                 WHERE status = 'running' RETURNING run_id",
-            )
-            .bind(&now)
-            .bind(&message)
-            .fetch_all(&mut *tx)
-            .await?;
+            let abandoned_runs =
+                super::runs::mark_running_abandoned(&mut tx, &now, &message).await?;
             tx.commit().await?;
             Ok(LeaseAttempt::Acquired {
                 taken_over,

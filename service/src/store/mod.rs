@@ -30,12 +30,11 @@ use sqlx::Row;
 
 pub use drift::ComponentRow;
 pub use export::{DriftExportRow, ForecastExportRow, PosteriorExportRow, VersionDraws};
-pub use fits::{
-    ForecastSet, NewExclusion, NewFit, PublishedFit, RecordedFit, RunOrigin, ScenarioValue,
-};
+pub use fits::{ForecastSet, NewExclusion, NewFit, PublishedFit, RecordedFit, ScenarioValue};
 pub use ingest::{BatchFile, BatchOutcome, BatchRecord};
 pub use lease::{LeaseAttempt, LeaseClaim, LeaseHolder};
 pub use report::{ForecastBand, ForecastInterval, RunHistoryEntry, RunSeriesOutcome, SiteEffect};
+pub use runs::RunOrigin;
 pub use series::SeriesRow;
 pub use status::{BatchSummary, FitSummary, RunSummary};
 

@@ -1,7 +1,37 @@
-//! Run records that only `serve` needs: skipped ticks and the reference point for a
-//! catch-up run. Opening and closing a run live with the fits (`fits.rs`).
+//! Run records: opening and closing a run, each series' outcome, skipped ticks, the
+//! reference point for a catch-up run, and marking runs `abandoned`.
+
+use sqlx::{Sqlite, SqliteConnection};
 
 use super::{now_utc, Store, StoreError};
+use crate::vocabulary::{RunStatus, RunTrigger};
+
+/// Who makes a run: its trigger (`schedule`, `catch-up`, `manual`, `demo`), the command
+/// of the process, and that process's lease holder id when it holds the lease.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct RunOrigin {
+    pub trigger: RunTrigger,
+    pub command: &'static str,
+    pub holder: Option<String>,
+}
+
+/// Mark every run still `running` as `abandoned` at `now`, appending `message`; returns
+/// their ids. The one copy of this update: shutdown and a lease takeover both use it.
+pub(super) async fn mark_running_abandoned(
+    conn: &mut SqliteConnection,
+    now: &str,
+    message: &str,
+) -> Result<Vec<i64>, sqlx::Error> {
+    sqlx::query_scalar::<Sqlite, i64>(
+        "UPDATE runs SET status = 'abandoned', finished_at = ?1,
+                message = COALESCE(message || '; ', '') || ?2
+         WHERE status = 'running' RETURNING run_id",
+    )
+    .bind(now)
+    .bind(message)
+    .fetch_all(conn)
+    .await
+}
 
 impl Store {
     /// Record a tick that did no work (status `skipped`), with the reason.
@@ -40,15 +70,68 @@ impl Store {
     /// Mark every run still `running` as `abandoned`, with `message`; returns their ids.
     /// Only the lease holder calls this, when no run of its own can still be writing.
     pub async fn abandon_running_runs(&self, message: &str) -> Result<Vec<i64>, StoreError> {
+        let run = async {
+            let mut conn = self.pool.acquire().await?;
+            mark_running_abandoned(&mut conn, &now_utc(), message).await
+        };
+        run.await.map_err(|e| self.sql(e))
+    }
+
+    /// Open a run record; returns its id.
+    pub async fn start_run(&self, origin: &RunOrigin) -> Result<i64, StoreError> {
         sqlx::query_scalar(
-            "UPDATE runs SET status = 'abandoned', finished_at = ?1,
-                    message = COALESCE(message || '; ', '') || ?2
-             WHERE status = 'running' RETURNING run_id",
+            "INSERT INTO runs (trigger, started_at, status, command, holder)
+             VALUES (?1, ?2, 'running', ?3, ?4) RETURNING run_id",
         )
+        .bind(origin.trigger)
         .bind(now_utc())
-        .bind(message)
-        .fetch_all(&self.pool)
+        .bind(origin.command)
+        .bind(&origin.holder)
+        .fetch_one(&self.pool)
         .await
         .map_err(|e| self.sql(e))
+    }
+
+    /// Close a run record.
+    pub async fn finish_run(
+        &self,
+        run_id: i64,
+        status: RunStatus,
+        message: Option<&str>,
+    ) -> Result<(), StoreError> {
+        sqlx::query(
+            "UPDATE runs SET finished_at = ?2, status = ?3, message = ?4 WHERE run_id = ?1",
+        )
+        .bind(run_id)
+        .bind(now_utc())
+        .bind(status)
+        .bind(message)
+        .execute(&self.pool)
+        .await
+        .map_err(|e| self.sql(e))?;
+        Ok(())
+    }
+
+    /// Record what a run did for one series.
+    pub async fn record_run_series(
+        &self,
+        run_id: i64,
+        series: &str,
+        outcome: &str,
+        fit_id: Option<i64>,
+        message: Option<&str>,
+    ) -> Result<(), StoreError> {
+        sqlx::query(
+            "INSERT OR REPLACE INTO run_series (run_id, series, outcome, fit_id, message) VALUES (?1, ?2, ?3, ?4, ?5)",
+        )
+        .bind(run_id)
+        .bind(series)
+        .bind(outcome)
+        .bind(fit_id)
+        .bind(message)
+        .execute(&self.pool)
+        .await
+        .map_err(|e| self.sql(e))?;
+        Ok(())
     }
 }

@@ -131,7 +131,10 @@ impl Store {
     }
 
     /// The newest fit attempt of `series`, whatever its status.
-    pub async fn latest_fit_attempt(&self, series: &str) -> Result<Option<FitSummary>, StoreError> {
+    pub async fn newest_attempt_summary(
+        &self,
+        series: &str,
+    ) -> Result<Option<FitSummary>, StoreError> {
         let sql = format!(
             "SELECT {FIT_COLUMNS} FROM fits WHERE series = ?1 ORDER BY fit_id DESC LIMIT 1"
         );
@@ -139,7 +142,7 @@ impl Store {
     }
 
     /// The latest published fit of `series` (the row of the `latest_fits` view).
-    pub async fn latest_published_fit(
+    pub async fn serving_fit_summary(
         &self,
         series: &str,
     ) -> Result<Option<FitSummary>, StoreError> {
