@@ -112,6 +112,29 @@ pub enum Transform {
     Log,
 }
 
+impl Transform {
+    /// The name used in configs, the database and screens.
+    pub fn as_str(&self) -> &'static str {
+        match self {
+            Transform::None => "none",
+            Transform::Log => "log",
+        }
+    }
+
+    /// The transform named `name`, if it is one.
+    pub fn parse(name: &str) -> Option<Transform> {
+        [Transform::None, Transform::Log]
+            .into_iter()
+            .find(|t| t.as_str() == name)
+    }
+}
+
+impl std::fmt::Display for Transform {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
 /// Covariate values of a forecast (original units); `baseline` uses the network means.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Scenario {

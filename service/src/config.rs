@@ -3,7 +3,6 @@
 //! once, naming the file and the key, instead of surfacing in the middle of a nightly run.
 
 use std::collections::{BTreeMap, BTreeSet};
-use std::fmt;
 use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
@@ -122,21 +121,8 @@ impl SeriesConfig {
     }
 }
 
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
-#[serde(rename_all = "snake_case")]
-pub enum Transform {
-    None,
-    Log,
-}
-
-impl fmt::Display for Transform {
-    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        f.write_str(match self {
-            Transform::None => "none",
-            Transform::Log => "log",
-        })
-    }
-}
+/// The model crate's own type: the config names it, nothing converts it.
+pub use tidemark_model::Transform;
 
 /// Prior for a standard deviation, on the model scale of the response.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]

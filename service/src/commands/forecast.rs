@@ -10,8 +10,8 @@ use std::sync::Arc;
 use super::Context;
 use crate::lease::Lease;
 use crate::pipeline::draws;
-use crate::pipeline::input::model_transform;
 use crate::vocabulary::{RunStatus, RunTrigger};
+use tidemark_model::Transform;
 
 pub async fn run(ctx: &Context, series: Option<String>) -> anyhow::Result<()> {
     let store = ctx.open_store().await?;
@@ -54,11 +54,11 @@ async fn rewrite(
         let decoded = draws::decode(&blob)
             .with_context(|| format!("series {}: fit {}", s.name, latest.fit_id))?;
         // The transform the version was fitted with, not today's config.
-        let transform = match latest.transform.as_deref() {
-            Some("log") => tidemark_model::Transform::Log,
-            Some("none") => tidemark_model::Transform::None,
-            _ => model_transform(s.transform),
-        };
+        let transform = latest
+            .transform
+            .as_deref()
+            .and_then(Transform::parse)
+            .unwrap_or(s.transform);
         let forecasts = crate::pipeline::forecasts::baseline(&decoded.basis, transform, s);
         store
             .replace_forecasts(latest.fit_id, forecasts.set())

@@ -6,14 +6,8 @@ use tidemark_model::{Data, DataBuilder, ModelError};
 use crate::config::{SeriesConfig, Transform};
 use crate::store::SeriesRow;
 
-/// A visit left out of a fit, and why.
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
-pub struct Exclusion {
-    pub site: String,
-    pub year: i64,
-    pub visit: String,
-    pub reason: String,
-}
+/// A visit left out of a fit, and why: the row the store keeps in `fit_exclusions`.
+pub use crate::store::NewExclusion as Exclusion;
 
 /// The model input of one series.
 #[derive(Debug, Clone)]
@@ -33,14 +27,6 @@ pub enum InputError {
         site: String,
         year: i64,
     },
-}
-
-/// The transform as the model crate names it.
-pub fn model_transform(t: Transform) -> tidemark_model::Transform {
-    match t {
-        Transform::None => tidemark_model::Transform::None,
-        Transform::Log => tidemark_model::Transform::Log,
-    }
 }
 
 /// Build the model input. A visit without the response is simply not an observation of

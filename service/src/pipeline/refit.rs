@@ -207,16 +207,7 @@ async fn refit_series(
             return record_failure(store, fit, report, e.to_string(), &[], started).await;
         }
     };
-    let exclusions: Vec<NewExclusion> = built
-        .excluded
-        .iter()
-        .map(|e| NewExclusion {
-            site: e.site.clone(),
-            year: e.year,
-            visit: e.visit.clone(),
-            reason: e.reason.clone(),
-        })
-        .collect();
+    let exclusions: Vec<NewExclusion> = built.excluded;
     let data = Arc::new(built.data);
     report.load_seconds = started.elapsed().as_secs_f64();
     fit.n_obs = Some(data.n_obs() as i64);
@@ -495,7 +486,7 @@ async fn publish(
     }))
     .ok();
 
-    let transform = input::model_transform(series.transform);
+    let transform = series.transform;
     let (summaries, blob, forecasts) = if published {
         let post = Arc::new(post);
         let p2 = post.clone();

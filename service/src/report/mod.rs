@@ -68,7 +68,7 @@ pub struct TargetWidths {
 
 /// What the page shows about one series.
 #[derive(Debug, Clone)]
-pub struct SeriesReport {
+pub struct SeriesSection {
     pub name: String,
     /// `none` or `log`: the scale of forecast widths is the response's own.
     pub transform: String,
@@ -113,7 +113,7 @@ pub struct ReportSeries {
 pub struct Report {
     pub generated_at: String,
     pub database: String,
-    pub series: Vec<SeriesReport>,
+    pub series: Vec<SeriesSection>,
     pub runs: Vec<RunHistoryEntry>,
 }
 
@@ -275,7 +275,7 @@ impl Report {
                     }
                 }
             }
-            out.push(SeriesReport {
+            out.push(SeriesSection {
                 name: name.clone(),
                 transform: transform.clone(),
                 response: response.clone(),

@@ -5,7 +5,7 @@
 use std::fmt::Write as _;
 
 use super::{
-    charts, collapse_runs, sites_to_show, Report, ReportError, SeriesReport, EXTREME_SITES_SHOWN,
+    charts, collapse_runs, sites_to_show, Report, ReportError, SeriesSection, EXTREME_SITES_SHOWN,
     MAX_SITES_SHOWN,
 };
 use crate::store::FitSummary;
@@ -69,7 +69,7 @@ fn fit_line(f: &FitSummary) -> String {
     )
 }
 
-fn section(out: &mut String, s: &SeriesReport) -> Result<(), ReportError> {
+fn section(out: &mut String, s: &SeriesSection) -> Result<(), ReportError> {
     let _ = writeln!(out, "<section>\n<h2>Series {}</h2>", esc(&s.name));
     if let Some(a) = &s.unserved_attempt {
         let _ = writeln!(

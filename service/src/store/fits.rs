@@ -39,7 +39,7 @@ pub struct NewFit {
 }
 
 /// A visit a fit left out, and why (stored in `fit_exclusions`).
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub struct NewExclusion {
     pub site: String,
     pub year: i64,
