@@ -325,50 +325,14 @@ impl Config {
     /// Parse and validate config text. `file` names it in messages; relative paths are
     /// resolved against `dir`.
     pub fn parse(text: &str, file: &str, dir: &Path) -> Result<Config, ConfigError> {
-        let invalid = |key: &str, message: String| ConfigError::Invalid {
+        let invalid = |(key, message): Problem| ConfigError::Invalid {
             file: file.to_string(),
-            key: key.to_string(),
+            key,
             location: String::new(),
             message,
         };
-
-        let de = toml::Deserializer::new(text);
-        let raw: RawConfig = serde_path_to_error::deserialize(de).map_err(|e| {
-            let key = e.path().to_string();
-            let inner = e.into_inner();
-            let location = inner
-                .span()
-                .map(|span| {
-                    let (line, col) = line_col(text, span.start);
-                    format!(" (line {line}, column {col})")
-                })
-                .unwrap_or_default();
-            ConfigError::Invalid {
-                file: file.to_string(),
-                key: if key == "." {
-                    "(top level)".into()
-                } else {
-                    key
-                },
-                location,
-                message: inner.message().trim().to_string(),
-            }
-        })?;
-
-        let resolve = |key: &str, p: &str| -> Result<PathBuf, ConfigError> {
-            if p.trim().is_empty() {
-                return Err(invalid(
-                    key,
-                    "must name a path, found an empty string".into(),
-                ));
-            }
-            let p = Path::new(p);
-            Ok(if p.is_absolute() {
-                p.to_path_buf()
-            } else {
-                dir.join(p)
-            })
-        };
+        let raw = deserialize_raw(text, file)?;
+        let resolve = |key: &str, p: &str| resolve_path(dir, key, p).map_err(invalid);
         let database = resolve("store.database", &raw.store.database)?;
         let feed = FeedDirs {
             inbox: resolve("feed.inbox", &raw.feed.inbox)?,
@@ -376,177 +340,24 @@ impl Config {
             quarantine: resolve("feed.quarantine", &raw.feed.quarantine)?,
         };
         let mut schedule = Schedule::parse(&raw.schedule.cron, &raw.schedule.timezone)
-            .map_err(|e| invalid(e.key, e.message))?;
+            .map_err(|e| invalid((e.key.to_string(), e.message)))?;
         schedule.catch_up = raw.schedule.catch_up;
 
-        if raw.series.is_empty() {
-            return Err(invalid(
-                "series",
+        let mut seen = SeenSoFar::default();
+        let series = raw
+            .series
+            .into_iter()
+            .enumerate()
+            .map(|(i, rs)| check_series(i, rs, &mut seen))
+            .collect::<Result<Vec<_>, _>>()
+            .map_err(invalid)?;
+        let keys = seen.keys.ok_or_else(|| {
+            invalid((
+                "series".into(),
                 "at least one [[series]] is required (it also names the site and year columns of the feed)"
                     .into(),
-            ));
-        }
-
-        let mut keys: Option<KeyColumns> = None;
-        let mut names = BTreeSet::new();
-        // Column -> (kind, first key that used it), so a column is typed the same everywhere.
-        let mut column_kind: BTreeMap<String, (&'static str, String)> = BTreeMap::new();
-        let mut series = Vec::with_capacity(raw.series.len());
-
-        for (i, rs) in raw.series.into_iter().enumerate() {
-            let at = |k: &str| format!("series[{i}].{k}");
-            for (k, v) in [
-                ("name", &rs.name),
-                ("response", &rs.response),
-                ("site", &rs.site),
-                ("year", &rs.year),
-            ] {
-                if v.trim().is_empty() {
-                    return Err(invalid(&at(k), "must not be empty".into()));
-                }
-            }
-            if !names.insert(rs.name.clone()) {
-                return Err(invalid(
-                    &at("name"),
-                    format!(
-                        "series name {:?} is used twice; names must be unique",
-                        rs.name
-                    ),
-                ));
-            }
-            let transform = match rs.transform.as_str() {
-                "none" => Transform::None,
-                "log" => Transform::Log,
-                other => {
-                    return Err(invalid(
-                        &at("transform"),
-                        format!("must be \"none\" or \"log\", found {other:?}"),
-                    ))
-                }
-            };
-            if let Some(v) = &rs.visit {
-                if v.trim().is_empty() {
-                    return Err(invalid(
-                        &at("visit"),
-                        "must not be empty (leave the key out when there is no visit column)"
-                            .into(),
-                    ));
-                }
-            }
-            let these = KeyColumns {
-                site: rs.site.clone(),
-                year: rs.year.clone(),
-                visit: rs.visit.clone(),
-            };
-            if these.site == these.year
-                || Some(&these.site) == these.visit.as_ref()
-                || Some(&these.year) == these.visit.as_ref()
-            {
-                return Err(invalid(
-                    &at("site"),
-                    "site, year and visit must be three different columns".into(),
-                ));
-            }
-            match &keys {
-                None => keys = Some(these.clone()),
-                Some(k) if *k != these => {
-                    return Err(invalid(
-                        &at("site"),
-                        format!(
-                            "every series must use the same site/year/visit columns (a current limit): series[0] uses {}, this one uses {}",
-                            describe_keys(k),
-                            describe_keys(&these)
-                        ),
-                    ))
-                }
-                Some(_) => {}
-            }
-            let key_cols: Vec<&str> = [
-                Some(rs.site.as_str()),
-                Some(rs.year.as_str()),
-                rs.visit.as_deref(),
-            ]
-            .into_iter()
-            .flatten()
-            .collect();
-
-            let mut seen = BTreeSet::new();
-            let roles = std::iter::once(("response", &rs.response, "numeric"))
-                .chain(rs.covariates.iter().map(|c| ("covariates", c, "numeric")))
-                .chain(rs.groups.iter().map(|g| ("groups", g, "label")));
-            for (role, col, kind) in roles {
-                let key = at(role);
-                if col.trim().is_empty() {
-                    return Err(invalid(&key, "column names must not be empty".into()));
-                }
-                if key_cols.contains(&col.as_str()) {
-                    return Err(invalid(
-                        &key,
-                        format!("{col:?} is a site/year/visit column and cannot also be a {role} column"),
-                    ));
-                }
-                if !seen.insert(col.clone()) {
-                    return Err(invalid(
-                        &key,
-                        format!("column {col:?} appears more than once in this series (response, covariates and groups must be distinct)"),
-                    ));
-                }
-                match column_kind.get(col) {
-                    Some((k, first)) if *k != kind => {
-                        return Err(invalid(
-                            &key,
-                            format!("column {col:?} is a {kind} column here but a {k} column in {first}; a column is either numeric or a group label everywhere"),
-                        ))
-                    }
-                    Some(_) => {}
-                    None => {
-                        column_kind.insert(col.clone(), (kind, key.clone()));
-                    }
-                }
-            }
-
-            let mut named = BTreeSet::new();
-            for site in &rs.report_sites {
-                if site.trim().is_empty() {
-                    return Err(invalid(
-                        &at("report_sites"),
-                        "site codes must not be empty".into(),
-                    ));
-                }
-                if !named.insert(site.as_str()) {
-                    return Err(invalid(
-                        &at("report_sites"),
-                        format!("site {site:?} is named twice"),
-                    ));
-                }
-            }
-            if rs.report_sites.len() > MAX_REPORT_SITES {
-                return Err(invalid(
-                    &at("report_sites"),
-                    format!(
-                        "names {} sites; at most {MAX_REPORT_SITES} fit on the report page",
-                        rs.report_sites.len()
-                    ),
-                ));
-            }
-            check_priors(&rs.priors, &at("priors")).map_err(|(k, m)| invalid(&k, m))?;
-            check_sampler(&rs.sampler, &at("sampler")).map_err(|(k, m)| invalid(&k, m))?;
-
-            series.push(SeriesConfig {
-                name: rs.name,
-                response: rs.response,
-                transform,
-                covariates: rs.covariates,
-                groups: rs.groups,
-                priors: rs.priors,
-                sampler: rs.sampler,
-                known_site_max_gap: rs.known_site_max_gap,
-                report_sites: rs.report_sites,
-            });
-        }
-
-        let keys =
-            keys.ok_or_else(|| invalid("series", "at least one [[series]] is required".into()))?;
+            ))
+        })?;
         Ok(Config {
             path: PathBuf::from(file),
             database,
@@ -690,6 +501,224 @@ fn check_sampler(s: &SamplerConfig, at: &str) -> Result<(), (String, String)> {
                 s.min_ess, saved
             ),
         );
+    }
+    Ok(())
+}
+
+/// A config mistake: the key path and what is wrong.
+type Problem = (String, String);
+
+/// The TOML text into its raw shape; a mistake names the key, line and column.
+fn deserialize_raw(text: &str, file: &str) -> Result<RawConfig, ConfigError> {
+    let de = toml::Deserializer::new(text);
+    serde_path_to_error::deserialize(de).map_err(|e| {
+        let key = e.path().to_string();
+        let inner = e.into_inner();
+        let location = inner
+            .span()
+            .map(|span| {
+                let (line, col) = line_col(text, span.start);
+                format!(" (line {line}, column {col})")
+            })
+            .unwrap_or_default();
+        ConfigError::Invalid {
+            file: file.to_string(),
+            key: if key == "." {
+                "(top level)".into()
+            } else {
+                key
+            },
+            location,
+            message: inner.message().trim().to_string(),
+        }
+    })
+}
+
+/// A path from the config, relative to the config file's folder unless absolute.
+fn resolve_path(dir: &Path, key: &str, p: &str) -> Result<PathBuf, Problem> {
+    if p.trim().is_empty() {
+        return Err((key.into(), "must name a path, found an empty string".into()));
+    }
+    let p = Path::new(p);
+    Ok(if p.is_absolute() {
+        p.to_path_buf()
+    } else {
+        dir.join(p)
+    })
+}
+
+/// What the series checked so far fix for the ones that follow.
+#[derive(Default)]
+struct SeenSoFar {
+    /// The key columns of the first series (every series must use the same).
+    keys: Option<KeyColumns>,
+    names: BTreeSet<String>,
+    /// Column -> (kind, first key that used it), so a column is typed the same everywhere.
+    column_kind: BTreeMap<String, (&'static str, String)>,
+}
+
+/// Check one `[[series]]` table and turn it into its validated form.
+fn check_series(i: usize, rs: RawSeries, seen: &mut SeenSoFar) -> Result<SeriesConfig, Problem> {
+    let at = |k: &str| format!("series[{i}].{k}");
+    for (k, v) in [
+        ("name", &rs.name),
+        ("response", &rs.response),
+        ("site", &rs.site),
+        ("year", &rs.year),
+    ] {
+        if v.trim().is_empty() {
+            return Err((at(k), "must not be empty".into()));
+        }
+    }
+    if !seen.names.insert(rs.name.clone()) {
+        return Err((
+            at("name"),
+            format!(
+                "series name {:?} is used twice; names must be unique",
+                rs.name
+            ),
+        ));
+    }
+    let transform = Transform::parse(&rs.transform).ok_or_else(|| {
+        (
+            at("transform"),
+            format!("must be \"none\" or \"log\", found {:?}", rs.transform),
+        )
+    })?;
+    check_key_columns(&rs, &at, seen)?;
+    check_measured_columns(&rs, &at, seen)?;
+    check_report_sites(&rs.report_sites, &at("report_sites"))?;
+    check_priors(&rs.priors, &at("priors"))?;
+    check_sampler(&rs.sampler, &at("sampler"))?;
+    Ok(SeriesConfig {
+        name: rs.name,
+        response: rs.response,
+        transform,
+        covariates: rs.covariates,
+        groups: rs.groups,
+        priors: rs.priors,
+        sampler: rs.sampler,
+        known_site_max_gap: rs.known_site_max_gap,
+        report_sites: rs.report_sites,
+    })
+}
+
+/// Site, year and visit: three different columns, the same for every series.
+fn check_key_columns(
+    rs: &RawSeries,
+    at: &dyn Fn(&str) -> String,
+    seen: &mut SeenSoFar,
+) -> Result<(), Problem> {
+    if let Some(v) = &rs.visit {
+        if v.trim().is_empty() {
+            return Err((
+                at("visit"),
+                "must not be empty (leave the key out when there is no visit column)".into(),
+            ));
+        }
+    }
+    let these = KeyColumns {
+        site: rs.site.clone(),
+        year: rs.year.clone(),
+        visit: rs.visit.clone(),
+    };
+    if these.site == these.year
+        || Some(&these.site) == these.visit.as_ref()
+        || Some(&these.year) == these.visit.as_ref()
+    {
+        return Err((
+            at("site"),
+            "site, year and visit must be three different columns".into(),
+        ));
+    }
+    match &seen.keys {
+        None => seen.keys = Some(these),
+        Some(k) if *k != these => {
+            return Err((
+                at("site"),
+                format!(
+                    "every series must use the same site/year/visit columns (a current limit): series[0] uses {}, this one uses {}",
+                    describe_keys(k),
+                    describe_keys(&these)
+                ),
+            ))
+        }
+        Some(_) => {}
+    }
+    Ok(())
+}
+
+/// Response, covariates and groups: named, distinct, not key columns, and each column
+/// numeric or a group label in every series.
+fn check_measured_columns(
+    rs: &RawSeries,
+    at: &dyn Fn(&str) -> String,
+    seen: &mut SeenSoFar,
+) -> Result<(), Problem> {
+    let key_cols: Vec<&str> = [
+        Some(rs.site.as_str()),
+        Some(rs.year.as_str()),
+        rs.visit.as_deref(),
+    ]
+    .into_iter()
+    .flatten()
+    .collect();
+    let mut in_series = BTreeSet::new();
+    let roles = std::iter::once(("response", &rs.response, "numeric"))
+        .chain(rs.covariates.iter().map(|c| ("covariates", c, "numeric")))
+        .chain(rs.groups.iter().map(|g| ("groups", g, "label")));
+    for (role, col, kind) in roles {
+        let key = at(role);
+        if col.trim().is_empty() {
+            return Err((key, "column names must not be empty".into()));
+        }
+        if key_cols.contains(&col.as_str()) {
+            return Err((
+                key,
+                format!("{col:?} is a site/year/visit column and cannot also be a {role} column"),
+            ));
+        }
+        if !in_series.insert(col.clone()) {
+            return Err((
+                key,
+                format!("column {col:?} appears more than once in this series (response, covariates and groups must be distinct)"),
+            ));
+        }
+        match seen.column_kind.get(col) {
+            Some((k, first)) if *k != kind => {
+                return Err((
+                    key,
+                    format!("column {col:?} is a {kind} column here but a {k} column in {first}; a column is either numeric or a group label everywhere"),
+                ))
+            }
+            Some(_) => {}
+            None => {
+                seen.column_kind.insert(col.clone(), (kind, key.clone()));
+            }
+        }
+    }
+    Ok(())
+}
+
+/// Sites named for the report: non-empty, each once, at most [`MAX_REPORT_SITES`].
+fn check_report_sites(sites: &[String], key: &str) -> Result<(), Problem> {
+    let mut named = BTreeSet::new();
+    for site in sites {
+        if site.trim().is_empty() {
+            return Err((key.into(), "site codes must not be empty".into()));
+        }
+        if !named.insert(site.as_str()) {
+            return Err((key.into(), format!("site {site:?} is named twice")));
+        }
+    }
+    if sites.len() > MAX_REPORT_SITES {
+        return Err((
+            key.into(),
+            format!(
+                "names {} sites; at most {MAX_REPORT_SITES} fit on the report page",
+                sites.len()
+            ),
+        ));
     }
     Ok(())
 }
