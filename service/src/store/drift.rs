@@ -2,12 +2,11 @@
 //! and variance shares of every published version, in version order.
 
 use serde::Serialize;
-use sqlx::Row;
 
 use super::{Store, StoreError};
 
 /// One posterior quantile summary (kind `sd` or `share`) of one published version.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, sqlx::FromRow)]
 pub struct ComponentRow {
     pub series: String,
     pub version: i64,
@@ -28,9 +27,9 @@ impl Store {
         &self,
         series: Option<&str>,
     ) -> Result<Vec<ComponentRow>, StoreError> {
-        // Shares are not in the `variance_drift` view (a contract that lists sd rows
-        // only), so read the tables it is built on, with the same published-only rule.
-        let rows = sqlx::query(
+        // Read from the tables, not the `variance_drift` view: `drift` computes changes and
+        // flags itself, and a test checks the two computations agree.
+        sqlx::query_as(
             "SELECT f.series, f.version, f.fit_id, f.data_through_year, p.kind, p.term,
                     p.q05, p.q50, p.q95
              FROM fits f
@@ -41,23 +40,7 @@ impl Store {
         .bind(series)
         .fetch_all(&self.pool)
         .await
-        .map_err(|e| self.sql(e))?;
-        rows.iter()
-            .map(|r| {
-                Ok(ComponentRow {
-                    series: r.try_get("series")?,
-                    version: r.try_get("version")?,
-                    fit_id: r.try_get("fit_id")?,
-                    data_through_year: r.try_get("data_through_year")?,
-                    kind: r.try_get("kind")?,
-                    term: r.try_get("term")?,
-                    q05: r.try_get("q05")?,
-                    q50: r.try_get("q50")?,
-                    q95: r.try_get("q95")?,
-                })
-            })
-            .collect::<Result<_, sqlx::Error>>()
-            .map_err(|e| self.sql(e))
+        .map_err(|e| self.sql(e))
     }
 
     /// Names of the series that have at least one published version.

@@ -9,13 +9,12 @@
 //! `abandoned`: every writer of runs holds the lease, so whoever held it before is gone.
 
 use serde::Serialize;
-use sqlx::sqlite::SqliteRow;
-use sqlx::{Row, Sqlite, Transaction};
+use sqlx::{Sqlite, Transaction};
 
 use super::{now_utc, Store, StoreError};
 
 /// Who holds the lease, as stored.
-#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, sqlx::FromRow)]
 pub struct LeaseHolder {
     pub holder: String,
     pub pid: i64,
@@ -51,24 +50,11 @@ pub enum LeaseAttempt {
     Held(LeaseHolder),
 }
 
-fn holder_from_row(r: &SqliteRow) -> Result<LeaseHolder, sqlx::Error> {
-    Ok(LeaseHolder {
-        holder: r.try_get("holder")?,
-        pid: r.try_get("pid")?,
-        host: r.try_get("host")?,
-        acquired_at: r.try_get("acquired_at")?,
-        heartbeat_at: r.try_get("heartbeat_at")?,
-        command: r.try_get("command")?,
-    })
-}
+const HOLDER: &str =
+    "SELECT holder, pid, host, acquired_at, heartbeat_at, command FROM instance_lease WHERE lease_id = 1";
 
 async fn current(tx: &mut Transaction<'_, Sqlite>) -> Result<Option<LeaseHolder>, sqlx::Error> {
-    let row = sqlx::query(
-        "SELECT holder, pid, host, acquired_at, heartbeat_at, command FROM instance_lease WHERE lease_id = 1",
-    )
-    .fetch_optional(&mut **tx)
-    .await?;
-    row.as_ref().map(holder_from_row).transpose()
+    sqlx::query_as(HOLDER).fetch_optional(&mut **tx).await
 }
 
 async fn event(
@@ -189,15 +175,9 @@ impl Store {
 
     /// The current holder, if any.
     pub async fn lease_holder(&self) -> Result<Option<LeaseHolder>, StoreError> {
-        let row = sqlx::query(
-            "SELECT holder, pid, host, acquired_at, heartbeat_at, command FROM instance_lease WHERE lease_id = 1",
-        )
-        .fetch_optional(&self.pool)
-        .await
-        .map_err(|e| self.sql(e))?;
-        row.as_ref()
-            .map(holder_from_row)
-            .transpose()
+        sqlx::query_as(HOLDER)
+            .fetch_optional(&self.pool)
+            .await
             .map_err(|e| self.sql(e))
     }
 }

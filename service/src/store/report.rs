@@ -2,13 +2,12 @@
 //! effects, and the run history with each run's per-series outcomes.
 
 use serde::Serialize;
-use sqlx::Row;
 
 use super::status::RunSummary;
 use super::{Store, StoreError};
 
 /// The 80% interval of one forecast row of a fit.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, sqlx::FromRow)]
 pub struct ForecastInterval {
     pub target: String,
     pub q10: Option<f64>,
@@ -16,8 +15,9 @@ pub struct ForecastInterval {
 }
 
 /// The posterior summary of one site effect of a fit.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, sqlx::FromRow)]
 pub struct SiteEffect {
+    #[sqlx(rename = "level")]
     pub site: String,
     pub q05: Option<f64>,
     pub q50: Option<f64>,
@@ -35,12 +35,20 @@ pub struct ForecastBand {
 }
 
 /// What one run did for one series (a `run_series` row).
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, sqlx::FromRow)]
 pub struct RunSeriesOutcome {
     pub series: String,
     pub outcome: String,
     pub fit_id: Option<i64>,
     pub message: Option<String>,
+}
+
+/// A `run_series` row as read: the outcome and the run it belongs to.
+#[derive(sqlx::FromRow)]
+struct RunSeriesRow {
+    run_id: i64,
+    #[sqlx(flatten)]
+    outcome: RunSeriesOutcome,
 }
 
 /// A run with its per-series outcomes.
@@ -56,23 +64,13 @@ impl Store {
         &self,
         fit_id: i64,
     ) -> Result<Vec<ForecastInterval>, StoreError> {
-        let rows = sqlx::query(
+        sqlx::query_as(
             "SELECT target, q10, q90 FROM forecasts WHERE fit_id = ?1 ORDER BY target, site, year",
         )
         .bind(fit_id)
         .fetch_all(&self.pool)
         .await
-        .map_err(|e| self.sql(e))?;
-        rows.iter()
-            .map(|r| {
-                Ok(ForecastInterval {
-                    target: r.try_get("target")?,
-                    q10: r.try_get("q10")?,
-                    q90: r.try_get("q90")?,
-                })
-            })
-            .collect::<Result<_, sqlx::Error>>()
-            .map_err(|e| self.sql(e))
+        .map_err(|e| self.sql(e))
     }
 
     /// The per-site rows of `target` in the forecasts of `fit_id` (the baseline scenario
@@ -97,7 +95,7 @@ impl Store {
 
     /// The site effects of `fit_id`, ordered by their median (lowest first).
     pub async fn site_effects(&self, fit_id: i64) -> Result<Vec<SiteEffect>, StoreError> {
-        let rows = sqlx::query(
+        sqlx::query_as(
             "SELECT level, q05, q50, q95 FROM posterior_summary
              WHERE fit_id = ?1 AND kind = 'effect' AND term = 'site' AND level IS NOT NULL
              ORDER BY q50, level",
@@ -105,18 +103,7 @@ impl Store {
         .bind(fit_id)
         .fetch_all(&self.pool)
         .await
-        .map_err(|e| self.sql(e))?;
-        rows.iter()
-            .map(|r| {
-                Ok(SiteEffect {
-                    site: r.try_get("level")?,
-                    q05: r.try_get("q05")?,
-                    q50: r.try_get("q50")?,
-                    q95: r.try_get("q95")?,
-                })
-            })
-            .collect::<Result<_, sqlx::Error>>()
-            .map_err(|e| self.sql(e))
+        .map_err(|e| self.sql(e))
     }
 
     /// The `limit` most recent runs, newest first, each with its per-series outcomes.
@@ -125,7 +112,7 @@ impl Store {
         let Some(oldest) = runs.last().map(|r| r.run_id) else {
             return Ok(Vec::new());
         };
-        let rows = sqlx::query(
+        let outcomes: Vec<RunSeriesRow> = sqlx::query_as(
             "SELECT run_id, series, outcome, fit_id, message FROM run_series
              WHERE run_id >= ?1 ORDER BY run_id, series",
         )
@@ -133,24 +120,13 @@ impl Store {
         .fetch_all(&self.pool)
         .await
         .map_err(|e| self.sql(e))?;
-        let mut outcomes = Vec::with_capacity(rows.len());
-        for r in &rows {
-            let run_id: i64 = r.try_get("run_id").map_err(|e| self.sql(e))?;
-            let outcome = RunSeriesOutcome {
-                series: r.try_get("series").map_err(|e| self.sql(e))?,
-                outcome: r.try_get("outcome").map_err(|e| self.sql(e))?,
-                fit_id: r.try_get("fit_id").map_err(|e| self.sql(e))?,
-                message: r.try_get("message").map_err(|e| self.sql(e))?,
-            };
-            outcomes.push((run_id, outcome));
-        }
         Ok(runs
             .into_iter()
             .map(|run| {
                 let series = outcomes
                     .iter()
-                    .filter(|(id, _)| *id == run.run_id)
-                    .map(|(_, o)| o.clone())
+                    .filter(|o| o.run_id == run.run_id)
+                    .map(|o| o.outcome.clone())
                     .collect();
                 RunHistoryEntry { run, series }
             })

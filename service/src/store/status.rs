@@ -1,8 +1,6 @@
 //! Reads behind `tidemark status`: recent runs, recent batches, latest fits per series.
 
 use serde::Serialize;
-use sqlx::sqlite::SqliteRow;
-use sqlx::Row;
 
 use super::{Store, StoreError};
 use crate::vocabulary::{FitStatus, RunStatus, RunTrigger};
@@ -19,7 +17,7 @@ pub struct RunSummary {
     pub message: Option<String>,
 }
 
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, sqlx::FromRow)]
 pub struct BatchSummary {
     pub batch_id: i64,
     pub source: String,
@@ -34,7 +32,7 @@ pub struct BatchSummary {
     pub message: Option<String>,
 }
 
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, sqlx::FromRow)]
 pub struct FitSummary {
     pub fit_id: i64,
     pub series: String,
@@ -62,30 +60,6 @@ const FIT_COLUMNS: &str =
     n_obs, n_sites, n_years, warm_start_from, chains, draws, warmup, wall_seconds, max_rhat,
     min_ess_bulk, min_ess_tail, message";
 
-fn fit_from_row(r: &SqliteRow) -> Result<FitSummary, sqlx::Error> {
-    Ok(FitSummary {
-        fit_id: r.try_get("fit_id")?,
-        series: r.try_get("series")?,
-        version: r.try_get("version")?,
-        status: r.try_get("status")?,
-        created_at: r.try_get("created_at")?,
-        data_through_year: r.try_get("data_through_year")?,
-        watermark: r.try_get("watermark")?,
-        n_obs: r.try_get("n_obs")?,
-        n_sites: r.try_get("n_sites")?,
-        n_years: r.try_get("n_years")?,
-        warm_start_from: r.try_get("warm_start_from")?,
-        chains: r.try_get("chains")?,
-        draws: r.try_get("draws")?,
-        warmup: r.try_get("warmup")?,
-        wall_seconds: r.try_get("wall_seconds")?,
-        max_rhat: r.try_get("max_rhat")?,
-        min_ess_bulk: r.try_get("min_ess_bulk")?,
-        min_ess_tail: r.try_get("min_ess_tail")?,
-        message: r.try_get("message")?,
-    })
-}
-
 impl Store {
     /// The `limit` most recent runs, newest first.
     pub async fn recent_runs(&self, limit: u32) -> Result<Vec<RunSummary>, StoreError> {
@@ -101,7 +75,7 @@ impl Store {
 
     /// The `limit` most recent ingest batches, newest first.
     pub async fn recent_batches(&self, limit: u32) -> Result<Vec<BatchSummary>, StoreError> {
-        let rows = sqlx::query(
+        sqlx::query_as(
             "SELECT batch_id, source, sha256, received_at, rows_read, values_accepted,
                     values_rejected, values_superseding, values_unchanged, status, message
              FROM ingest_batches ORDER BY batch_id DESC LIMIT ?1",
@@ -109,25 +83,7 @@ impl Store {
         .bind(limit)
         .fetch_all(&self.pool)
         .await
-        .map_err(|e| self.sql(e))?;
-        rows.iter()
-            .map(|r| {
-                Ok(BatchSummary {
-                    batch_id: r.try_get("batch_id")?,
-                    source: r.try_get("source")?,
-                    sha256: r.try_get("sha256")?,
-                    received_at: r.try_get("received_at")?,
-                    rows_read: r.try_get("rows_read")?,
-                    values_accepted: r.try_get("values_accepted")?,
-                    values_rejected: r.try_get("values_rejected")?,
-                    values_superseding: r.try_get("values_superseding")?,
-                    values_unchanged: r.try_get("values_unchanged")?,
-                    status: r.try_get("status")?,
-                    message: r.try_get("message")?,
-                })
-            })
-            .collect::<Result<_, sqlx::Error>>()
-            .map_err(|e| self.sql(e))
+        .map_err(|e| self.sql(e))
     }
 
     /// The newest fit attempt of `series`, whatever its status.
@@ -151,14 +107,10 @@ impl Store {
     }
 
     async fn one_fit(&self, sql: &str, series: &str) -> Result<Option<FitSummary>, StoreError> {
-        let row = sqlx::query(sql)
+        sqlx::query_as(sql)
             .bind(series)
             .fetch_optional(&self.pool)
             .await
-            .map_err(|e| self.sql(e))?;
-        row.as_ref()
-            .map(fit_from_row)
-            .transpose()
             .map_err(|e| self.sql(e))
     }
 }
