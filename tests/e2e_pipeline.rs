@@ -558,6 +558,13 @@ fn a_site_not_visited_for_longer_than_the_cap_gets_no_known_site_forecast() {
          Dropped Lake,2015,1,18.0,3.1\nDropped Lake,2015,2,17.5,2.9\n\
          Dropped Lake,2016,1,18.2,3.4\nDropped Lake,2016,2,18.9,3.0\n",
     );
+    // A lake last seen exactly two years before the data end stays monitored.
+    net.drop_file(
+        "edge.csv",
+        "lake,season,visit,surface_temp_c,chl_ug_l\n\
+         Edge Lake,2017,1,18.0,3.1\nEdge Lake,2017,2,17.5,2.9\n\
+         Edge Lake,2018,1,18.2,3.4\nEdge Lake,2018,2,18.9,3.0\n",
+    );
     net.ok(&["ingest"]);
     net.ok(&["refit"]);
     assert_eq!(
@@ -567,11 +574,15 @@ fn a_site_not_visited_for_longer_than_the_cap_gets_no_known_site_forecast() {
     assert_eq!(
         net.scalar("SELECT COUNT(*) FROM latest_forecasts WHERE target = 'known_site_new_year' AND last_observed_year >= 2018")
             .int(),
-        15,
-        "the 15 lakes seen within two years of 2020 keep their rows"
+        16,
+        "the 16 lakes seen within two years of 2020 keep their rows"
+    );
+    assert_eq!(
+        net.sqlite3("SELECT target, last_observed_year FROM latest_forecasts WHERE site = 'Edge Lake' ORDER BY target"),
+        "known_site_known_year|2018\nknown_site_new_year|2018\n"
     );
     assert!(
-        net.scalar("SELECT n_sites FROM latest_fits").int() == 16,
+        net.scalar("SELECT n_sites FROM latest_fits").int() == 17,
         "the dropped lake is still fitted"
     );
     // `forecast` applies the same cap when it rewrites the rows.

@@ -629,3 +629,55 @@ fn a_database_of_the_previous_release_upgrades_and_keeps_every_version() {
         "publishing a new version leaves the old ones as they were"
     );
 }
+
+/// The edge cases of the flag rule, in the `variance_drift` view and in `drift --json`
+/// alike: a previous median exactly on a bound is inside; a quantity the previous version
+/// did not have is not compared (even when an older version had it); an interval with an
+/// unknown bound flags nothing.
+#[test]
+fn the_drift_view_and_the_drift_command_agree_on_the_edge_cases() {
+    let net = Network::initialised();
+    net.sqlite3(
+        "INSERT INTO fits (fit_id, series, version, status, created_at, data_through_year, watermark)
+         VALUES (11, 'phosphorus', 1, 'published', '2026-01-01T00:00:00Z', 2020, 1),
+                (12, 'phosphorus', 2, 'published', '2026-01-02T00:00:00Z', 2021, 2),
+                (13, 'phosphorus', 3, 'published', '2026-01-03T00:00:00Z', 2022, 3);
+         INSERT INTO posterior_summary (fit_id, kind, term, level, q05, q50, q95) VALUES
+           (11, 'sd', 'site', NULL, 0.5, 1.0, 1.5), (11, 'sd', 'year', NULL, 0.1, 0.2, 0.3),
+           (11, 'sd', 'residual', NULL, 0.2, 0.3, 0.4),
+           (12, 'sd', 'site', NULL, 1.0, 1.2, 1.4), (12, 'sd', 'residual', NULL, 0.31, 0.35, 0.5),
+           (13, 'sd', 'site', NULL, 0.1, 0.2, 1.1), (13, 'sd', 'year', NULL, 0.5, 0.6, 0.7),
+           (13, 'sd', 'residual', NULL, NULL, 0.33, 0.34);",
+    );
+    let view = net.sqlite3(
+        "SELECT version, term, IFNULL(previous_q50, '-'), flagged FROM variance_drift
+         WHERE version > 1 ORDER BY version, term",
+    );
+    assert_eq!(
+        view,
+        "2|residual|0.3|1\n2|site|1.0|0\n3|residual|0.35|0\n3|site|1.2|1\n3|year|-|0\n"
+    );
+    let doc: serde_json::Value =
+        serde_json::from_str(&net.ok(&["drift", "--json"])).expect("drift json");
+    let mut from_json = String::new();
+    for v in doc["series"][0]["versions"].as_array().expect("versions") {
+        if v["version"] == 1 {
+            continue;
+        }
+        let mut comps: Vec<&serde_json::Value> =
+            v["components"].as_array().unwrap().iter().collect();
+        comps.sort_by_key(|c| c["term"].as_str().unwrap().to_string());
+        for c in comps {
+            from_json.push_str(&format!(
+                "{}|{}|{}|{}\n",
+                v["version"],
+                c["term"].as_str().unwrap(),
+                c["previous_q50"]
+                    .as_f64()
+                    .map_or("-".to_string(), |x| format!("{x:?}")),
+                u8::from(c["flag"].as_bool().unwrap())
+            ));
+        }
+    }
+    assert_eq!(from_json, view, "the view and drift --json disagree");
+}

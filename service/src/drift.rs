@@ -213,7 +213,7 @@ pub fn render_text(report: &DriftReport) -> String {
     for s in &report.series {
         let _ = writeln!(
             out,
-            "\nseries {}: {} published version(s), {} flag(s)",
+            "\nseries {}: {} published version(s) shown, {} flag(s)",
             s.series,
             s.versions.len(),
             s.flagged

@@ -170,7 +170,9 @@ pub async fn serve(store: Store, config: Config) -> anyhow::Result<()> {
                 let why = format!(
                     "abandoned: tidemark serve stopped ({stop}) before the run reached a safe point"
                 );
-                store.abandon_running_runs(&why).await?;
+                store
+                    .abandon_running_runs(&lease.claim().holder, &why)
+                    .await?;
             }
         }
     }

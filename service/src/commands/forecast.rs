@@ -14,6 +14,8 @@ use crate::vocabulary::{RunStatus, RunTrigger};
 use tidemark_model::Transform;
 
 pub async fn run(ctx: &Context, series: Option<String>) -> anyhow::Result<()> {
+    // An unknown series is a usage mistake, not a run.
+    super::select_series(ctx, series.as_deref())?;
     let store = ctx.open_store().await?;
     let lease = Lease::acquire(&store, Arc::new(AtomicBool::new(false)), "forecast").await?;
     let run_id = store

@@ -58,6 +58,8 @@ pub async fn run(
     cold: bool,
     force: bool,
 ) -> anyhow::Result<()> {
+    // An unknown series is a usage mistake, not a run.
+    super::select_series(ctx, series.as_deref())?;
     let store = ctx.open_store().await?;
     let cancel = Arc::new(AtomicBool::new(false));
     let watcher = cancel_on_shutdown(cancel.clone())?;

@@ -5,8 +5,9 @@
 //! before reading the row, so two processes starting at the same moment cannot both see
 //! the lease free. Whether a holder is stale is the caller's judgement (process liveness
 //! is not the store's business); the store records the takeover with the stale holder's
-//! identity. In the same transaction, runs still marked `running` are marked
-//! `abandoned`: every writer of runs holds the lease, so whoever held it before is gone.
+//! identity. In the same transaction, the runs the stale holder left `running` are marked
+//! `abandoned` (runs record their holder; a manual `ingest`, which takes no lease, is
+//! left alone).
 
 use serde::Serialize;
 use sqlx::{Sqlite, Transaction};
@@ -131,8 +132,10 @@ impl Store {
                 ),
                 None => "abandoned: its process stopped before the run finished".to_string(),
             };
+            // Only the replaced holder's runs: others (a manual ingest) may still be going.
+            let previous = taken_over.as_ref().map_or("", |(h, _)| h.holder.as_str());
             let abandoned_runs =
-                super::runs::mark_running_abandoned(&mut tx, &now, &message).await?;
+                super::runs::mark_running_abandoned(&mut tx, previous, &now, &message).await?;
             tx.commit().await?;
             Ok(LeaseAttempt::Acquired {
                 taken_over,

@@ -15,20 +15,26 @@ pub struct RunOrigin {
     pub holder: Option<String>,
 }
 
-/// Mark every run still `running` as `abandoned` at `now`, appending `message`; returns
-/// their ids. The one copy of this update: shutdown and a lease takeover both use it.
+/// Mark the runs still `running` that belong to the lease holder `holder` as
+/// `abandoned` at `now`, appending `message`; returns their ids. Runs recorded without a
+/// holder (before schema version 3, or by a release that did not record it) count as the
+/// holder's too, except manual `ingest` runs, which take no lease and may be running
+/// beside any holder. The one copy of this update: shutdown and a lease takeover use it.
 pub(super) async fn mark_running_abandoned(
     conn: &mut SqliteConnection,
+    holder: &str,
     now: &str,
     message: &str,
 ) -> Result<Vec<i64>, sqlx::Error> {
     sqlx::query_scalar::<Sqlite, i64>(
-        "UPDATE runs SET status = 'abandoned', finished_at = ?1,
-                message = COALESCE(message || '; ', '') || ?2
-         WHERE status = 'running' RETURNING run_id",
+        "UPDATE runs SET status = 'abandoned', finished_at = ?1, message = COALESCE(message || '; ', '') || ?2
+         WHERE status = 'running'
+           AND (holder = ?3 OR (holder IS NULL AND command IS NOT 'ingest'))
+         RETURNING run_id",
     )
     .bind(now)
     .bind(message)
+    .bind(holder)
     .fetch_all(conn)
     .await
 }
@@ -69,10 +75,14 @@ impl Store {
 
     /// Mark every run still `running` as `abandoned`, with `message`; returns their ids.
     /// Only the lease holder calls this, when no run of its own can still be writing.
-    pub async fn abandon_running_runs(&self, message: &str) -> Result<Vec<i64>, StoreError> {
+    pub async fn abandon_running_runs(
+        &self,
+        holder: &str,
+        message: &str,
+    ) -> Result<Vec<i64>, StoreError> {
         let run = async {
             let mut conn = self.pool.acquire().await?;
-            mark_running_abandoned(&mut conn, &now_utc(), message).await
+            mark_running_abandoned(&mut conn, holder, &now_utc(), message).await
         };
         run.await.map_err(|e| self.sql(e))
     }
@@ -100,7 +110,8 @@ impl Store {
         message: Option<&str>,
     ) -> Result<(), StoreError> {
         sqlx::query(
-            "UPDATE runs SET finished_at = ?2, status = ?3, message = ?4 WHERE run_id = ?1",
+            "UPDATE runs SET finished_at = ?2, status = ?3, message = ?4
+             WHERE run_id = ?1 AND status = 'running'",
         )
         .bind(run_id)
         .bind(now_utc())
