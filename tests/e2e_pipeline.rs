@@ -663,3 +663,35 @@ fn a_demo_cut_short_by_a_closed_pipe_ends_quietly_and_reruns() {
     assert!(!with_config.status.success());
     assert!(String::from_utf8_lossy(&with_config.stderr).contains("--config is not used"));
 }
+
+/// A command that writes to the store finishes its work when nobody reads its output
+/// (`run-once | true`): exit 0, the run recorded as succeeded, nothing left running.
+#[test]
+fn run_once_into_a_closed_pipe_still_finishes_its_run() {
+    let net = Network::with_config(&config(1.05));
+    net.ok(&["init"]);
+    net.drop_file("2015-2020.csv", feed(2015..2021));
+    let piped = std::process::Command::new("bash")
+        .arg("-c")
+        .arg(format!(
+            "\"{}\" --config \"{}\" run-once | true; echo ${{PIPESTATUS[0]}}",
+            env!("CARGO_BIN_EXE_tidemark"),
+            net.config_path().display()
+        ))
+        .env_remove("TIDEMARK_CONFIG")
+        .output()
+        .unwrap();
+    let code = String::from_utf8_lossy(&piped.stdout).trim().to_string();
+    let err = String::from_utf8_lossy(&piped.stderr);
+    assert_eq!(code, "0", "{err}");
+    assert!(!err.contains("panicked"), "{err}");
+    assert_eq!(
+        net.sqlite3("SELECT command, status FROM runs"),
+        "run-once|succeeded\n"
+    );
+    assert_eq!(published_versions(&net), 1);
+    assert!(
+        net.scalar("SELECT COUNT(*) FROM instance_lease").int() == 0,
+        "lease released"
+    );
+}

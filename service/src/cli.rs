@@ -174,7 +174,17 @@ pub fn run() -> ExitCode {
         "warn"
     };
     telemetry::init_with(cli.log_format, level);
-    if !matches!(cli.command, Command::Serve) {
+    // Commands that write to the store finish their work whatever happens to their
+    // output (they print through `say!`); the others may simply stop.
+    if !matches!(
+        cli.command,
+        Command::Serve
+            | Command::RunOnce
+            | Command::Refit { .. }
+            | Command::Forecast { .. }
+            | Command::Ingest { .. }
+            | Command::Init
+    ) {
         stop_quietly_on_a_closed_pipe();
     }
     let runtime = match tokio::runtime::Builder::new_multi_thread()
@@ -204,9 +214,10 @@ pub fn run() -> ExitCode {
 
 /// A command whose reader went away (`tidemark drift | head`) ends at once, as other
 /// command-line tools do (exit status 141 in the shell), instead of panicking in the next
-/// `println!`. Safe because every write to the store is one transaction: what was
-/// committed stays, what was not is rolled back. `serve` keeps the Rust default (SIGPIPE
-/// ignored): it must never die of a pipe, and prints nothing to stdout.
+/// `println!`. Only for commands that read (and `demo`, which starts a cut-short replay
+/// over): `serve`, `run-once`, `refit`, `forecast`, `ingest` and `init` keep the Rust
+/// default (SIGPIPE ignored) and drop lines nobody reads, so a closed pipe never leaves a
+/// run half done.
 fn stop_quietly_on_a_closed_pipe() {
     // SAFETY: setting a signal disposition to its default at start-up, before any thread
     // of ours writes to a pipe.

@@ -44,7 +44,7 @@ async fn rewrite(
     let mut rewritten = 0;
     for s in names {
         let Some(latest) = store.serving_fit(&s.name).await? else {
-            println!("{}: no published version yet", s.name);
+            crate::say!("{}: no published version yet", s.name);
             continue;
         };
         let (_, blob) = store.fit_draws(latest.fit_id).await?.with_context(|| {
@@ -65,7 +65,7 @@ async fn rewrite(
         store
             .replace_forecasts(latest.fit_id, forecasts.set())
             .await?;
-        println!(
+        crate::say!(
             "{}: wrote {} forecasts for version {} (fit {})",
             s.name,
             forecasts.rows.len(),

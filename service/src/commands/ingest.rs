@@ -26,7 +26,7 @@ pub async fn run(ctx: &Context, files: &[PathBuf]) -> anyhow::Result<()> {
         files.to_vec()
     };
     if files.is_empty() {
-        println!("inbox {} is empty", ctx.config.feed.inbox.display());
+        crate::say!("inbox {} is empty", ctx.config.feed.inbox.display());
         store.close().await;
         return Ok(());
     }
@@ -47,10 +47,10 @@ pub async fn run(ctx: &Context, files: &[PathBuf]) -> anyhow::Result<()> {
     let mut failed = 0usize;
     for file in &files {
         match ingest::ingest_file(&store, &ctx.config, file).await {
-            Ok(report) => println!("{report}"),
+            Ok(report) => crate::say!("{report}"),
             Err(e) => {
                 failed += 1;
-                eprintln!("tidemark: {e}");
+                crate::say_err!("tidemark: {e}");
             }
         }
     }

@@ -17,7 +17,7 @@ pub async fn run(ctx: &Context) -> anyhow::Result<()> {
     }
     let store = Store::init(&ctx.config.database).await?;
     let version = store.schema_version().await?;
-    println!(
+    crate::say!(
         "database {} is ready (schema version {version}); inbox {}",
         store.path().display(),
         feed.inbox.display()

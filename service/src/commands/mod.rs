@@ -57,6 +57,37 @@ pub fn select_series<'a>(
     Ok(ctx.config.select_series(name)?)
 }
 
+/// `println!` for the commands that write to the store: a reader that went away
+/// (`tidemark run-once | head -1`) must not stop the work half way, so a line that cannot
+/// be written is dropped instead of panicking or killing the process.
+#[macro_export]
+macro_rules! say {
+    ($($arg:tt)*) => {
+        $crate::commands::say_line(&format!($($arg)*))
+    };
+}
+
+/// `eprintln!` for the same commands, on the same terms.
+#[macro_export]
+macro_rules! say_err {
+    ($($arg:tt)*) => {
+        $crate::commands::say_err_line(&format!($($arg)*))
+    };
+}
+
+#[doc(hidden)]
+pub fn say_line(line: &str) {
+    use std::io::Write as _;
+    let mut out = std::io::stdout().lock();
+    let _ = writeln!(out, "{line}").and_then(|()| out.flush());
+}
+
+#[doc(hidden)]
+pub fn say_err_line(line: &str) {
+    use std::io::Write as _;
+    let _ = writeln!(std::io::stderr().lock(), "{line}");
+}
+
 /// Print `text` to stdout; a reader that stopped early (`tidemark drift | head`) is not an
 /// error.
 pub fn print_out(text: &str) -> anyhow::Result<()> {

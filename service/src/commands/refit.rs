@@ -87,7 +87,7 @@ pub async fn run(
     }
     let reports = run.series;
     for r in &reports {
-        println!("{}", describe(r));
+        crate::say!("{}", describe(r));
     }
     store.close().await;
     let bad: Vec<&str> = reports

@@ -31,15 +31,15 @@ pub async fn run(ctx: &Context) -> anyhow::Result<()> {
     lease.release().await?;
     let report = outcome?;
     for f in &report.files {
-        println!("{f}");
+        crate::say!("{f}");
     }
     for e in &report.file_errors {
-        eprintln!("tidemark: {e}");
+        crate::say_err!("tidemark: {e}");
     }
     for s in &report.series {
-        println!("{}", describe(s));
+        crate::say!("{}", describe(s));
     }
-    println!("run {}: {}", report.run_id, report.status);
+    crate::say!("run {}: {}", report.run_id, report.status);
     store.close().await;
     if report.has_problems() || report.status != RunStatus::Succeeded {
         anyhow::bail!(
