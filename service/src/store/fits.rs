@@ -4,7 +4,7 @@
 //! Invariant: everything a version consists of becomes visible in one transaction, or not
 //! at all (`tests/e2e_pipeline.rs`).
 
-use sqlx::{QueryBuilder, Row, Sqlite, Transaction};
+use sqlx::{QueryBuilder, Sqlite, Transaction};
 use tidemark_model::{ForecastRow, Summary};
 
 use super::{now_utc, Store, StoreError};
@@ -55,7 +55,7 @@ pub struct RecordedFit {
 }
 
 /// The latest published version of a series, as the pipeline needs it.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, sqlx::FromRow)]
 pub struct PublishedFit {
     pub fit_id: i64,
     pub version: i64,
@@ -253,23 +253,13 @@ impl Store {
 
     /// The latest published version of `series`, if any.
     pub async fn serving_fit(&self, series: &str) -> Result<Option<PublishedFit>, StoreError> {
-        let row = sqlx::query(
+        sqlx::query_as(
             "SELECT fit_id, version, watermark, transform FROM fits
              WHERE series = ?1 AND status = 'published' ORDER BY version DESC LIMIT 1",
         )
         .bind(series)
         .fetch_optional(&self.pool)
         .await
-        .map_err(|e| self.sql(e))?;
-        row.map(|r| {
-            Ok(PublishedFit {
-                fit_id: r.try_get("fit_id")?,
-                version: r.try_get("version")?,
-                watermark: r.try_get("watermark")?,
-                transform: r.try_get("transform")?,
-            })
-        })
-        .transpose()
         .map_err(|e| self.sql(e))
     }
 
@@ -286,13 +276,10 @@ impl Store {
 
     /// The stored draws of a fit: `(format, blob)`.
     pub async fn fit_draws(&self, fit_id: i64) -> Result<Option<(String, Vec<u8>)>, StoreError> {
-        let row = sqlx::query("SELECT format, blob FROM fit_draws WHERE fit_id = ?1")
+        sqlx::query_as("SELECT format, blob FROM fit_draws WHERE fit_id = ?1")
             .bind(fit_id)
             .fetch_optional(&self.pool)
             .await
-            .map_err(|e| self.sql(e))?;
-        row.map(|r| Ok((r.try_get("format")?, r.try_get("blob")?)))
-            .transpose()
             .map_err(|e| self.sql(e))
     }
 
