@@ -129,3 +129,68 @@ fn usage_errors_exit_2_and_help_works() {
         assert!(String::from_utf8_lossy(&out.stdout).contains("Usage"));
     }
 }
+
+/// Nothing the service needs may sit in the inbox: `ingest` moves every file it finds
+/// there (a database inside it would be moved to quarantine with its -wal and -shm).
+#[test]
+fn a_config_that_puts_the_database_or_other_folders_in_the_inbox_is_refused() {
+    let cases: &[(&str, &str, &str)] = &[
+        (
+            "database = \"tidemark.db\"",
+            "database = \"inbox/tidemark.db\"",
+            "store.database",
+        ),
+        ("inbox = \"inbox\"", "inbox = \".\"", "store.database"),
+        (
+            "archive = \"archive\"",
+            "archive = \"inbox\"",
+            "feed.archive",
+        ),
+        (
+            "quarantine = \"quarantine\"",
+            "quarantine = \"inbox/quarantine\"",
+            "feed.quarantine",
+        ),
+        ("inbox = \"inbox\"", "inbox = \"/etc\"", "feed.inbox"),
+        (
+            "inbox = \"inbox\"",
+            "inbox = \"sub/../inbox/..\"",
+            "store.database",
+        ),
+    ];
+    for (from, to, key) in cases {
+        assert!(CONFIG.contains(from), "{from}");
+        let net = Network::with_config(&CONFIG.replace(from, to));
+        let err = stderr_of(&net, &["init"]);
+        assert!(
+            err.contains(&format!("tidemark.toml: {key}")),
+            "{to}: {err}"
+        );
+        assert!(err.contains("inbox"), "{to}: {err}");
+        assert!(
+            !net.path("tidemark.db").exists(),
+            "{to}: nothing was created"
+        );
+    }
+    // The config file itself in the inbox, with the database elsewhere.
+    let net = Network::with_config(
+        &CONFIG
+            .replace("inbox = \"inbox\"", "inbox = \".\"")
+            .replace(
+                "database = \"tidemark.db\"",
+                "database = \"/nonexistent-dir/x/tidemark.db\"",
+            )
+            .replace("archive = \"archive\"", "archive = \"/nonexistent-dir/a\"")
+            .replace(
+                "quarantine = \"quarantine\"",
+                "quarantine = \"/nonexistent-dir/q\"",
+            ),
+    );
+    let err = stderr_of(&net, &["status"]);
+    assert!(
+        err.contains("feed.inbox") && err.contains("the config file"),
+        "{err}"
+    );
+    // The usual layout (inbox, archive, quarantine and database side by side) is fine.
+    Network::initialised();
+}

@@ -339,6 +339,8 @@ impl Config {
             archive: resolve("feed.archive", &raw.feed.archive)?,
             quarantine: resolve("feed.quarantine", &raw.feed.quarantine)?,
         };
+        let config_file = dir.join(Path::new(file).file_name().unwrap_or_default());
+        check_folders(&config_file, &database, &feed).map_err(invalid)?;
         let mut schedule = Schedule::parse(&raw.schedule.cron, &raw.schedule.timezone)
             .map_err(|e| invalid((e.key.to_string(), e.message)))?;
         schedule.catch_up = raw.schedule.catch_up;
@@ -720,6 +722,83 @@ fn check_report_sites(sites: &[String], key: &str) -> Result<(), Problem> {
             ),
         ));
     }
+    Ok(())
+}
+
+/// Folders the inbox must never be: ingest moves every file it finds there.
+const SYSTEM_FOLDERS: &[&str] = &[
+    "/", "/bin", "/boot", "/dev", "/etc", "/home", "/lib", "/lib64", "/opt", "/proc", "/root",
+    "/run", "/sbin", "/srv", "/sys", "/tmp", "/usr", "/var",
+];
+
+/// `p` with `.` and `..` resolved as text, then through the file system where it
+/// exists (so a symlinked folder is compared by what it points at).
+fn normalised(p: &Path) -> PathBuf {
+    let mut out = PathBuf::new();
+    for c in p.components() {
+        match c {
+            std::path::Component::ParentDir => {
+                out.pop();
+            }
+            std::path::Component::CurDir => {}
+            other => out.push(other.as_os_str()),
+        }
+    }
+    // The longest existing prefix, canonicalised, with the rest appended.
+    let mut existing = out.clone();
+    let mut rest = Vec::new();
+    while !existing.exists() {
+        match (
+            existing.file_name().map(|n| n.to_os_string()),
+            existing.parent(),
+        ) {
+            (Some(name), Some(parent)) => {
+                rest.push(name);
+                existing = parent.to_path_buf();
+            }
+            _ => return out,
+        }
+    }
+    let mut resolved = existing.canonicalize().unwrap_or(existing);
+    for name in rest.into_iter().rev() {
+        resolved.push(name);
+    }
+    resolved
+}
+
+/// `ingest` moves every file of the inbox: nothing the service needs may be in it. Refuse
+/// a database, config file, archive or quarantine inside the inbox, an archive or
+/// quarantine that is the inbox, and an inbox that is a system folder.
+fn check_folders(config_file: &Path, database: &Path, feed: &FeedDirs) -> Result<(), Problem> {
+    let inbox = normalised(&feed.inbox);
+    if SYSTEM_FOLDERS.iter().any(|f| inbox == Path::new(f)) {
+        return Err((
+            "feed.inbox".into(),
+            format!(
+                "{} is a system folder; ingest moves every file of the inbox, so give it a folder of its own",
+                inbox.display()
+            ),
+        ));
+    }
+    let inside = |key: &str, what: &str, p: &Path| -> Result<(), Problem> {
+        let p = normalised(p);
+        if p.starts_with(&inbox) {
+            let how = if p == inbox { "is" } else { "lies inside" };
+            return Err((
+                key.into(),
+                format!(
+                    "{what} {} {how} the inbox {} (feed.inbox); ingest moves every file of the inbox, so keep them apart",
+                    p.display(),
+                    inbox.display()
+                ),
+            ));
+        }
+        Ok(())
+    };
+    inside("store.database", "the database", database)?;
+    inside("feed.inbox", "the config file", config_file)?;
+    inside("feed.archive", "the archive", &feed.archive)?;
+    inside("feed.quarantine", "the quarantine", &feed.quarantine)?;
     Ok(())
 }
 
