@@ -465,6 +465,11 @@ fn check_priors(p: &Priors, at: &str) -> Result<(), (String, String)> {
     Ok(())
 }
 
+/// Upper bounds of `[series.sampler]` (README "Configuration reference").
+pub const MAX_CHAINS: u32 = 64;
+pub const MAX_DRAWS: u32 = 1_000_000;
+pub const MAX_WARMUP: u32 = 1_000_000;
+
 fn check_sampler(s: &SamplerConfig, at: &str) -> Result<(), (String, String)> {
     let err = |k: &str, m: String| Err((format!("{at}.{k}"), m));
     if s.chains < 1 {
@@ -478,6 +483,17 @@ fn check_sampler(s: &SamplerConfig, at: &str) -> Result<(), (String, String)> {
                 s.draws
             ),
         );
+    }
+    // Upper bounds keep a typo (`draws = 4294967295`) from asking for hundreds of GB.
+    for (key, value, most) in [
+        ("chains", s.chains, MAX_CHAINS),
+        ("draws", s.draws, MAX_DRAWS),
+        ("warmup", s.warmup, MAX_WARMUP),
+        ("warm_warmup", s.warm_warmup, MAX_WARMUP),
+    ] {
+        if value > most {
+            return err(key, format!("must be at most {most}, found {value}"));
+        }
     }
     if !(s.max_rhat.is_finite() && s.max_rhat > 1.0) {
         return err(

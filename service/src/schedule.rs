@@ -59,6 +59,13 @@ impl Schedule {
         full[5] = day_numbers_to_names(&full[5]).map_err(cron_err)?;
         let parsed =
             cron::Schedule::from_str(&full.join(" ")).map_err(|e| cron_err(e.to_string()))?;
+        // `serve` would hold the lease and never run: a schedule must fire at least once.
+        if parsed.upcoming(timezone).next().is_none() {
+            return Err(cron_err(
+                "never fires (no such date, e.g. 30 February); fix the day-of-month or month fields"
+                    .into(),
+            ));
+        }
         Ok(Schedule {
             cron: cron_text.to_string(),
             timezone,
@@ -133,6 +140,15 @@ mod tests {
 
     fn next(cron: &str, tz: &str, now: DateTime<Utc>) -> DateTime<Utc> {
         Schedule::parse(cron, tz).unwrap().next_after(now).unwrap()
+    }
+
+    #[test]
+    fn a_schedule_that_can_never_fire_is_refused() {
+        let e = Schedule::parse("0 0 30 2 *", "UTC").expect_err("refused");
+        assert_eq!(e.key, "schedule.cron");
+        assert!(e.message.contains("never fires"), "{}", e.message);
+        // 29 February fires in leap years, so it is a real schedule.
+        assert!(Schedule::parse("0 0 29 2 *", "UTC").is_ok());
     }
 
     #[test]
