@@ -19,7 +19,10 @@ pub struct Schedule {
     /// Whether `serve` makes one catch-up run at start when a tick was missed while it was
     /// down (`[schedule] catch_up`, default true).
     pub catch_up: bool,
-    parsed: cron::Schedule,
+    /// One schedule, or two when both day fields are restricted: standard cron fires
+    /// when *either* day matches, the `cron` crate only when both do, so each day field
+    /// gets its own schedule with the other one unrestricted and the earlier tick wins.
+    parsed: Vec<cron::Schedule>,
 }
 
 /// What is wrong with a schedule, and under which config key.
@@ -57,10 +60,24 @@ impl Schedule {
             }
         };
         full[5] = day_numbers_to_names(&full[5]).map_err(cron_err)?;
-        let parsed =
-            cron::Schedule::from_str(&full.join(" ")).map_err(|e| cron_err(e.to_string()))?;
+        // A day field that begins with `*` (`*`, `*/2`) counts as unrestricted, as in the
+        // common crontab implementations.
+        let restricted = |f: &str| !f.starts_with('*') && f != "?";
+        let variants: Vec<Vec<String>> = if restricted(&full[3]) && restricted(&full[5]) {
+            let mut by_month_day = full.clone();
+            by_month_day[5] = "*".into();
+            let mut by_week_day = full.clone();
+            by_week_day[3] = "*".into();
+            vec![by_month_day, by_week_day]
+        } else {
+            vec![full]
+        };
+        let parsed = variants
+            .iter()
+            .map(|f| cron::Schedule::from_str(&f.join(" ")).map_err(|e| cron_err(e.to_string())))
+            .collect::<Result<Vec<_>, _>>()?;
         // `serve` would hold the lease and never run: a schedule must fire at least once.
-        if parsed.upcoming(timezone).next().is_none() {
+        if parsed.iter().all(|p| p.upcoming(timezone).next().is_none()) {
             return Err(cron_err(
                 "never fires (no such date, e.g. 30 February); fix the day-of-month or month fields"
                     .into(),
@@ -95,8 +112,9 @@ impl Schedule {
     pub fn next_after(&self, now: DateTime<Utc>) -> Option<DateTime<Utc>> {
         let local = now.with_timezone(&self.timezone);
         self.parsed
-            .after(&local)
-            .next()
+            .iter()
+            .filter_map(|p| p.after(&local).next())
+            .min()
             .map(|t| t.with_timezone(&Utc))
     }
 }
@@ -140,6 +158,28 @@ mod tests {
 
     fn next(cron: &str, tz: &str, now: DateTime<Utc>) -> DateTime<Utc> {
         Schedule::parse(cron, tz).unwrap().next_after(now).unwrap()
+    }
+
+    #[test]
+    fn restricted_day_of_month_and_day_of_week_combine_with_or_as_in_standard_cron() {
+        // 2026-12-02 is a Wednesday. `0 2 1 * 1`: the 1st of a month OR a Monday.
+        let now = Utc.with_ymd_and_hms(2026, 12, 2, 12, 0, 0).unwrap();
+        assert_eq!(
+            next("0 2 1 * 1", "UTC", now),
+            Utc.with_ymd_and_hms(2026, 12, 7, 2, 0, 0).unwrap(),
+            "the next Monday comes before the next 1st"
+        );
+        let later = Utc.with_ymd_and_hms(2026, 12, 29, 12, 0, 0).unwrap();
+        assert_eq!(
+            next("0 2 1 * 1", "UTC", later),
+            Utc.with_ymd_and_hms(2027, 1, 1, 2, 0, 0).unwrap(),
+            "the 1st (a Friday) comes before the next Monday"
+        );
+        // A day-of-week that begins with `*` leaves day-of-month alone: the 15th only.
+        assert_eq!(
+            next("0 2 15 * */2", "UTC", now),
+            Utc.with_ymd_and_hms(2026, 12, 15, 2, 0, 0).unwrap()
+        );
     }
 
     #[test]
