@@ -205,40 +205,43 @@ fn bad(msg: &str) -> ArrowError {
     ArrowError::InvalidArgumentError(format!("stored draws: {msg}"))
 }
 
-/// Decode a file written by [`encode`].
-pub fn decode(blob: &[u8]) -> Result<Decoded, ArrowError> {
+/// One stored row of a draws file, as written by [`encode`].
+struct StoredRow {
+    kind: String,
+    term: String,
+    level: Option<String>,
+    chains: usize,
+    draws_per_chain: usize,
+    values: Vec<f64>,
+}
+
+/// Every row of a file written by [`encode`], in stored order: the one place that knows
+/// the file's column layout on the way back in.
+fn stored_rows(blob: &[u8]) -> Result<Vec<StoredRow>, ArrowError> {
     let reader = FileReader::try_new(std::io::Cursor::new(blob), None)?;
-    let mut sd: Vec<(String, Vec<f64>)> = Vec::new();
-    let mut coef: Vec<(String, Vec<f64>)> = Vec::new();
-    let mut effects: Vec<(String, String, Vec<f64>)> = Vec::new();
-    let mut draw_index: Vec<f64> = Vec::new();
-    let mut covariate_means = Vec::new();
-    let mut site_last_year: Vec<(String, i32)> = Vec::new();
-    let (mut chains, mut draws) = (0usize, 0usize);
+    let mut out = Vec::new();
     for batch in reader {
         let batch = batch?;
-        let col = |i: usize| batch.column(i);
-        let kind = col(0)
-            .as_any()
-            .downcast_ref::<StringArray>()
-            .ok_or_else(|| bad("kind"))?;
-        let term = col(1)
-            .as_any()
-            .downcast_ref::<StringArray>()
-            .ok_or_else(|| bad("term"))?;
-        let level = col(2)
-            .as_any()
-            .downcast_ref::<StringArray>()
-            .ok_or_else(|| bad("level"))?;
-        let n_chains = col(3)
-            .as_any()
-            .downcast_ref::<UInt32Array>()
-            .ok_or_else(|| bad("chains"))?;
-        let n_draws = col(4)
-            .as_any()
-            .downcast_ref::<UInt32Array>()
-            .ok_or_else(|| bad("draws"))?;
-        let values = col(5)
+        let text = |i: usize, name: &str| {
+            batch
+                .column(i)
+                .as_any()
+                .downcast_ref::<StringArray>()
+                .cloned()
+                .ok_or_else(|| bad(name))
+        };
+        let count = |i: usize, name: &str| {
+            batch
+                .column(i)
+                .as_any()
+                .downcast_ref::<UInt32Array>()
+                .cloned()
+                .ok_or_else(|| bad(name))
+        };
+        let (kind, term, level) = (text(0, "kind")?, text(1, "term")?, text(2, "level")?);
+        let (chains, per_chain) = (count(3, "chains")?, count(4, "draws")?);
+        let values = batch
+            .column(5)
             .as_any()
             .downcast_ref::<ListArray>()
             .ok_or_else(|| bad("values"))?;
@@ -248,23 +251,50 @@ pub fn decode(blob: &[u8]) -> Result<Decoded, ArrowError> {
                 .as_any()
                 .downcast_ref::<Float64Array>()
                 .ok_or_else(|| bad("values items"))?;
-            let v: Vec<f64> = v.values().to_vec();
-            let lvl = (!level.is_null(r)).then(|| level.value(r).to_string());
-            match kind.value(r) {
-                "sd" => {
-                    chains = n_chains.value(r) as usize;
-                    draws = n_draws.value(r) as usize;
-                    sd.push((term.value(r).to_string(), v));
-                }
-                "coef" => coef.push((term.value(r).to_string(), v)),
-                "effect" => effects.push((term.value(r).to_string(), lvl.unwrap_or_default(), v)),
-                "basis" => draw_index = v,
-                "data" if term.value(r) == "covariate_mean" => covariate_means.push(v[0]),
-                "data" if term.value(r) == "site_last_year" => {
-                    site_last_year.push((lvl.unwrap_or_default(), v[0] as i32))
-                }
-                _ => {}
+            out.push(StoredRow {
+                kind: kind.value(r).to_string(),
+                term: term.value(r).to_string(),
+                level: (!level.is_null(r)).then(|| level.value(r).to_string()),
+                chains: chains.value(r) as usize,
+                draws_per_chain: per_chain.value(r) as usize,
+                values: v.values().to_vec(),
+            });
+        }
+    }
+    Ok(out)
+}
+
+/// Decode a file written by [`encode`].
+pub fn decode(blob: &[u8]) -> Result<Decoded, ArrowError> {
+    let mut sd: Vec<(String, Vec<f64>)> = Vec::new();
+    let mut coef: Vec<(String, Vec<f64>)> = Vec::new();
+    let mut effects: Vec<(String, String, Vec<f64>)> = Vec::new();
+    let mut draw_index: Vec<f64> = Vec::new();
+    let mut covariate_means = Vec::new();
+    let mut site_last_year: Vec<(String, i32)> = Vec::new();
+    let (mut chains, mut draws) = (0usize, 0usize);
+    for row in stored_rows(blob)? {
+        let StoredRow {
+            kind,
+            term,
+            level,
+            values: v,
+            ..
+        } = row;
+        match kind.as_str() {
+            "sd" => {
+                chains = row.chains;
+                draws = row.draws_per_chain;
+                sd.push((term, v));
             }
+            "coef" => coef.push((term, v)),
+            "effect" => effects.push((term, level.unwrap_or_default(), v)),
+            "basis" => draw_index = v,
+            "data" if term == "covariate_mean" => covariate_means.push(v[0]),
+            "data" if term == "site_last_year" => {
+                site_last_year.push((level.unwrap_or_default(), v[0] as i32))
+            }
+            _ => {}
         }
     }
     if sd.is_empty() || coef.is_empty() {
@@ -365,54 +395,21 @@ pub struct LongDraw {
 
 /// Every value of a file written by [`encode`], one row per value, in stored order.
 pub fn long_form(blob: &[u8]) -> Result<Vec<LongDraw>, ArrowError> {
-    let reader = FileReader::try_new(std::io::Cursor::new(blob), None)?;
     let mut out = Vec::new();
-    for batch in reader {
-        let batch = batch?;
-        let text = |i: usize, name: &str| {
-            batch
-                .column(i)
-                .as_any()
-                .downcast_ref::<StringArray>()
-                .cloned()
-                .ok_or_else(|| bad(name))
-        };
-        let count = |i: usize, name: &str| {
-            batch
-                .column(i)
-                .as_any()
-                .downcast_ref::<UInt32Array>()
-                .cloned()
-                .ok_or_else(|| bad(name))
-        };
-        let (kind, term, level) = (text(0, "kind")?, text(1, "term")?, text(2, "level")?);
-        let (chains, per_chain) = (count(3, "chains")?, count(4, "draws")?);
-        let values = batch
-            .column(5)
-            .as_any()
-            .downcast_ref::<ListArray>()
-            .ok_or_else(|| bad("values"))?;
-        for r in 0..batch.num_rows() {
-            let list = values.value(r);
-            let v = list
-                .as_any()
-                .downcast_ref::<Float64Array>()
-                .ok_or_else(|| bad("values items"))?;
-            let per = per_chain.value(r).max(1) as usize;
-            if v.len() != chains.value(r) as usize * per_chain.value(r) as usize {
-                return Err(bad("a row's value count is not chains x draws_per_chain"));
-            }
-            let lvl = (!level.is_null(r)).then(|| level.value(r).to_string());
-            for (i, &value) in v.values().iter().enumerate() {
-                out.push(LongDraw {
-                    kind: kind.value(r).to_string(),
-                    term: term.value(r).to_string(),
-                    level: lvl.clone(),
-                    chain: (i / per) as u32,
-                    draw: (i % per) as u32,
-                    value,
-                });
-            }
+    for row in stored_rows(blob)? {
+        if row.values.len() != row.chains * row.draws_per_chain {
+            return Err(bad("a row's value count is not chains x draws_per_chain"));
+        }
+        let per = row.draws_per_chain.max(1);
+        for (i, &value) in row.values.iter().enumerate() {
+            out.push(LongDraw {
+                kind: row.kind.clone(),
+                term: row.term.clone(),
+                level: row.level.clone(),
+                chain: (i / per) as u32,
+                draw: (i % per) as u32,
+                value,
+            });
         }
     }
     Ok(out)
