@@ -77,9 +77,8 @@ macro_rules! say_err {
 
 #[doc(hidden)]
 pub fn say_line(line: &str) {
-    use std::io::Write as _;
-    let mut out = std::io::stdout().lock();
-    let _ = writeln!(out, "{line}").and_then(|()| out.flush());
+    // A closed pipe is already no error for `print_bytes`; nor is anything else here.
+    let _ = print_bytes(format!("{line}\n").as_bytes());
 }
 
 #[doc(hidden)]
