@@ -5,14 +5,13 @@
 mod common;
 
 use std::collections::BTreeSet;
-use std::process::Child;
 use std::time::{Duration, Instant};
 
 use common::{
-    dead_pid, host_name, spawn_logged, wait_until, ConfigBuilder, Network, Sampler, CHLOROPHYLL,
+    csv, dead_pid, host_name, network_rows, signal, spawn_logged, wait_exit, wait_until,
+    ConfigBuilder, Network, Sampler, CHLOROPHYLL,
 };
 use rand::{Rng, SeedableRng};
-use tidemark_model::simulate::{simulate_rows, NetworkSpec};
 
 /// One series; a small sampler and an easy gate, so every completed run publishes.
 fn config(cron: &str, extra_schedule: &str, draws: u32) -> String {
@@ -26,64 +25,6 @@ fn config(cron: &str, extra_schedule: &str, draws: u32) -> String {
             ..Default::default()
         })
         .build()
-}
-
-/// Invented test data: a generated network as feed rows (lake, season, visit, temp, chl).
-fn network_rows(sites: usize, years: usize) -> Vec<(String, i32, u32, f64, f64)> {
-    let spec = NetworkSpec {
-        sites,
-        years,
-        missing: 0.1,
-        covariates: 1,
-        sd_site: 0.5,
-        sd_year: 0.3,
-        intercept: 1.0,
-        coef: 0.05,
-        first_year: 2001,
-        seed: 17,
-        ..Default::default()
-    };
-    let (rows, _) = simulate_rows(&spec);
-    let mut visit = std::collections::HashMap::new();
-    rows.iter()
-        .map(|r| {
-            let v = visit.entry((r.site, r.year)).or_insert(0u32);
-            *v += 1;
-            (
-                format!("Lake {:03}", r.site),
-                r.year,
-                *v,
-                r.covariates[0],
-                r.y.exp(),
-            )
-        })
-        .collect()
-}
-
-fn csv(rows: &[(String, i32, u32, f64, f64)]) -> String {
-    let mut out = String::from("lake,season,visit,surface_temp_c,chl_ug_l\n");
-    for (lake, year, visit, temp, chl) in rows {
-        out.push_str(&format!("{lake},{year},{visit},{temp:.3},{chl:.5}\n"));
-    }
-    out
-}
-
-fn signal(child: &Child, sig: i32) {
-    let pid = libc::pid_t::try_from(child.id()).expect("pid");
-    // SAFETY: sending a signal to our own child process.
-    assert_eq!(unsafe { libc::kill(pid, sig) }, 0, "kill({pid}, {sig})");
-}
-
-/// Wait for `child` to exit, at most `limit`; its exit status and how long it took.
-fn wait_exit(child: &mut Child, limit: Duration) -> (Option<std::process::ExitStatus>, Duration) {
-    let start = Instant::now();
-    while start.elapsed() < limit {
-        if let Some(status) = child.try_wait().expect("try_wait") {
-            return (Some(status), start.elapsed());
-        }
-        std::thread::sleep(Duration::from_millis(20));
-    }
-    (None, start.elapsed())
 }
 
 fn count(net: &Network, sql: &str) -> i64 {

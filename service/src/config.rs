@@ -50,6 +50,8 @@ pub enum ConfigError {
 pub struct Config {
     pub path: PathBuf,
     pub database: PathBuf,
+    /// A lease holder whose heartbeat is older than this counts as gone.
+    pub lease_stale_after: std::time::Duration,
     pub feed: FeedDirs,
     pub schedule: Schedule,
     /// The key columns of the feed, shared by every series (a current limit).
@@ -82,6 +84,24 @@ pub struct SeriesConfig {
     /// Sites the report draws one small chart each for (observed values and next year's
     /// forecast band); empty: the report picks the most extreme sites by site effect.
     pub report_sites: Vec<String>,
+}
+
+impl SeriesConfig {
+    /// SHA-256 (hex) of what defines the series' model: response, transform, covariates,
+    /// groups and priors. Fits made under equal digests fit the same model to growing
+    /// data, so an older snapshot of it is stale; sampler settings and report options
+    /// change no model.
+    pub fn definition_sha256(&self) -> String {
+        use sha2::{Digest, Sha256};
+        let definition = serde_json::json!({
+            "response": self.response,
+            "transform": self.transform.as_str(),
+            "covariates": self.covariates,
+            "groups": self.groups,
+            "priors": self.priors,
+        });
+        hex::encode(Sha256::digest(definition.to_string().as_bytes()))
+    }
 }
 
 impl Config {
@@ -207,14 +227,20 @@ struct RawConfig {
 #[serde(deny_unknown_fields, default)]
 struct RawStore {
     database: String,
+    lease_stale_after_seconds: u64,
 }
 impl Default for RawStore {
     fn default() -> Self {
         RawStore {
             database: "tidemark.db".into(),
+            lease_stale_after_seconds: crate::lease::STALE_AFTER.as_secs(),
         }
     }
 }
+
+/// Bounds of `store.lease_stale_after_seconds`: a limit shorter than a few heartbeats
+/// would take over live holders; a day is longer than any stop worth waiting out.
+const LEASE_STALE_AFTER_SECONDS: std::ops::RangeInclusive<u64> = 2..=86_400;
 
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields, default)]
@@ -334,6 +360,17 @@ impl Config {
         let raw = deserialize_raw(text, file)?;
         let resolve = |key: &str, p: &str| resolve_path(dir, key, p).map_err(invalid);
         let database = resolve("store.database", &raw.store.database)?;
+        let stale = raw.store.lease_stale_after_seconds;
+        if !LEASE_STALE_AFTER_SECONDS.contains(&stale) {
+            return Err(invalid((
+                "store.lease_stale_after_seconds".into(),
+                format!(
+                    "must be {} to {} seconds, found {stale}",
+                    LEASE_STALE_AFTER_SECONDS.start(),
+                    LEASE_STALE_AFTER_SECONDS.end()
+                ),
+            )));
+        }
         let feed = FeedDirs {
             inbox: resolve("feed.inbox", &raw.feed.inbox)?,
             archive: resolve("feed.archive", &raw.feed.archive)?,
@@ -363,6 +400,7 @@ impl Config {
         Ok(Config {
             path: PathBuf::from(file),
             database,
+            lease_stale_after: std::time::Duration::from_secs(stale),
             feed,
             schedule,
             keys,

@@ -5,8 +5,11 @@
 //! (`instance_lease`) for as long as it runs. A second one refuses with the holder's
 //! identity. A holder is stale, and its lease is taken over (recorded in `lease_events`
 //! and logged), when it is on this host and its process is gone (or its pid is our own:
-//! a restarted container reuses pid 1), or when its heartbeat is older than
-//! [`STALE_AFTER`] (a holder on another host, or a hung one).
+//! a restarted container reuses pid 1), or when its heartbeat is older than the
+//! configured limit (`store.lease_stale_after_seconds`, default [`STALE_AFTER`]: a holder
+//! on another host, or a hung or stopped one). A process whose lease was taken over while
+//! it was stopped finds out at its next heartbeat or, at the latest, when it tries to
+//! write a fit: the write is fenced ([`crate::store::Fence`]) and refused.
 
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
@@ -15,12 +18,17 @@ use std::time::Duration;
 use chrono::{DateTime, Utc};
 use tracing::{error, info, warn};
 
-use crate::store::{LeaseAttempt, LeaseClaim, LeaseHolder, Store, StoreError};
+use crate::store::{Fence, LeaseAttempt, LeaseClaim, LeaseHolder, Store, StoreError};
 
-/// How often the holder renews its heartbeat.
+/// How often the holder renews its heartbeat (more often under a short stale limit).
 pub const HEARTBEAT_EVERY: Duration = Duration::from_secs(5);
-/// A heartbeat older than this marks the holder stale (twelve missed beats).
+/// By default a heartbeat older than this marks the holder stale (twelve missed beats).
 pub const STALE_AFTER: Duration = Duration::from_secs(60);
+
+/// The heartbeat interval under a stale limit: at least four beats fit in the limit.
+fn heartbeat_every(stale_after: Duration) -> Duration {
+    HEARTBEAT_EVERY.min(stale_after / 4)
+}
 
 #[derive(Debug, thiserror::Error)]
 pub enum LeaseError {
@@ -39,6 +47,7 @@ pub enum LeaseError {
 pub struct Lease {
     store: Store,
     claim: LeaseClaim,
+    fence: Fence,
     heartbeat: tokio::task::JoinHandle<()>,
     lost: Arc<AtomicBool>,
 }
@@ -53,8 +62,14 @@ pub fn own_claim(command: &'static str) -> LeaseClaim {
     }
 }
 
-/// Why `holder` is stale, seen from `me` at `now`, or `None` when it may still be working.
-pub fn stale_reason(holder: &LeaseHolder, me: &LeaseClaim, now: DateTime<Utc>) -> Option<String> {
+/// Why `holder` is stale, seen from `me` at `now` with heartbeats older than `limit`
+/// counting as stale, or `None` when it may still be working.
+pub fn stale_reason(
+    holder: &LeaseHolder,
+    me: &LeaseClaim,
+    now: DateTime<Utc>,
+    limit: Duration,
+) -> Option<String> {
     if holder.host == me.host {
         if holder.pid == me.pid {
             return Some(format!(
@@ -72,12 +87,12 @@ pub fn stale_reason(holder: &LeaseHolder, me: &LeaseClaim, now: DateTime<Utc>) -
     match DateTime::parse_from_rfc3339(&holder.heartbeat_at) {
         Ok(beat) => {
             let age = now.signed_duration_since(beat.with_timezone(&Utc));
-            let limit = chrono::Duration::from_std(STALE_AFTER).unwrap_or(chrono::Duration::MAX);
-            (age > limit).then(|| {
+            let max = chrono::Duration::from_std(limit).unwrap_or(chrono::Duration::MAX);
+            (age > max).then(|| {
                 format!(
                     "its last heartbeat was {} s ago (stale after {} s)",
                     age.num_seconds(),
-                    STALE_AFTER.as_secs()
+                    limit.as_secs()
                 )
             })
         }
@@ -89,19 +104,21 @@ pub fn stale_reason(holder: &LeaseHolder, me: &LeaseClaim, now: DateTime<Utc>) -
 }
 
 impl Lease {
-    /// Claim the lease, taking it over from a stale holder, and start the heartbeat.
-    /// When the heartbeat finds the lease taken by another process, `cancel` is raised so
-    /// the work stops at its next safe point.
+    /// Claim the lease, taking it over from a holder whose heartbeat is older than
+    /// `stale_after` (or whose process is gone), and start the heartbeat. When the
+    /// heartbeat finds the lease taken by another process, `cancel` is raised so the work
+    /// stops at its next safe point.
     pub async fn acquire(
         store: &Store,
+        stale_after: Duration,
         cancel: Arc<AtomicBool>,
         command: &'static str,
     ) -> Result<Lease, LeaseError> {
         let claim = own_claim(command);
         let attempt = store
-            .acquire_lease(&claim, |h| stale_reason(h, &claim, Utc::now()))
+            .acquire_lease(&claim, |h| stale_reason(h, &claim, Utc::now(), stale_after))
             .await?;
-        match attempt {
+        let fence = match attempt {
             LeaseAttempt::Held(holder) => {
                 return Err(LeaseError::Held {
                     database: store.path().display().to_string(),
@@ -109,6 +126,7 @@ impl Lease {
                 })
             }
             LeaseAttempt::Acquired {
+                fence,
                 taken_over,
                 abandoned_runs,
             } => {
@@ -126,19 +144,22 @@ impl Lease {
                         "marked runs left 'running' by a stopped process as abandoned"
                     );
                 }
+                fence
             }
-        }
-        info!(holder = %claim.holder, pid = claim.pid, host = %claim.host, "lease acquired");
+        };
+        info!(holder = %claim.holder, generation = fence.generation, pid = claim.pid, host = %claim.host, "lease acquired");
         let lost = Arc::new(AtomicBool::new(false));
         let heartbeat = tokio::spawn(beat(
             store.clone(),
-            claim.holder.clone(),
+            fence.clone(),
+            heartbeat_every(stale_after),
             lost.clone(),
             cancel,
         ));
         Ok(Lease {
             store: store.clone(),
             claim,
+            fence,
             heartbeat,
             lost,
         })
@@ -153,12 +174,17 @@ impl Lease {
         &self.claim
     }
 
+    /// The token this process writes fits under.
+    pub fn fence(&self) -> &Fence {
+        &self.fence
+    }
+
     /// The origin of a run this process makes while it holds the lease.
     pub fn run_origin(&self, trigger: crate::vocabulary::RunTrigger) -> crate::store::RunOrigin {
         crate::store::RunOrigin {
             trigger,
             command: self.claim.command,
-            holder: Some(self.claim.holder.clone()),
+            fence: Some(self.fence.clone()),
         }
     }
 
@@ -172,17 +198,24 @@ impl Lease {
     }
 }
 
-async fn beat(store: Store, holder: String, lost: Arc<AtomicBool>, cancel: Arc<AtomicBool>) {
-    let mut every = tokio::time::interval(HEARTBEAT_EVERY);
+async fn beat(
+    store: Store,
+    fence: Fence,
+    period: Duration,
+    lost: Arc<AtomicBool>,
+    cancel: Arc<AtomicBool>,
+) {
+    let mut every = tokio::time::interval(period);
     every.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
     every.tick().await; // the first tick is immediate; the claim itself was a beat
     loop {
         every.tick().await;
-        match store.heartbeat_lease(&holder).await {
+        match store.heartbeat_lease(&fence).await {
             Ok(true) => {}
             Ok(false) => {
                 error!(
-                    holder = %holder,
+                    holder = %fence.holder,
+                    generation = fence.generation,
                     "another process took over this process's lease (its heartbeat was late); stopping at the next safe point"
                 );
                 lost.store(true, Ordering::Relaxed);
@@ -235,6 +268,7 @@ mod tests {
             acquired_at: beat.to_rfc3339(),
             heartbeat_at: beat.to_rfc3339(),
             command: None,
+            generation: None,
         }
     }
 
@@ -244,9 +278,12 @@ mod tests {
         let now = Utc::now();
         // Our parent process (the test harness's parent) is alive on this host.
         let parent = i64::from(std::os::unix::process::parent_id());
-        assert_eq!(stale_reason(&holder(parent, &me.host, now), &me, now), None);
         assert_eq!(
-            stale_reason(&holder(parent, "elsewhere", now), &me, now),
+            stale_reason(&holder(parent, &me.host, now), &me, now, STALE_AFTER),
+            None
+        );
+        assert_eq!(
+            stale_reason(&holder(parent, "elsewhere", now), &me, now, STALE_AFTER),
             None
         );
     }
@@ -260,11 +297,11 @@ mod tests {
             .expect("spawn true");
         let dead = i64::from(child.id());
         child.wait().expect("wait");
-        let r = stale_reason(&holder(dead, &me.host, now), &me, now);
+        let r = stale_reason(&holder(dead, &me.host, now), &me, now, STALE_AFTER);
         assert!(r.is_some_and(|r| r.contains("not running")));
         // Elsewhere the pid means nothing: only the heartbeat decides.
         assert_eq!(
-            stale_reason(&holder(dead, "elsewhere", now), &me, now),
+            stale_reason(&holder(dead, "elsewhere", now), &me, now, STALE_AFTER),
             None
         );
     }
@@ -274,9 +311,16 @@ mod tests {
         let me = own_claim("test");
         let now = Utc::now();
         let old = now - chrono::Duration::seconds(61);
-        let r = stale_reason(&holder(1, "elsewhere", old), &me, now);
+        let r = stale_reason(&holder(1, "elsewhere", old), &me, now, STALE_AFTER);
         assert!(r.is_some_and(|r| r.contains("61 s ago")));
-        let r = stale_reason(&holder(me.pid, &me.host, now), &me, now);
+        // A shorter configured limit makes a younger heartbeat stale.
+        let recent = now - chrono::Duration::seconds(5);
+        let short = Duration::from_secs(3);
+        let r = stale_reason(&holder(1, "elsewhere", recent), &me, now, short);
+        assert!(r.is_some_and(|r| r.contains("stale after 3 s")));
+        assert_eq!(heartbeat_every(short), Duration::from_millis(750));
+        assert_eq!(heartbeat_every(STALE_AFTER), HEARTBEAT_EVERY);
+        let r = stale_reason(&holder(me.pid, &me.host, now), &me, now, STALE_AFTER);
         assert!(r.is_some_and(|r| r.contains("is this process")));
         assert!(!pid_alive(0) && !pid_alive(-1));
     }

@@ -79,7 +79,7 @@ fn parse_time(text: &str) -> Option<DateTime<Utc>> {
 pub async fn serve(store: Store, config: Config) -> anyhow::Result<()> {
     let mut signals = ShutdownSignals::install()?;
     let cancel = Arc::new(AtomicBool::new(false));
-    let lease = Lease::acquire(&store, cancel.clone(), "serve").await?;
+    let lease = Lease::acquire(&store, config.lease_stale_after, cancel.clone(), "serve").await?;
     let config = Arc::new(config);
     let schedule = config.schedule.clone();
     info!(

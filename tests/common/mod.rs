@@ -401,3 +401,66 @@ pub fn host_name() -> String {
         .trim()
         .to_string()
 }
+
+/// Invented test data: a generated network as feed rows (lake, season, visit, temp, chl),
+/// the feed of [`CHLOROPHYLL`], from 2001 on.
+pub fn network_rows(sites: usize, years: usize) -> Vec<(String, i32, u32, f64, f64)> {
+    let spec = tidemark_model::simulate::NetworkSpec {
+        sites,
+        years,
+        missing: 0.1,
+        covariates: 1,
+        sd_site: 0.5,
+        sd_year: 0.3,
+        intercept: 1.0,
+        coef: 0.05,
+        first_year: 2001,
+        seed: 17,
+        ..Default::default()
+    };
+    let (rows, _) = tidemark_model::simulate::simulate_rows(&spec);
+    let mut visit = std::collections::HashMap::new();
+    rows.iter()
+        .map(|r| {
+            let v = visit.entry((r.site, r.year)).or_insert(0u32);
+            *v += 1;
+            (
+                format!("Lake {:03}", r.site),
+                r.year,
+                *v,
+                r.covariates[0],
+                r.y.exp(),
+            )
+        })
+        .collect()
+}
+
+pub fn csv(rows: &[(String, i32, u32, f64, f64)]) -> String {
+    let mut out = String::from("lake,season,visit,surface_temp_c,chl_ug_l\n");
+    for (lake, year, visit, temp, chl) in rows {
+        out.push_str(&format!("{lake},{year},{visit},{temp:.3},{chl:.5}\n"));
+    }
+    out
+}
+
+/// Send `sig` to a child process.
+pub fn signal(child: &std::process::Child, sig: i32) {
+    let pid = libc::pid_t::try_from(child.id()).expect("pid");
+    // SAFETY: sending a signal to our own child process.
+    assert_eq!(unsafe { libc::kill(pid, sig) }, 0, "kill({pid}, {sig})");
+}
+
+/// Wait for `child` to exit, at most `limit`; its exit status and how long it took.
+pub fn wait_exit(
+    child: &mut std::process::Child,
+    limit: std::time::Duration,
+) -> (Option<std::process::ExitStatus>, std::time::Duration) {
+    let start = std::time::Instant::now();
+    while start.elapsed() < limit {
+        if let Some(status) = child.try_wait().expect("try_wait") {
+            return (Some(status), start.elapsed());
+        }
+        std::thread::sleep(std::time::Duration::from_millis(20));
+    }
+    (None, start.elapsed())
+}

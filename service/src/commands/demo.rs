@@ -140,7 +140,7 @@ pub async fn run(out: Option<PathBuf>) -> anyhow::Result<()> {
         let origin = RunOrigin {
             trigger: RunTrigger::Demo,
             command: "demo",
-            holder: None,
+            fence: None,
         };
         let report = run_once(&store, &config, &origin, Arc::new(AtomicBool::new(false))).await?;
         let mut lines = Vec::new();

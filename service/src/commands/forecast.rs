@@ -17,11 +17,17 @@ pub async fn run(ctx: &Context, series: Option<String>) -> anyhow::Result<()> {
     // An unknown series is a usage mistake, not a run.
     super::select_series(ctx, series.as_deref())?;
     let store = ctx.open_store().await?;
-    let lease = Lease::acquire(&store, Arc::new(AtomicBool::new(false)), "forecast").await?;
+    let lease = Lease::acquire(
+        &store,
+        ctx.config.lease_stale_after,
+        Arc::new(AtomicBool::new(false)),
+        "forecast",
+    )
+    .await?;
     let run_id = store
         .start_run(&lease.run_origin(RunTrigger::Manual))
         .await?;
-    let outcome = rewrite(ctx, &store, series).await;
+    let outcome = rewrite(ctx, &store, series, lease.fence()).await;
     let (status, message) = match &outcome {
         Ok(n) => (
             RunStatus::Succeeded,
@@ -39,6 +45,7 @@ async fn rewrite(
     ctx: &Context,
     store: &crate::store::Store,
     series: Option<String>,
+    fence: &crate::store::Fence,
 ) -> anyhow::Result<usize> {
     let names = super::select_series(ctx, series.as_deref())?;
     let mut rewritten = 0;
@@ -63,7 +70,7 @@ async fn rewrite(
             .unwrap_or(s.transform);
         let forecasts = crate::pipeline::forecasts::baseline(&decoded.basis, transform, s);
         store
-            .replace_forecasts(latest.fit_id, forecasts.set())
+            .replace_forecasts(latest.fit_id, forecasts.set(), Some(fence))
             .await?;
         crate::say!(
             "{}: wrote {} forecasts for version {} (fit {})",

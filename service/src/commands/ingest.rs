@@ -35,7 +35,7 @@ pub async fn run(ctx: &Context, files: &[PathBuf]) -> anyhow::Result<()> {
     let origin = RunOrigin {
         trigger: RunTrigger::Manual,
         command: "ingest",
-        holder: None,
+        fence: None,
     };
     let run_id = store.start_run(&origin).await.map_err(|e| {
         let names: Vec<String> = files.iter().map(|f| f.display().to_string()).collect();

@@ -63,7 +63,13 @@ pub async fn run(
     let store = ctx.open_store().await?;
     let cancel = Arc::new(AtomicBool::new(false));
     let watcher = cancel_on_shutdown(cancel.clone())?;
-    let lease = Lease::acquire(&store, cancel.clone(), "refit").await?;
+    let lease = Lease::acquire(
+        &store,
+        ctx.config.lease_stale_after,
+        cancel.clone(),
+        "refit",
+    )
+    .await?;
     let opts = RefitOptions {
         series,
         cold,

@@ -17,7 +17,13 @@ pub async fn run(ctx: &Context) -> anyhow::Result<()> {
     let store = ctx.open_store().await?;
     let cancel = Arc::new(AtomicBool::new(false));
     let watcher = cancel_on_shutdown(cancel.clone())?;
-    let lease = Lease::acquire(&store, cancel.clone(), "run-once").await?;
+    let lease = Lease::acquire(
+        &store,
+        ctx.config.lease_stale_after,
+        cancel.clone(),
+        "run-once",
+    )
+    .await?;
     let origin = lease.run_origin(RunTrigger::Manual);
     let outcome = run_once_with_progress(
         &store,

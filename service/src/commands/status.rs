@@ -97,7 +97,12 @@ pub async fn run(ctx: &Context, json: bool) -> anyhow::Result<()> {
     }
     let runs = store.recent_runs(RECENT).await?;
     let lease = store.lease_holder().await?.map(|holder| {
-        let stale = stale_reason(&holder, &own_claim("status"), chrono::Utc::now());
+        let stale = stale_reason(
+            &holder,
+            &own_claim("status"),
+            chrono::Utc::now(),
+            config.lease_stale_after,
+        );
         LeaseStatus { holder, stale }
     });
     let next_run = config.schedule.next_after(chrono::Utc::now());

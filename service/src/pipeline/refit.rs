@@ -20,7 +20,7 @@ use tracing::{info, info_span, warn, Instrument};
 use super::{draws, input};
 use crate::config::{Config, LocationPrior, SdPrior, SeriesConfig};
 use crate::progress::{ChainBars, FitProgress};
-use crate::store::{ForecastSet, NewExclusion, NewFit, Store};
+use crate::store::{Fence, ForecastSet, NewExclusion, NewFit, PublishGuard, Store, StoreError};
 use crate::vocabulary::FitStatus;
 
 /// Joint effect draws per chain kept with a version for forecasts (the forecast basis).
@@ -41,6 +41,8 @@ pub struct RefitOptions {
     pub cancel: Arc<AtomicBool>,
     /// Progress bars for the chains (a terminal only; never under `serve`).
     pub progress: Option<FitProgress>,
+    /// The lease fence fits are written under (`None`: the caller takes no lease).
+    pub fence: Option<Fence>,
 }
 
 /// The outcome of one series.
@@ -197,6 +199,13 @@ async fn refit_series(
         return Ok(report);
     };
     let mut fit = new_fit(series, watermark, opts.run_id);
+    let to = Destination {
+        store,
+        guard: PublishGuard {
+            fence: opts.fence.as_ref(),
+            allow_older: opts.force,
+        },
+    };
     let rows = store
         .load_series_rows(&series.response, &series.covariates, &series.groups)
         .await?;
@@ -204,7 +213,7 @@ async fn refit_series(
         Ok(b) => b,
         Err(e) => {
             warn!(series = %series.name, "{e}");
-            return record_failure(store, fit, report, e.to_string(), &[], started).await;
+            return record_failure(to, fit, report, e.to_string(), &[], started).await;
         }
     };
     let exclusions: Vec<NewExclusion> = built.excluded;
@@ -224,11 +233,11 @@ async fn refit_series(
     let fitted = match attempt_fits(series, opts, data, attempt_plan(series, warm)).await? {
         Attempts::Fitted(f) => f,
         Attempts::Failed(message) => {
-            return record_failure(store, fit, report, message, &exclusions, started).await;
+            return record_failure(to, fit, report, message, &exclusions, started).await;
         }
     };
     report.fit_seconds = sampling.elapsed().as_secs_f64();
-    publish(store, series, fit, report, *fitted, &exclusions, started).await
+    publish(to, series, fit, report, *fitted, &exclusions, started).await
 }
 
 impl SeriesReport {
@@ -280,13 +289,21 @@ fn new_fit(series: &SeriesConfig, watermark: i64, run_id: Option<i64>) -> NewFit
         seed: Some(series.sampler.seed as i64),
         chains: Some(series.sampler.chains as i64),
         draws: Some(series.sampler.draws as i64),
+        definition_sha256: Some(series.definition_sha256()),
         ..NewFit::default()
     }
 }
 
+/// Where a series' attempt is recorded: the store, under the caller's lease fence.
+#[derive(Clone, Copy)]
+struct Destination<'a> {
+    store: &'a Store,
+    guard: PublishGuard<'a>,
+}
+
 /// Record a `failed` attempt with its reason; the previous version keeps serving.
 async fn record_failure(
-    store: &Store,
+    to: Destination<'_>,
     mut fit: NewFit,
     mut report: SeriesReport,
     message: String,
@@ -296,8 +313,16 @@ async fn record_failure(
     fit.status = FitStatus::Failed;
     fit.message = Some(message.clone());
     fit.wall_seconds = Some(started.elapsed().as_secs_f64());
-    let recorded = store
-        .record_fit(&fit, &[], None, ForecastSet::default(), exclusions)
+    let recorded = to
+        .store
+        .record_fit(
+            &fit,
+            &[],
+            None,
+            ForecastSet::default(),
+            exclusions,
+            to.guard,
+        )
         .await?;
     report.outcome = SeriesOutcome::Failed;
     report.fit_id = Some(recorded.fit_id);
@@ -433,10 +458,29 @@ async fn attempt_fits(
     })))
 }
 
+/// The test-only variable naming a file: while it exists, a refit holds just before its
+/// publishing transaction (after the gate and the forecasts), so the lease tests can stop
+/// the process there and take its lease over.
+pub const HOLD_BEFORE_PUBLISHING_ENV: &str = "TIDEMARK_TEST_HOLD_BEFORE_PUBLISHING";
+
+async fn hold_before_publishing() {
+    let Some(file) = std::env::var_os(HOLD_BEFORE_PUBLISHING_ENV) else {
+        return;
+    };
+    let file = std::path::PathBuf::from(file);
+    warn!(
+        "test hold: waiting before the publishing transaction while {} exists",
+        file.display()
+    );
+    while file.exists() {
+        tokio::time::sleep(std::time::Duration::from_millis(20)).await;
+    }
+}
+
 /// Record the attempt that ended the sequence: a published version with its summaries,
 /// draws and forecasts, or a rejected attempt with its diagnostics.
 async fn publish(
-    store: &Store,
+    to: Destination<'_>,
     series: &SeriesConfig,
     mut fit: NewFit,
     mut report: SeriesReport,
@@ -517,15 +561,29 @@ async fn publish(
         )
     };
     fit.wall_seconds = Some(started.elapsed().as_secs_f64());
-    let recorded = store
+    hold_before_publishing().await;
+    let recorded = to
+        .store
         .record_fit(
             &fit,
             &summaries,
             blob.as_deref().map(|b| (draws::FORMAT, b)),
             forecasts.set(),
             exclusions,
+            to.guard,
         )
-        .await?;
+        .await;
+    let recorded = match recorded {
+        Ok(r) => r,
+        // A newer version already serves: this series failed, the run goes on.
+        Err(e @ StoreError::StaleSnapshot { .. }) => {
+            warn!(series = %series.name, "{e}");
+            report.outcome = SeriesOutcome::Failed;
+            report.message = e.to_string();
+            return Ok(report);
+        }
+        Err(e) => return Err(e.into()),
+    };
     report.publish_seconds = publishing.elapsed().as_secs_f64();
     report.outcome = if published {
         SeriesOutcome::Published

@@ -10,7 +10,7 @@ use super::{refit, RefitOptions, SeriesOutcome, SeriesReport};
 use crate::config::Config;
 use crate::ingest;
 use crate::progress::FitProgress;
-use crate::store::{RunOrigin, Store};
+use crate::store::{RunOrigin, Store, StoreError};
 use crate::vocabulary::RunStatus;
 
 /// What a run did.
@@ -65,6 +65,7 @@ pub async fn run_once_with_progress(
             run_id: Some(run_id),
             cancel: cancel.clone(),
             progress,
+            fence: origin.fence.clone(),
             ..RefitOptions::default()
         };
         refit_and_record(store, config, &opts, &mut report).await?;
@@ -88,6 +89,7 @@ pub async fn refit_run(
         let mut report = RunReport::new(run_id);
         let opts = RefitOptions {
             run_id: Some(run_id),
+            fence: origin.fence.clone(),
             ..opts
         };
         refit_and_record(store, config, &opts, &mut report).await?;
@@ -183,6 +185,8 @@ async fn refit_and_record(
                 counts(SeriesOutcome::Unchanged)
             );
         }
+        // A process that lost its lease stops here: the takeover already closed its run.
+        Err(e) if matches!(e.downcast_ref(), Some(StoreError::LeaseLost { .. })) => return Err(e),
         Err(e) => {
             report.status = RunStatus::Failed;
             report.message = format!("{e:#}");
@@ -229,7 +233,7 @@ async fn finish_with(
             report.message
         );
     }
-    store
+    report.status = store
         .finish_run(report.run_id, report.status, Some(&report.message))
         .await?;
     info!(status = %report.status, "{}", report.message);

@@ -2,11 +2,14 @@
 //! rewriting the forecasts of the latest version.
 //!
 //! Invariant: everything a version consists of becomes visible in one transaction, or not
-//! at all (`tests/e2e_pipeline.rs`).
+//! at all (`tests/e2e_pipeline.rs`). That transaction is fenced: it writes only while the
+//! writer still holds the lease, and publishes no snapshot older than a version already
+//! published under the same model definition (`tests/e2e_fencing.rs`).
 
 use sqlx::{QueryBuilder, Sqlite, Transaction};
 use tidemark_model::{ForecastRow, Summary};
 
+use super::lease::{check_fence, Fence, LeaseHolder};
 use super::{now_utc, Store, StoreError};
 use crate::vocabulary::FitStatus;
 
@@ -36,6 +39,25 @@ pub struct NewFit {
     pub priors_json: Option<String>,
     pub diagnostics_json: Option<String>,
     pub acceptance_rate: Option<f64>,
+    /// Digest of the series' model definition the fit was made under.
+    pub definition_sha256: Option<String>,
+}
+
+/// What writing a fit is checked against, inside its transaction.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct PublishGuard<'a> {
+    /// The writer's lease fence; `None` for a writer that takes no lease (the demo on its
+    /// own database, benchmarks).
+    pub fence: Option<&'a Fence>,
+    /// Publish even when a version made under the same definition saw newer data
+    /// (`refit --force`).
+    pub allow_older: bool,
+}
+
+/// Why a fenced write was refused.
+enum Refused {
+    Lost(Option<LeaseHolder>),
+    Stale { version: i64, newer: i64 },
 }
 
 /// A visit a fit left out, and why (stored in `fit_exclusions`).
@@ -177,9 +199,34 @@ impl Store {
         draws: Option<(&str, &[u8])>,
         forecasts: ForecastSet<'_>,
         exclusions: &[NewExclusion],
+        guard: PublishGuard<'_>,
     ) -> Result<RecordedFit, StoreError> {
         let run = async {
-            let mut tx = self.pool.begin().await?;
+            // IMMEDIATE: the fence and staleness checks below hold until the commit.
+            let mut tx = self.pool.begin_with("BEGIN IMMEDIATE").await?;
+            if let Some(fence) = guard.fence {
+                if let Err(holder) = check_fence(&mut tx, fence).await? {
+                    tx.rollback().await?;
+                    return Ok(Err(Refused::Lost(holder)));
+                }
+            }
+            if fit.status == FitStatus::Published && !guard.allow_older {
+                if let Some(definition) = &fit.definition_sha256 {
+                    let newest: Option<(i64, i64)> = sqlx::query_as(
+                        "SELECT version, watermark FROM fits
+                         WHERE series = ?1 AND status = 'published' AND definition_sha256 = ?2
+                         ORDER BY version DESC LIMIT 1",
+                    )
+                    .bind(&fit.series)
+                    .bind(definition)
+                    .fetch_optional(&mut *tx)
+                    .await?;
+                    if let Some((version, newer)) = newest.filter(|&(_, w)| w > fit.watermark) {
+                        tx.rollback().await?;
+                        return Ok(Err(Refused::Stale { version, newer }));
+                    }
+                }
+            }
             let version: i64 = sqlx::query_scalar(
                 "SELECT COALESCE(MAX(version), 0) + 1 FROM fits WHERE series = ?1 AND status = 'published'",
             )
@@ -189,8 +236,10 @@ impl Store {
             let fit_id: i64 = sqlx::query_scalar(
                 "INSERT INTO fits (series, version, status, created_at, data_through_year, watermark, n_obs, n_sites, n_years,
                                    warm_start_from, chains, draws, warmup, wall_seconds, max_rhat, min_ess_bulk, min_ess_tail,
-                                   seed, message, run_id, response, transform, priors_json, diagnostics_json, acceptance_rate)
-                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20, ?21, ?22, ?23, ?24, ?25)
+                                   seed, message, run_id, response, transform, priors_json, diagnostics_json, acceptance_rate,
+                                   lease_generation, definition_sha256)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20, ?21, ?22, ?23, ?24, ?25,
+                         ?26, ?27)
                  RETURNING fit_id",
             )
             .bind(&fit.series)
@@ -218,6 +267,8 @@ impl Store {
             .bind(&fit.priors_json)
             .bind(&fit.diagnostics_json)
             .bind(fit.acceptance_rate.and_then(finite))
+            .bind(guard.fence.map(|f| f.generation))
+            .bind(&fit.definition_sha256)
             .fetch_one(&mut *tx)
             .await?;
             insert_summaries(&mut tx, fit_id, summaries).await?;
@@ -246,9 +297,42 @@ impl Store {
                 insert_forecasts(&mut tx, fit_id, forecasts).await?;
             }
             tx.commit().await?;
-            Ok::<_, sqlx::Error>(RecordedFit { fit_id, version })
+            Ok::<_, sqlx::Error>(Ok(RecordedFit { fit_id, version }))
         };
-        run.await.map_err(|e| self.sql(e))
+        match run.await.map_err(|e| self.sql(e))? {
+            Ok(recorded) => Ok(recorded),
+            Err(refused) => Err(self.refused(refused, guard, fit)),
+        }
+    }
+
+    fn refused(&self, refused: Refused, guard: PublishGuard<'_>, fit: &NewFit) -> StoreError {
+        match refused {
+            Refused::Lost(now) => self.lease_lost(guard.fence, now),
+            Refused::Stale { version, newer } => StoreError::StaleSnapshot {
+                series: fit.series.clone(),
+                watermark: fit.watermark,
+                version,
+                newer,
+            },
+        }
+    }
+
+    fn lease_lost(&self, fence: Option<&Fence>, now: Option<LeaseHolder>) -> StoreError {
+        StoreError::LeaseLost {
+            path: self.path.clone(),
+            generation: fence.map_or(0, |f| f.generation),
+            now: match now {
+                Some(h) => format!(
+                    "it is now held by pid {} on {} (holder {}, generation {})",
+                    h.pid,
+                    h.host,
+                    h.holder,
+                    h.generation
+                        .map_or_else(|| "unknown".into(), |g| g.to_string())
+                ),
+                None => "nobody holds it now".into(),
+            },
+        }
     }
 
     /// The latest published version of `series`, if any.
@@ -283,14 +367,22 @@ impl Store {
             .map_err(|e| self.sql(e))
     }
 
-    /// Replace the forecasts of a published fit in one transaction.
+    /// Replace the forecasts of a published fit in one transaction (fenced like
+    /// [`Store::record_fit`]).
     pub async fn replace_forecasts(
         &self,
         fit_id: i64,
         forecasts: ForecastSet<'_>,
+        fence: Option<&Fence>,
     ) -> Result<(), StoreError> {
         let run = async {
-            let mut tx = self.pool.begin().await?;
+            let mut tx = self.pool.begin_with("BEGIN IMMEDIATE").await?;
+            if let Some(fence) = fence {
+                if let Err(holder) = check_fence(&mut tx, fence).await? {
+                    tx.rollback().await?;
+                    return Ok(Err(holder));
+                }
+            }
             for table in ["forecasts", "forecast_scenarios"] {
                 sqlx::query(&format!("DELETE FROM {table} WHERE fit_id = ?1"))
                     .bind(fit_id)
@@ -298,8 +390,11 @@ impl Store {
                     .await?;
             }
             insert_forecasts(&mut tx, fit_id, forecasts).await?;
-            tx.commit().await
+            tx.commit().await?;
+            Ok(Ok(()))
         };
-        run.await.map_err(|e| self.sql(e))
+        run.await
+            .map_err(|e| self.sql(e))?
+            .map_err(|now| self.lease_lost(fence, now))
     }
 }

@@ -8,6 +8,12 @@
 //! identity. In the same transaction, the runs the stale holder left `running` are marked
 //! `abandoned` (runs record their holder; a manual `ingest`, which takes no lease, is
 //! left alone).
+//!
+//! Every claim takes the next *generation* (one more than any in `lease_events`), and the
+//! holder id with its generation is the process's [`Fence`]: a transaction that writes a
+//! fit or forecasts first checks, under the write lock, that the lease row still carries
+//! that fence ([`check_fence`]). A takeover replaces the row, so a process that lost the
+//! lease while it was stopped or hung writes nothing afterwards.
 
 use serde::Serialize;
 use sqlx::{Sqlite, Transaction};
@@ -25,6 +31,16 @@ pub struct LeaseHolder {
     /// The command holding it (`serve`, `run-once`, `refit`, `forecast`); null when the
     /// holder was a release that did not record it.
     pub command: Option<String>,
+    /// The claim's generation; null for a claim made before schema version 5.
+    pub generation: Option<i64>,
+}
+
+/// The token a lease holder writes fits under: its holder id and the generation of its
+/// claim. Only the process whose fence is on the lease row may write a fit.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Fence {
+    pub holder: String,
+    pub generation: i64,
 }
 
 /// The identity a process claims the lease with.
@@ -44,6 +60,7 @@ pub enum LeaseAttempt {
     /// The lease is ours. `taken_over` names the stale holder it was taken from and why;
     /// `abandoned_runs` are runs left `running` by a process that died.
     Acquired {
+        fence: Fence,
         taken_over: Option<(LeaseHolder, String)>,
         abandoned_runs: Vec<i64>,
     },
@@ -51,8 +68,8 @@ pub enum LeaseAttempt {
     Held(LeaseHolder),
 }
 
-const HOLDER: &str =
-    "SELECT holder, pid, host, acquired_at, heartbeat_at, command FROM instance_lease WHERE lease_id = 1";
+const HOLDER: &str = "SELECT holder, pid, host, acquired_at, heartbeat_at, command, generation
+                      FROM instance_lease WHERE lease_id = 1";
 
 async fn current(tx: &mut Transaction<'_, Sqlite>) -> Result<Option<LeaseHolder>, sqlx::Error> {
     sqlx::query_as(HOLDER).fetch_optional(&mut **tx).await
@@ -64,11 +81,12 @@ async fn event(
     claim: &LeaseClaim,
     previous: Option<&LeaseHolder>,
     reason: Option<&str>,
+    generation: Option<i64>,
 ) -> Result<(), sqlx::Error> {
     sqlx::query(
         "INSERT INTO lease_events (at, event, holder, pid, host, previous_holder, previous_pid,
-                                   previous_host, previous_heartbeat_at, reason)
-         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10)",
+                                   previous_host, previous_heartbeat_at, reason, generation)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11)",
     )
     .bind(now_utc())
     .bind(kind)
@@ -80,9 +98,33 @@ async fn event(
     .bind(previous.map(|p| p.host.as_str()))
     .bind(previous.map(|p| p.heartbeat_at.as_str()))
     .bind(reason)
+    .bind(generation)
     .execute(&mut **tx)
     .await?;
     Ok(())
+}
+
+/// Inside a write transaction (begun `IMMEDIATE`, so no takeover can slip in before it
+/// commits): confirm the lease row still carries `fence`, renewing its heartbeat. Returns
+/// the current holder when the lease was lost (`None` inside: nobody holds it now).
+pub(super) async fn check_fence(
+    conn: &mut sqlx::SqliteConnection,
+    fence: &Fence,
+) -> Result<Result<(), Option<LeaseHolder>>, sqlx::Error> {
+    let done = sqlx::query(
+        "UPDATE instance_lease SET heartbeat_at = ?3
+         WHERE lease_id = 1 AND holder = ?1 AND generation = ?2",
+    )
+    .bind(&fence.holder)
+    .bind(fence.generation)
+    .bind(now_utc())
+    .execute(&mut *conn)
+    .await?;
+    if done.rows_affected() == 1 {
+        return Ok(Ok(()));
+    }
+    let now: Option<LeaseHolder> = sqlx::query_as(HOLDER).fetch_optional(&mut *conn).await?;
+    Ok(Err(now))
 }
 
 impl Store {
@@ -108,22 +150,29 @@ impl Store {
                 None => None,
             };
             let now = now_utc();
+            // Generations only grow: the history keeps every one handed out.
+            let generation: i64 =
+                sqlx::query_scalar("SELECT COALESCE(MAX(generation), 0) + 1 FROM lease_events")
+                    .fetch_one(&mut *tx)
+                    .await?;
             sqlx::query(
-                "INSERT OR REPLACE INTO instance_lease (lease_id, holder, pid, host, acquired_at, heartbeat_at, command)
-                 VALUES (1, ?1, ?2, ?3, ?4, ?4, ?5)",
+                "INSERT OR REPLACE INTO instance_lease (lease_id, holder, pid, host, acquired_at, heartbeat_at, command, generation)
+                 VALUES (1, ?1, ?2, ?3, ?4, ?4, ?5, ?6)",
             )
             .bind(&claim.holder)
             .bind(claim.pid)
             .bind(&claim.host)
             .bind(&now)
             .bind(claim.command)
+            .bind(generation)
             .execute(&mut *tx)
             .await?;
+            let g = Some(generation);
             match &taken_over {
                 Some((h, reason)) => {
-                    event(&mut tx, "taken_over", claim, Some(h), Some(reason)).await?
+                    event(&mut tx, "taken_over", claim, Some(h), Some(reason), g).await?
                 }
-                None => event(&mut tx, "acquired", claim, None, None).await?,
+                None => event(&mut tx, "acquired", claim, None, None, g).await?,
             }
             let message = match &taken_over {
                 Some((h, reason)) => format!(
@@ -138,6 +187,10 @@ impl Store {
                 super::runs::mark_running_abandoned(&mut tx, previous, &now, &message).await?;
             tx.commit().await?;
             Ok(LeaseAttempt::Acquired {
+                fence: Fence {
+                    holder: claim.holder.clone(),
+                    generation,
+                },
                 taken_over,
                 abandoned_runs,
             })
@@ -146,11 +199,13 @@ impl Store {
     }
 
     /// Renew the heartbeat. False when the lease is no longer ours (it was taken over).
-    pub async fn heartbeat_lease(&self, holder: &str) -> Result<bool, StoreError> {
+    pub async fn heartbeat_lease(&self, fence: &Fence) -> Result<bool, StoreError> {
         let done = sqlx::query(
-            "UPDATE instance_lease SET heartbeat_at = ?2 WHERE lease_id = 1 AND holder = ?1",
+            "UPDATE instance_lease SET heartbeat_at = ?3
+             WHERE lease_id = 1 AND holder = ?1 AND generation = ?2",
         )
-        .bind(holder)
+        .bind(&fence.holder)
+        .bind(fence.generation)
         .bind(now_utc())
         .execute(&self.pool)
         .await
@@ -168,7 +223,7 @@ impl Store {
                 .await?;
             let released = done.rows_affected() == 1;
             if released {
-                event(&mut tx, "released", claim, None, None).await?;
+                event(&mut tx, "released", claim, None, None, None).await?;
             }
             tx.commit().await?;
             Ok(released)

@@ -30,9 +30,11 @@ use sqlx::Row;
 
 pub use drift::ComponentRow;
 pub use export::{DriftExportRow, ForecastExportRow, PosteriorExportRow, VersionDraws};
-pub use fits::{ForecastSet, NewExclusion, NewFit, PublishedFit, RecordedFit, ScenarioValue};
+pub use fits::{
+    ForecastSet, NewExclusion, NewFit, PublishGuard, PublishedFit, RecordedFit, ScenarioValue,
+};
 pub use ingest::{BatchFile, BatchOutcome, BatchRecord};
-pub use lease::{LeaseAttempt, LeaseClaim, LeaseHolder};
+pub use lease::{Fence, LeaseAttempt, LeaseClaim, LeaseHolder};
 pub use report::{ForecastBand, ForecastInterval, RunHistoryEntry, RunSeriesOutcome, SiteEffect};
 pub use runs::RunOrigin;
 pub use series::SeriesRow;
@@ -80,6 +82,20 @@ pub enum StoreError {
     Busy { path: PathBuf, source: sqlx::Error },
     #[error("database {path}: {source}")]
     Sql { path: PathBuf, source: sqlx::Error },
+    #[error("this process lost the lease of database {path} (it held generation {generation}; {now}) while it worked; it wrote nothing, and its run stays abandoned")]
+    LeaseLost {
+        path: PathBuf,
+        generation: i64,
+        /// Who holds the lease now, in words.
+        now: String,
+    },
+    #[error("series {series}: this fit was made from older data (watermark {watermark}) than version {version} (watermark {newer}), published under the same model definition; it was not published (refit with --force to publish it anyway)")]
+    StaleSnapshot {
+        series: String,
+        watermark: i64,
+        version: i64,
+        newer: i64,
+    },
     #[error("database {path}: applying migrations failed: {source}")]
     Migrate {
         path: PathBuf,

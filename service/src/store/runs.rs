@@ -7,12 +7,13 @@ use super::{now_utc, Store, StoreError};
 use crate::vocabulary::{RunStatus, RunTrigger};
 
 /// Who makes a run: its trigger (`schedule`, `catch-up`, `manual`, `demo`), the command
-/// of the process, and that process's lease holder id when it holds the lease.
+/// of the process, and that process's lease fence (holder id and generation) when it
+/// holds the lease.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct RunOrigin {
     pub trigger: RunTrigger,
     pub command: &'static str,
-    pub holder: Option<String>,
+    pub fence: Option<super::Fence>,
 }
 
 /// Mark the runs still `running` that belong to the lease holder `holder` as
@@ -48,14 +49,15 @@ impl Store {
     ) -> Result<i64, StoreError> {
         let now = now_utc();
         sqlx::query_scalar(
-            "INSERT INTO runs (trigger, started_at, finished_at, status, message, command, holder)
-             VALUES (?1, ?2, ?2, 'skipped', ?3, ?4, ?5) RETURNING run_id",
+            "INSERT INTO runs (trigger, started_at, finished_at, status, message, command, holder, lease_generation)
+             VALUES (?1, ?2, ?2, 'skipped', ?3, ?4, ?5, ?6) RETURNING run_id",
         )
         .bind(origin.trigger)
         .bind(&now)
         .bind(message)
         .bind(origin.command)
-        .bind(&origin.holder)
+        .bind(origin.fence.as_ref().map(|f| &f.holder))
+        .bind(origin.fence.as_ref().map(|f| f.generation))
         .fetch_one(&self.pool)
         .await
         .map_err(|e| self.sql(e))
@@ -90,37 +92,46 @@ impl Store {
     /// Open a run record; returns its id.
     pub async fn start_run(&self, origin: &RunOrigin) -> Result<i64, StoreError> {
         sqlx::query_scalar(
-            "INSERT INTO runs (trigger, started_at, status, command, holder)
-             VALUES (?1, ?2, 'running', ?3, ?4) RETURNING run_id",
+            "INSERT INTO runs (trigger, started_at, status, command, holder, lease_generation)
+             VALUES (?1, ?2, 'running', ?3, ?4, ?5) RETURNING run_id",
         )
         .bind(origin.trigger)
         .bind(now_utc())
         .bind(origin.command)
-        .bind(&origin.holder)
+        .bind(origin.fence.as_ref().map(|f| &f.holder))
+        .bind(origin.fence.as_ref().map(|f| f.generation))
         .fetch_one(&self.pool)
         .await
         .map_err(|e| self.sql(e))
     }
 
-    /// Close a run record.
+    /// Close a run record; returns the status it has now. A run no longer `running` (a
+    /// takeover marked it `abandoned` while its process was stopped) keeps its status.
     pub async fn finish_run(
         &self,
         run_id: i64,
         status: RunStatus,
         message: Option<&str>,
-    ) -> Result<(), StoreError> {
-        sqlx::query(
+    ) -> Result<RunStatus, StoreError> {
+        let closed: Option<RunStatus> = sqlx::query_scalar(
             "UPDATE runs SET finished_at = ?2, status = ?3, message = ?4
-             WHERE run_id = ?1 AND status = 'running'",
+             WHERE run_id = ?1 AND status = 'running' RETURNING status",
         )
         .bind(run_id)
         .bind(now_utc())
         .bind(status)
         .bind(message)
-        .execute(&self.pool)
+        .fetch_optional(&self.pool)
         .await
         .map_err(|e| self.sql(e))?;
-        Ok(())
+        match closed {
+            Some(s) => Ok(s),
+            None => sqlx::query_scalar("SELECT status FROM runs WHERE run_id = ?1")
+                .bind(run_id)
+                .fetch_one(&self.pool)
+                .await
+                .map_err(|e| self.sql(e)),
+        }
     }
 
     /// Record what a run did for one series.
