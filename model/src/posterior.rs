@@ -161,14 +161,9 @@ impl Posterior {
     /// when `per_chain` is at least [`EffectDraws::per_chain`]).
     pub fn forecast_basis(&self, per_chain: usize) -> crate::forecast::ForecastBasis {
         let eff = &self.effects;
-        let keep = per_chain.clamp(1, eff.per_chain.max(1));
-        let step = eff.per_chain as f64 / keep as f64;
-        // Columns (chain-major) of the kept draws: the last of each stride.
+        let within = basis_columns(eff.per_chain, per_chain);
         let cols: Vec<usize> = (0..self.chains)
-            .flat_map(|c| {
-                (0..keep)
-                    .map(move |k| c * eff.per_chain + ((k as f64 + 1.0) * step).ceil() as usize - 1)
-            })
+            .flat_map(|c| within.iter().map(move |&k| c * eff.per_chain + k))
             .collect();
         let pick = |rows: &[f64], levels: usize| -> Vec<f64> {
             (0..levels)
@@ -211,6 +206,21 @@ impl Posterior {
     pub fn data_through_year(&self) -> i32 {
         self.year_labels.last().copied().unwrap_or(0)
     }
+}
+
+/// Positions, within one chain of `available` effect draws, of the `keep` draws a forecast
+/// basis keeps (all of them when `keep >= available`): the last draw of each of `keep`
+/// equal strides, `ceil((k + 1) available / keep) - 1`, so the last kept draw is the
+/// chain's last. In integers: the same ratio in floating point can round up past a whole
+/// number and point one past the end of the chain (`available = 110`, `keep = 25`).
+pub(crate) fn basis_columns(available: usize, keep: usize) -> Vec<usize> {
+    if available == 0 {
+        return Vec::new();
+    }
+    let keep = keep.clamp(1, available);
+    (1..=keep)
+        .map(|k| (k * available).div_ceil(keep) - 1)
+        .collect()
 }
 
 /// Fit the Bayesian model: draws from the exact posterior of every parameter.
@@ -755,4 +765,42 @@ pub fn location_conditional(
         .copy_from(&stats.coef_transform());
     let cov = &a * fac.dense_covariance(&stats) * a.transpose();
     Ok(LocationConditional { mean, cov })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::basis_columns;
+    use crate::sampler::effect_thinning;
+
+    /// For every `draws` from 100 to 5000 (effect draws per chain as the sampler thins
+    /// them) and kept counts of 1, 25, the chain's own length and more than it: the kept
+    /// positions are inside the chain, strictly increasing (so distinct), end at the
+    /// chain's last draw, and are evenly spread (every stride is `floor` or `ceil` of
+    /// `available / keep`).
+    #[test]
+    fn basis_columns_are_in_range_distinct_and_evenly_spread_for_every_draw_count() {
+        for effect_draws in [100, 30, 1] {
+            for draws in 100..=5000 {
+                let (_, available) = effect_thinning(draws, effect_draws);
+                for keep in [1, 7, 25, 100, available, available + 1, usize::MAX] {
+                    let cols = basis_columns(available, keep);
+                    let kept = keep.min(available);
+                    let at = format!("draws {draws}, per chain {available}, keep {keep}");
+                    assert_eq!(cols.len(), kept, "{at}");
+                    assert_eq!(*cols.last().unwrap(), available - 1, "{at}");
+                    let (lo, hi) = (available / kept, available.div_ceil(kept));
+                    let mut prev: Option<usize> = None;
+                    for &c in &cols {
+                        assert!(c < available, "{at}: {c}");
+                        let stride = prev.map_or(c + 1, |p| c - p);
+                        assert!(
+                            prev.is_none_or(|p| c > p) && (lo..=hi).contains(&stride),
+                            "{at}: stride {stride} outside {lo}..={hi} in {cols:?}"
+                        );
+                        prev = Some(c);
+                    }
+                }
+            }
+        }
+    }
 }

@@ -287,6 +287,13 @@ pub(crate) struct ChainOutput {
     pub end: Vec<f64>,
 }
 
+/// Thinning of the effect draws: every `thin`-th saved draw, `n_effect` of them per chain
+/// (at least `effect_draws`, fewer than twice as many).
+pub(crate) fn effect_thinning(draws: usize, effect_draws: usize) -> (usize, usize) {
+    let thin = (draws / effect_draws.max(1)).max(1);
+    (thin, draws / thin)
+}
+
 pub(crate) fn run_chain(
     target: &Target,
     settings: &SamplerSettings,
@@ -316,8 +323,7 @@ pub(crate) fn run_chain(
     let mut log_rw_scale = (2.38 / (m as f64).sqrt()).ln();
     let warmup = start.warmup;
     let total = warmup + settings.draws;
-    let thin = (settings.draws / settings.effect_draws).max(1);
-    let n_effect = settings.draws / thin;
+    let (thin, n_effect) = effect_thinning(settings.draws, settings.effect_draws);
 
     let mut out = ChainOutput {
         sd: Vec::with_capacity(settings.draws * m),
