@@ -5,7 +5,8 @@
 //!
 //! The autocorrelation estimator follows Geyer's (1992) initial monotone sequence as in
 //! the paper's reference implementation; the numbers agree with ArviZ (checked in
-//! `tests/reference_diagnostics.rs`).
+//! `tests/reference_diagnostics.rs`, including chains too short or too antithetic for
+//! Geyer's sequence to add any pair of lags).
 
 use crate::normal::inverse_normal;
 
@@ -101,12 +102,34 @@ fn rhat_basic(chains: &[Vec<f64>]) -> f64 {
     ((between / within + n - 1.0) / n).sqrt()
 }
 
-/// Effective sample size of the chains as given (all of equal length).
+/// Effective sample size of the chains as given (all of equal length, at least one draw).
+///
+/// Two degenerate inputs get the values ArviZ gives them (checked in
+/// `tests/reference_diagnostics.rs`): all draws equal, `N` (the draws carry no
+/// autocorrelation to estimate; only indicator chains of tied draws reach this, since
+/// [`diagnose_with`] answers NaN for a constant quantity); and no pair of lags for
+/// Geyer's initial positive sequence (at most 4 draws per chain, or the first pair sum
+/// `rho_1 + rho_2` already <= 0, as in a perfectly alternating chain). The sum of
+/// autocorrelations is then `rho_0` alone, the autocorrelation time `-1 + rho_0 = 0`, and
+/// its usual floor `1 / log10 N` gives `ESS = N log10 N`, the cap every estimate is held
+/// to. That is the right direction for antithetic draws; for chains this short it is a
+/// bound, not an estimate (the sampler saves at least 10 draws per chain, so a gated
+/// quantity reaches it only through antithetic draws).
 pub(crate) fn ess_basic(chains: &[Vec<f64>]) -> f64 {
     let m = chains.len();
     let n = chains[0].len();
-    if n < 4 {
+    let total = (m * n) as f64;
+    if n < 2 {
         return f64::NAN;
+    }
+    let (lo, hi) = chains
+        .iter()
+        .flatten()
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &v| {
+            (lo.min(v), hi.max(v))
+        });
+    if hi - lo < 1e-15 {
+        return total;
     }
     let centred: Vec<Vec<f64>> = chains
         .iter()
@@ -149,7 +172,7 @@ pub(crate) fn ess_basic(chains: &[Vec<f64>]) -> f64 {
     rho[1] = rho_odd;
     rho_even = 1.0;
     let mut t = 1;
-    while t < n - 3 && rho_even + rho_odd > 0.0 {
+    while t + 3 < n && rho_even + rho_odd > 0.0 {
         rho_even = 1.0 - (mean_var - acov(t + 1)) / var_plus;
         rho_odd = 1.0 - (mean_var - acov(t + 2)) / var_plus;
         if rho_even + rho_odd >= 0.0 {
@@ -158,21 +181,25 @@ pub(crate) fn ess_basic(chains: &[Vec<f64>]) -> f64 {
         }
         t += 2;
     }
-    let max_t = t - 2;
-    if rho_even > 0.0 {
-        rho[max_t + 1] = rho_even;
-    }
-    // Geyer's initial monotone sequence.
-    let mut t = 1;
-    while t + 2 <= max_t {
-        if rho[t + 1] + rho[t + 2] > rho[t - 1] + rho[t] {
-            rho[t + 1] = (rho[t - 1] + rho[t]) / 2.0;
-            rho[t + 2] = rho[t + 1];
+    let tau = if t == 1 {
+        // No pair of lags was taken (see the doc comment): -1 + rho_0.
+        0.0
+    } else {
+        let max_t = t - 2;
+        if rho_even > 0.0 {
+            rho[max_t + 1] = rho_even;
         }
-        t += 2;
-    }
-    let total = (m * n) as f64;
-    let tau = -1.0 + 2.0 * rho[..=max_t].iter().sum::<f64>() + rho[max_t + 1];
+        // Geyer's initial monotone sequence.
+        let mut t = 1;
+        while t + 2 <= max_t {
+            if rho[t + 1] + rho[t + 2] > rho[t - 1] + rho[t] {
+                rho[t + 1] = (rho[t - 1] + rho[t]) / 2.0;
+                rho[t + 2] = rho[t + 1];
+            }
+            t += 2;
+        }
+        -1.0 + 2.0 * rho[..=max_t].iter().sum::<f64>() + rho[max_t + 1]
+    };
     let tau = tau.max(1.0 / total.log10());
     total / tau
 }
@@ -195,13 +222,17 @@ fn ess_quantile(split: &[Vec<f64>], sorted: &[f64], p: f64) -> f64 {
 }
 
 /// Rank-normalised split R-hat, bulk-ESS and tail-ESS of one quantity, given per chain.
+///
+/// Every figure is NaN (not estimable; a gate must count it as failing) when there are no
+/// chains, chains of unequal length, fewer than 4 draws per chain, or all draws equal.
+/// Very short or antithetic chains get `ESS = N log10 N` (see `ess_basic`).
 pub fn diagnose(chains: &[&[f64]]) -> Diagnostic {
     let half = chains.first().map_or(0, |c| c.len() / 2);
     diagnose_with(chains, &ZTable::new(2 * half * chains.len())).0
 }
 
 /// [`diagnose`] with a shared table of normal scores (for `S` = all split draws); also
-/// returns the split draws sorted ascending, which summaries reuse for quantiles.
+/// returns all draws sorted ascending, which summaries reuse for quantiles.
 ///
 /// One sort serves everything: the ranks of the draws come from it, and so do the ranks
 /// of the folded draws `|x - median|`, by merging outward from the median.
@@ -225,7 +256,9 @@ pub(crate) fn diagnose_with(chains: &[&[f64]], table: &ZTable) -> (Diagnostic, V
     order.sort_unstable_by(|&a, &b| flat[a].total_cmp(&flat[b]));
     let sorted: Vec<f64> = order.iter().map(|&k| flat[k]).collect();
     if sorted[0] == sorted[total - 1] {
-        return (nan, sorted);
+        let mut all: Vec<f64> = chains.iter().flat_map(|c| c.iter().copied()).collect();
+        all.sort_unstable_by(f64::total_cmp);
+        return (nan, all);
     }
     let z = z_from_order(&flat, &order, chain_len, table);
     let median = quantile_sorted(&sorted, 0.5);
@@ -255,9 +288,19 @@ pub(crate) fn diagnose_with(chains: &[&[f64]], table: &ZTable) -> (Diagnostic, V
     let d = Diagnostic {
         rhat: rhat_bulk.max(rhat_tail),
         ess_bulk: ess_basic(&z),
-        ess_tail: ess_quantile(&split, &sorted, 0.05).min(ess_quantile(&split, &sorted, 0.95)),
+        ess_tail: 0.0,
     };
-    (d, sorted)
+    // The tail quantiles are those of all draws, the middle draw of odd-length chains
+    // included (as in ArviZ); with even lengths the split draws are all the draws.
+    let all = if chains[0].len() % 2 == 0 {
+        sorted
+    } else {
+        let mut all: Vec<f64> = chains.iter().flat_map(|c| c.iter().copied()).collect();
+        all.sort_unstable_by(f64::total_cmp);
+        all
+    };
+    let ess_tail = ess_quantile(&split, &all, 0.05).min(ess_quantile(&split, &all, 0.95));
+    (Diagnostic { ess_tail, ..d }, all)
 }
 
 #[cfg(test)]

@@ -381,15 +381,7 @@ fn summarise(
     table: &ZTable,
 ) -> Summary {
     let refs: Vec<&[f64]> = chains.iter().map(|c| c.as_slice()).collect();
-    let (d, sorted_split) = diagnose_with(&refs, table);
-    // With even chain lengths the split draws are all the draws; otherwise sort again.
-    let all = if chains.iter().all(|c| c.len() % 2 == 0) {
-        sorted_split
-    } else {
-        let mut all: Vec<f64> = chains.iter().flatten().copied().collect();
-        all.sort_unstable_by(f64::total_cmp);
-        all
-    };
+    let (d, all) = diagnose_with(&refs, table);
     let n = all.len() as f64;
     let mean = all.iter().sum::<f64>() / n;
     let sd = (all.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt();
