@@ -292,7 +292,7 @@ pub(crate) fn diagnose_with(chains: &[&[f64]], table: &ZTable) -> (Diagnostic, V
     };
     // The tail quantiles are those of all draws, the middle draw of odd-length chains
     // included (as in ArviZ); with even lengths the split draws are all the draws.
-    let all = if chains[0].len() % 2 == 0 {
+    let all = if chains[0].len().is_multiple_of(2) {
         sorted
     } else {
         let mut all: Vec<f64> = chains.iter().flat_map(|c| c.iter().copied()).collect();
