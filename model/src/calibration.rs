@@ -8,7 +8,8 @@
 //! - `new_site_known_year`: held-out sites in the fitted years;
 //! - `new_site_new_year`: held-out sites in the final year.
 //!
-//! A value is covered at level `c` when its probability integral transform `F(y)` under
+//! Every forecast is the production predictive ([`crate::forecast::predictive`]) at the
+//! held-out visit's own covariate value. A value is covered at level `c` when its probability integral transform `F(y)` under
 //! the forecast lies in `[(1-c)/2, (1+c)/2]` — the same as falling inside the central
 //! interval. Next to each empirical coverage stands the coverage that the *true*
 //! generating model reaches on the very same held-out values (the fair yardstick: a single
@@ -17,8 +18,8 @@
 
 use crate::data::DataBuilder;
 use crate::error::ModelError;
-use crate::forecast::{mixture_quantile, ForecastTarget};
-use crate::normal::norm_cdf;
+use crate::forecast::{predictive, ForecastTarget};
+use crate::normal::{inverse_normal, norm_cdf};
 use crate::posterior::sample;
 use crate::priors::Priors;
 use crate::sampler::{Controls, SamplerSettings};
@@ -83,6 +84,8 @@ pub struct Coverage {
     pub truth: [usize; 3],
     /// Sum of the fitted 80% interval widths (model scale), for average widths.
     pub width80: f64,
+    /// Sum of the true model's 80% interval widths on the same values.
+    pub width80_truth: f64,
 }
 
 impl Coverage {
@@ -93,10 +96,15 @@ impl Coverage {
             self.truth[i] += other.truth[i];
         }
         self.width80 += other.width80;
+        self.width80_truth += other.width80_truth;
     }
     pub fn rate(&self, level: usize) -> (f64, f64) {
         let n = self.n.max(1) as f64;
         (self.fitted[level] as f64 / n, self.truth[level] as f64 / n)
+    }
+    /// Mean fitted 80% width over the true model's on the same values.
+    pub fn width_ratio(&self) -> f64 {
+        self.width80 / self.width80_truth
     }
 }
 
@@ -177,35 +185,16 @@ pub fn calibration_replicate(
         Controls::default(),
     )?;
     let basis = post.forecast_basis(usize::MAX);
-    let n = basis.n;
-    let m = basis.sd_names.len();
     let site_index = |s: usize| basis.site_labels.binary_search(&site_label(s)).ok();
     let year_index = |t: usize| basis.year_labels.binary_search(&(2000 + t as i32)).ok();
     let mut out: [Coverage; 4] = Default::default();
     for h in &held {
         let known_site = site_index(h.site).filter(|_| h.target < 2);
         let known_year = year_index(h.year).filter(|_| h.target == 0 || h.target == 2);
-        let mut f = 0.0;
-        let (mut means, mut sds) = (Vec::with_capacity(n), Vec::with_capacity(n));
-        for d in 0..n {
-            let sd = &basis.sd[d * m..(d + 1) * m];
-            let coef = &basis.coef[d * 2..d * 2 + 2];
-            let mut mean = coef[0] + coef[1] * h.x;
-            let mut var = sd[0] * sd[0];
-            match known_site {
-                Some(s) => mean += basis.site[s * n + d],
-                None => var += sd[1] * sd[1],
-            }
-            match known_year {
-                Some(t) => mean += basis.year[t * n + d],
-                None => var += sd[2] * sd[2],
-            }
-            f += norm_cdf((h.y - mean) / var.sqrt());
-            means.push(mean);
-            sds.push(var.sqrt());
-        }
-        let width = mixture_quantile(&means, &sds, 0.9) - mixture_quantile(&means, &sds, 0.1);
-        let pit = f / n as f64;
+        // The production predictive, at the held-out visit's own covariate value.
+        let pred = predictive(&basis, known_site, known_year, &[Some(h.x)])?;
+        let width = pred.quantile(0.9) - pred.quantile(0.1);
+        let pit = pred.cdf(h.y);
         // The true model: known parts at their true values, unknown parts integrated.
         let mut t_mean = spec.intercept + spec.coef * h.x;
         let mut t_var = spec.sd_residual.powi(2);
@@ -223,6 +212,7 @@ pub fn calibration_replicate(
         let c = &mut out[h.target];
         c.n += 1;
         c.width80 += width;
+        c.width80_truth += 2.0 * inverse_normal(0.9) * t_var.sqrt();
         for (i, (a, b)) in covered(pit).iter().zip(covered(pit_true)).enumerate() {
             c.fitted[i] += *a as usize;
             c.truth[i] += b as usize;

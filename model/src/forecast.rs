@@ -247,21 +247,133 @@ pub(crate) fn mixture_quantile(means: &[f64], sds: &[f64], p: f64) -> f64 {
     z
 }
 
-struct Components {
-    means: Vec<f64>,
-    vars: Vec<f64>,
+/// The predictive distribution of one forecast on the model scale: the equal-weight
+/// mixture over joint draws `d` of `N(means[d], vars[d])`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Predictive {
+    pub means: Vec<f64>,
+    pub vars: Vec<f64>,
 }
 
-#[allow(clippy::too_many_arguments)]
-fn row_from(
+impl Predictive {
+    /// The mixture CDF at `y` (model scale).
+    pub fn cdf(&self, y: f64) -> f64 {
+        let total: f64 = self
+            .means
+            .iter()
+            .zip(&self.vars)
+            .map(|(m, v)| norm_cdf((y - m) / v.sqrt()))
+            .sum();
+        total / self.means.len() as f64
+    }
+
+    /// The mixture quantile `p` (model scale), solved exactly.
+    pub fn quantile(&self, p: f64) -> f64 {
+        let sds: Vec<f64> = self.vars.iter().map(|v| v.sqrt()).collect();
+        mixture_quantile(&self.means, &sds, p)
+    }
+}
+
+/// The predictive of a new value at a monitored site (`site`, an index into
+/// `basis.site_labels`) or a new one (`None`), in an observed year (`year`, an index into
+/// `basis.year_labels`) or a new one (`None`), with covariates at `covariates` (original
+/// units; `None` or a missing entry means the network mean). The target follows from
+/// which of site and year are known. This is the one place the predictive is built:
+/// [`forecast`] and the calibration study both read it.
+pub fn predictive(
+    basis: &ForecastBasis,
+    site: Option<usize>,
+    year: Option<usize>,
+    covariates: &[Option<f64>],
+) -> Result<Predictive, crate::ModelError> {
+    let bad = |m: String| Err(crate::ModelError::InvalidSettings(m));
+    if site.is_some_and(|s| s >= basis.site_labels.len()) {
+        return bad(format!("site index {site:?} is not a monitored site"));
+    }
+    if year.is_some_and(|t| t >= basis.year_labels.len()) {
+        return bad(format!("year index {year:?} is not an observed year"));
+    }
+    if covariates.len() > basis.covariate_means.len() {
+        return bad(format!(
+            "{} covariate values given for {} covariates",
+            covariates.len(),
+            basis.covariate_means.len()
+        ));
+    }
+    let fixed = fixed_part(basis, covariates);
+    Ok(predictive_from(basis, &fixed, site, year))
+}
+
+/// Model-scale mean of the fixed part per draw: the mean at the network's average
+/// covariates, shifted by the scenario's covariate values.
+fn fixed_part(basis: &ForecastBasis, covariates: &[Option<f64>]) -> Vec<f64> {
+    let p = basis.coef_names.len();
+    let base = basis.mean_at_covariate_means();
+    (0..basis.n)
+        .map(|d| {
+            let mut v = base[d];
+            for (j, x) in covariates.iter().enumerate() {
+                if let Some(x) = x {
+                    v += basis.coef[d * p + 1 + j] * (x - basis.covariate_means[j]);
+                }
+            }
+            v
+        })
+        .collect()
+}
+
+/// [`predictive`] given the fixed part per draw: a known site or year adds its drawn
+/// effect to the mean; an unknown one adds its variance. Further groups and residual
+/// noise are always unknown.
+fn predictive_from(
+    basis: &ForecastBasis,
+    fixed: &[f64],
+    site: Option<usize>,
+    year: Option<usize>,
+) -> Predictive {
+    let n = basis.n;
+    let m = basis.sd_names.len();
+    let sd2 = |d: usize, k: usize| basis.sd[d * m + k].powi(2);
+    let means = (0..n)
+        .map(|d| {
+            let mut v = fixed[d];
+            if let Some(s) = site {
+                v += basis.site[s * n + d];
+            }
+            if let Some(t) = year {
+                v += basis.year[t * n + d];
+            }
+            v
+        })
+        .collect();
+    let vars = (0..n)
+        .map(|d| {
+            let mut v = sd2(d, 0) + (3..m).map(|k| sd2(d, k)).sum::<f64>();
+            if site.is_none() {
+                v += sd2(d, 1);
+            }
+            if year.is_none() {
+                v += sd2(d, 2);
+            }
+            v
+        })
+        .collect();
+    Predictive { means, vars }
+}
+
+/// Where a forecast row is and how its variance splits by source.
+struct RowSpec<'a> {
     target: ForecastTarget,
     site: Option<String>,
     year: i32,
-    scenario: &str,
-    comp: &Components,
+    scenario: &'a str,
     transform: Transform,
+    /// Mean variance over draws of the site, year, groups and residual parts the target
+    /// does not know (0 for a known part).
     var_parts: [f64; 4],
-) -> ForecastRow {
+}
+
+fn row_from(spec: RowSpec, comp: &Predictive) -> ForecastRow {
     let n = comp.means.len() as f64;
     let sds: Vec<f64> = comp.vars.iter().map(|v| v.sqrt()).collect();
     let q: Vec<f64> = PROBS
@@ -271,7 +383,7 @@ fn row_from(
     let mean_m = comp.means.iter().sum::<f64>() / n;
     let var_m = comp.means.iter().map(|m| (m - mean_m).powi(2)).sum::<f64>() / n;
     let mean_v = comp.vars.iter().sum::<f64>() / n;
-    let (mean, sd, q) = match transform {
+    let (mean, sd, q) = match spec.transform {
         Transform::None => (mean_m, (mean_v + var_m).sqrt(), q),
         Transform::Log => {
             // Lognormal moments per component, then the mixture's.
@@ -297,12 +409,12 @@ fn row_from(
         }
     };
     let total = mean_v + var_m;
-    let [site_var, year_var, group_var, resid_var] = var_parts;
+    let [site_var, year_var, group_var, resid_var] = spec.var_parts;
     ForecastRow {
-        target,
-        site,
-        year,
-        scenario: scenario.to_string(),
+        target: spec.target,
+        site: spec.site,
+        year: spec.year,
+        scenario: spec.scenario.to_string(),
         last_observed_year: None,
         mean,
         sd,
@@ -333,50 +445,28 @@ pub fn forecast(
     transform: Transform,
     scenario: &Scenario,
 ) -> Vec<ForecastRow> {
-    let base = basis.mean_at_covariate_means();
     let m = basis.sd_names.len();
-    let p = basis.coef_names.len();
     let n_sites = basis.site_labels.len();
     let next_year = basis.data_through_year() + 1;
-    // Fixed part per draw: mean at covariate means, shifted by the scenario.
-    let fixed: Vec<f64> = (0..basis.n)
-        .map(|d| {
-            let mut v = base[d];
-            for (j, x) in scenario.covariates.iter().enumerate() {
-                if let Some(x) = x {
-                    v += basis.coef[d * p + 1 + j] * (x - basis.covariate_means[j]);
-                }
-            }
-            v
-        })
-        .collect();
+    let fixed = fixed_part(basis, &scenario.covariates);
     let sd2 = |d: usize, k: usize| basis.sd[d * m + k].powi(2);
     let avg = |f: &dyn Fn(usize) -> f64| (0..basis.n).map(f).sum::<f64>() / basis.n as f64;
     let resid_var = avg(&|d| sd2(d, 0));
     let site_var = avg(&|d| sd2(d, 1));
     let year_var = avg(&|d| sd2(d, 2));
     let group_var = avg(&|d| (3..m).map(|k| sd2(d, k)).sum());
-    let vars_for = |target: ForecastTarget| -> Vec<f64> {
-        (0..basis.n)
-            .map(|d| {
-                let mut v = sd2(d, 0) + (3..m).map(|k| sd2(d, k)).sum::<f64>();
-                if target.new_site() {
-                    v += sd2(d, 1);
-                }
-                if target.new_year() {
-                    v += sd2(d, 2);
-                }
-                v
-            })
-            .collect()
-    };
-    let parts = |target: ForecastTarget| {
-        [
+    let spec = |target: ForecastTarget, site: Option<String>, year: i32| RowSpec {
+        target,
+        site,
+        year,
+        scenario: &scenario.name,
+        transform,
+        var_parts: [
             if target.new_site() { site_var } else { 0.0 },
             if target.new_year() { year_var } else { 0.0 },
             group_var,
             resid_var,
-        ]
+        ],
     };
     let year_index = |y: i32| basis.year_labels.binary_search(&y).ok();
 
@@ -386,37 +476,19 @@ pub fn forecast(
         ForecastTarget::KnownSiteNewYear,
         ForecastTarget::KnownSiteKnownYear,
     ] {
-        let vars = vars_for(target);
         let site_rows: Vec<ForecastRow> = (0..n_sites)
             .into_par_iter()
             .map(|s| {
-                let year = if target.new_year() {
-                    next_year
+                let (year, t) = if target.new_year() {
+                    (next_year, None)
                 } else {
-                    basis.site_last_year[s]
+                    let year = basis.site_last_year[s];
+                    (year, year_index(year))
                 };
-                let t = year_index(year);
-                let means = (0..basis.n)
-                    .map(|d| {
-                        let mut v = fixed[d] + basis.site[s * basis.n + d];
-                        if let (false, Some(t)) = (target.new_year(), t) {
-                            v += basis.year[t * basis.n + d];
-                        }
-                        v
-                    })
-                    .collect();
-                let comp = Components {
-                    means,
-                    vars: vars.clone(),
-                };
+                let comp = predictive_from(basis, &fixed, Some(s), t);
                 let mut row = row_from(
-                    target,
-                    Some(basis.site_labels[s].clone()),
-                    year,
-                    &scenario.name,
+                    spec(target, Some(basis.site_labels[s].clone()), year),
                     &comp,
-                    transform,
-                    parts(target),
                 );
                 row.last_observed_year = Some(basis.site_last_year[s]);
                 row
@@ -424,40 +496,18 @@ pub fn forecast(
             .collect();
         rows.extend(site_rows);
     }
-    // A new site in every observed year.
-    let target = ForecastTarget::NewSiteKnownYear;
-    let vars = vars_for(target);
+    // A new site in every observed year, then next year.
     for (t, &year) in basis.year_labels.iter().enumerate() {
-        let means = (0..basis.n)
-            .map(|d| fixed[d] + basis.year[t * basis.n + d])
-            .collect();
-        let comp = Components {
-            means,
-            vars: vars.clone(),
-        };
+        let comp = predictive_from(basis, &fixed, None, Some(t));
         rows.push(row_from(
-            target,
-            None,
-            year,
-            &scenario.name,
+            spec(ForecastTarget::NewSiteKnownYear, None, year),
             &comp,
-            transform,
-            parts(target),
         ));
     }
-    let target = ForecastTarget::NewSiteNewYear;
-    let comp = Components {
-        means: fixed.clone(),
-        vars: vars_for(target),
-    };
+    let comp = predictive_from(basis, &fixed, None, None);
     rows.push(row_from(
-        target,
-        None,
-        next_year,
-        &scenario.name,
+        spec(ForecastTarget::NewSiteNewYear, None, next_year),
         &comp,
-        transform,
-        parts(target),
     ));
     rows
 }

@@ -46,7 +46,8 @@ pub use sampler::{Controls, Progress, SamplerSettings, WarmStart};
 mod forecast;
 pub mod simulate;
 pub use forecast::{
-    forecast, forecast_baseline, ForecastBasis, ForecastRow, ForecastTarget, Scenario, Transform,
+    forecast, forecast_baseline, predictive, ForecastBasis, ForecastRow, ForecastTarget,
+    Predictive, Scenario, Transform,
 };
 pub mod calibration;
 pub mod sbc;

@@ -1,0 +1,241 @@
+//! The four forecast targets against an independent computation. For a fixed set of joint
+//! draws (invented, with effects and variance components large enough that leaving any
+//! one out moves a figure by many Monte Carlo errors), each forecast row's mean, variance,
+//! quantiles and variance shares are recomputed by plain Monte Carlo: for every joint draw,
+//! `K` fresh values with a new site / new year / group / residual noise drawn here, from
+//! the draw's own standard deviations, and the known site and year effects of the draw
+//! added to the mean. Nothing from `forecast.rs` is used but the rows under test.
+//!
+//! Bounds (all at 5 Monte Carlo standard errors; the sampling is stratified by draw, so
+//! the plain i.i.d. errors used below are upper bounds): the mean within
+//! `5 sqrt(Var / N)`; the variance within `5 sqrt((mu4 - Var^2) / N)` (`mu4` the sample's
+//! fourth central moment); a quantile `q_p` through its CDF, the share of values at or
+//! below `q_p` within `5 sqrt(p (1 - p) / N)` of `p`; the shares within the relative
+//! error of the Monte Carlo variance. `N = n K = 200,000` values per row.
+
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+use rand_distr::{Distribution, StandardNormal};
+use tidemark_model::*;
+
+const N_DRAWS: usize = 200;
+const K: usize = 1000;
+const SITES: [f64; 3] = [-0.8, 0.3, 0.9];
+const YEARS: [f64; 4] = [0.5, -0.6, 0.2, -0.4];
+const CREWS: [f64; 2] = [0.3, -0.3];
+
+fn z(rng: &mut ChaCha8Rng) -> f64 {
+    StandardNormal.sample(rng)
+}
+
+/// Joint draws of a network of 3 sites, years 2001-2004, one crew factor and one
+/// covariate; each draw's sds and effects vary around fixed centres.
+fn basis() -> ForecastBasis {
+    let mut rng = ChaCha8Rng::seed_from_u64(42);
+    let n = N_DRAWS;
+    let centres = [0.4, 0.7, 0.6, 0.5]; // residual, site, year, crew
+    let mut sd = Vec::new();
+    let mut coef = Vec::new();
+    for _ in 0..n {
+        for c in centres {
+            sd.push(c * (0.2 * z(&mut rng)).exp());
+        }
+        coef.push(1.0 + 0.1 * z(&mut rng));
+        coef.push(0.2 + 0.02 * z(&mut rng));
+    }
+    let mut effects = |centres: &[f64]| -> Vec<f64> {
+        centres
+            .iter()
+            .flat_map(|&c| (0..n).map(|_| c + 0.1 * z(&mut rng)).collect::<Vec<_>>())
+            .collect()
+    };
+    let site = effects(&SITES);
+    let year = effects(&YEARS);
+    let crew = effects(&CREWS);
+    ForecastBasis {
+        sd_names: vec![
+            "residual".into(),
+            "site".into(),
+            "year".into(),
+            "crew".into(),
+        ],
+        coef_names: vec!["intercept".into(), "x".into()],
+        site_labels: vec!["s1".into(), "s2".into(), "s3".into()],
+        year_labels: vec![2001, 2002, 2003, 2004],
+        group_names: vec!["crew".into()],
+        group_labels: vec![vec!["a".into(), "b".into()]],
+        covariate_means: vec![10.0],
+        site_last_year: vec![2004, 2003, 2002],
+        n,
+        draw_index: (0..n).collect(),
+        site,
+        year,
+        groups: vec![crew],
+        sd,
+        coef,
+    }
+}
+
+/// Monte Carlo values of one row's target (model scale) and the per-draw mean of its
+/// known parts.
+fn monte_carlo(
+    b: &ForecastBasis,
+    row: &ForecastRow,
+    x: f64,
+    rng: &mut ChaCha8Rng,
+) -> (Vec<f64>, Vec<f64>) {
+    let n = b.n;
+    let site = row
+        .site
+        .as_ref()
+        .map(|l| b.site_labels.iter().position(|s| s == l).unwrap());
+    let year = match row.target {
+        ForecastTarget::KnownSiteKnownYear | ForecastTarget::NewSiteKnownYear => {
+            Some(b.year_labels.iter().position(|&y| y == row.year).unwrap())
+        }
+        _ => None,
+    };
+    let mut values = Vec::with_capacity(n * K);
+    let mut known = Vec::with_capacity(n);
+    for d in 0..n {
+        let sd = &b.sd[d * 4..d * 4 + 4];
+        let mut centre = b.coef[d * 2] + b.coef[d * 2 + 1] * x;
+        if let Some(s) = site {
+            centre += b.site[s * n + d];
+        }
+        if let Some(t) = year {
+            centre += b.year[t * n + d];
+        }
+        known.push(centre);
+        for _ in 0..K {
+            let mut y = centre + sd[0] * z(rng) + sd[3] * z(rng);
+            if site.is_none() {
+                y += sd[1] * z(rng);
+            }
+            if year.is_none() {
+                y += sd[2] * z(rng);
+            }
+            values.push(y);
+        }
+    }
+    (values, known)
+}
+
+fn moments(v: &[f64]) -> (f64, f64, f64) {
+    let n = v.len() as f64;
+    let mean = v.iter().sum::<f64>() / n;
+    let var = v.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / n;
+    let m4 = v.iter().map(|x| (x - mean).powi(4)).sum::<f64>() / n;
+    (mean, var, m4)
+}
+
+fn check_rows(transform: Transform, scenario: &Scenario, x: f64) {
+    let b = basis();
+    let rows = forecast(&b, transform, scenario);
+    assert_eq!(rows.len(), 3 + 3 + 4 + 1);
+    let mut rng = ChaCha8Rng::seed_from_u64(7);
+    let n_vals = (N_DRAWS * K) as f64;
+    for row in &rows {
+        let at = format!(
+            "{} {:?} {} ({transform}, x = {x})",
+            row.target.as_str(),
+            row.site,
+            row.year
+        );
+        let (model_scale, known) = monte_carlo(&b, row, x, &mut rng);
+        let values: Vec<f64> = match transform {
+            Transform::None => model_scale.clone(),
+            Transform::Log => model_scale.iter().map(|v| v.exp()).collect(),
+        };
+        let (mean, var, m4) = moments(&values);
+        let tol_mean = 5.0 * (var / n_vals).sqrt();
+        assert!(
+            (row.mean - mean).abs() < tol_mean,
+            "{at}: mean {} vs Monte Carlo {mean} +- {tol_mean}",
+            row.mean
+        );
+        // The response-scale variance under `log` has no usable Monte Carlo bound: the
+        // lognormal's fourth moment, which the bound needs, is itself too heavy-tailed to
+        // estimate (its definition is issue 10, item 4); the model-scale variance is
+        // checked in the other tests and through the shares below.
+        let tol_var = 5.0 * ((m4 - var * var) / n_vals).sqrt();
+        assert!(
+            transform == Transform::Log || (row.sd.powi(2) - var).abs() < tol_var,
+            "{at}: variance {} vs Monte Carlo {var} +- {tol_var}",
+            row.sd.powi(2)
+        );
+        for (p, q) in [
+            (0.025, row.q025),
+            (0.1, row.q10),
+            (0.25, row.q25),
+            (0.5, row.q50),
+            (0.75, row.q75),
+            (0.9, row.q90),
+            (0.975, row.q975),
+        ] {
+            let below = values.iter().filter(|&&v| v <= q).count() as f64 / n_vals;
+            let tol = 5.0 * (p * (1.0 - p) / n_vals).sqrt();
+            assert!(
+                (below - p).abs() < tol,
+                "{at}: q{p} = {q} has {below} of the Monte Carlo values below (+- {tol})"
+            );
+        }
+        // Shares of the model-scale variance, from the draws' own sds and known means.
+        let (_, var_model, m4_model) = moments(&model_scale);
+        let rel = 5.0 * ((m4_model - var_model * var_model) / n_vals).sqrt() / var_model;
+        let avg =
+            |k: usize| (0..N_DRAWS).map(|d| b.sd[d * 4 + k].powi(2)).sum::<f64>() / N_DRAWS as f64;
+        let new_site = row.site.is_none();
+        let new_year = matches!(
+            row.target,
+            ForecastTarget::KnownSiteNewYear | ForecastTarget::NewSiteNewYear
+        );
+        let (_, var_known, _) = moments(&known);
+        for (label, got, part) in [
+            ("residual", row.share_residual, avg(0)),
+            ("site", row.share_site, if new_site { avg(1) } else { 0.0 }),
+            ("year", row.share_year, if new_year { avg(2) } else { 0.0 }),
+            ("groups", row.share_groups, avg(3)),
+            ("estimation", row.share_estimation, var_known),
+        ] {
+            let want = part / var_model;
+            assert!(
+                (got - want).abs() <= want * rel + 1e-12,
+                "{at}: share {label} {got} vs {want} (relative +- {rel})"
+            );
+        }
+    }
+}
+
+#[test]
+fn the_four_targets_equal_a_plain_monte_carlo_over_the_same_draws() {
+    check_rows(Transform::None, &Scenario::baseline(), 10.0);
+}
+
+#[test]
+fn a_covariate_scenario_moves_every_target_by_its_coefficient_draws() {
+    let scenario = Scenario {
+        name: "x14".into(),
+        covariates: vec![Some(14.0)],
+    };
+    check_rows(Transform::None, &scenario, 14.0);
+}
+
+#[test]
+fn log_scale_targets_equal_a_plain_monte_carlo_of_the_back_transformed_values() {
+    check_rows(Transform::Log, &Scenario::baseline(), 10.0);
+}
+
+/// The predictive the calibration study scores with is the one the rows come from.
+#[test]
+fn predictive_reproduces_the_forecast_rows_and_refuses_unknown_levels() {
+    let b = basis();
+    let rows = forecast_baseline(&b, Transform::None);
+    let new_new = rows.last().unwrap();
+    let pred = predictive(&b, None, None, &[]).unwrap();
+    assert_eq!(pred.quantile(0.1), new_new.q10);
+    assert!((pred.cdf(new_new.q90) - 0.9).abs() < 1e-9);
+    assert!(predictive(&b, Some(3), None, &[]).is_err());
+    assert!(predictive(&b, None, Some(4), &[]).is_err());
+    assert!(predictive(&b, None, None, &[None, None]).is_err());
+}
