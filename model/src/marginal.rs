@@ -15,8 +15,11 @@
 //!   `N(lambda (ysum_s - w_s'u) / d_s, 1 / d_s)` independently.
 //!
 //! Drawing `u` and then `a | u` is an exact joint draw from the conditional of all
-//! location parameters: the collapsed scheme of Papaspiliopoulos, Roberts & Zanella
-//! (2020, Biometrika 107(1), "Scalable inference for crossed random effects models").
+//! location parameters given the standard deviations; the sampler (`sampler`) makes one
+//! such draw per saved state of its marginal chain, with no Gibbs sweeps. (Collapsed
+//! Gibbs samplers for crossed random effects, Papaspiliopoulos, Roberts & Zanella 2020,
+//! Biometrika 107(1), "Scalable inference for crossed random effects models", recalled
+//! from memory, are related work: they update such blocks in turn.)
 //! The likelihood identities are the standard ones for Gaussian linear mixed models
 //! (e.g. Harville 1977, JASA 72; Bates & DebRoy 2004, J. Multivariate Anal. 91).
 

@@ -1,6 +1,17 @@
-//! The collapsed sampler: variance parameters from their marginal posterior by
-//! Metropolis–Hastings on the log scale, then every location parameter drawn jointly and
-//! exactly from its Gaussian conditional (Papaspiliopoulos, Roberts & Zanella 2020).
+//! The sampler: a marginal Metropolis–Hastings chain on the log standard deviations,
+//! followed by an exact joint Gaussian draw of all location parameters.
+//!
+//! The chain's state is `eta = log sd` alone, and its target is the marginal posterior of
+//! `eta`, with every location parameter (intercept, coefficients, site, year and group
+//! effects) integrated out analytically (`marginal`). At each saved state all location
+//! parameters are then drawn jointly and exactly from their Gaussian conditional given
+//! `eta`, so a saved draw is a draw of the full joint posterior whenever the chain on
+//! `eta` is, and the location parameters mix exactly as fast as `eta` does. Nothing is
+//! updated block by block: this is not a Gibbs sampler. Related work, not the method used
+//! (recalled from memory; references in docs/architecture.md): collapsed Gibbs sampling
+//! (Liu 1994) and collapsed and blocked Gibbs samplers for crossed random effects
+//! (Papaspiliopoulos, Roberts & Zanella 2020); the closest construction is the one-block
+//! update of hyperparameters and a Gaussian field of Knorr-Held & Rue (2002).
 //!
 //! Each transition is one of two Metropolis–Hastings kernels, chosen at random (a mixture
 //! of kernels that each leave the posterior invariant leaves it invariant too):
