@@ -40,6 +40,8 @@ pub async fn run(ctx: &Context, files: &[PathBuf]) -> anyhow::Result<()> {
     let store = ctx.open_store().await?;
     let inbox = &ctx.config.feed.inbox;
     let mut skipped = Vec::new();
+    // The files that wait where they are if the run cannot even start.
+    let mut waiting: Vec<PathBuf> = files.to_vec();
     if files.is_empty() {
         if !inbox.is_dir() {
             anyhow::bail!(
@@ -62,6 +64,7 @@ pub async fn run(ctx: &Context, files: &[PathBuf]) -> anyhow::Result<()> {
             return Ok(());
         }
         skipped = listing.skipped;
+        waiting = listing.files;
     } else if let Some(missing) = files.iter().find(|f| !f.is_file()) {
         anyhow::bail!(
             "{} is not a file; nothing was ingested",
@@ -77,13 +80,13 @@ pub async fn run(ctx: &Context, files: &[PathBuf]) -> anyhow::Result<()> {
         holder: None,
     };
     let run_id = store.start_run(&origin).await.map_err(|e| {
-        let waiting = if files.is_empty() {
-            "the inbox waits as it is".to_string()
+        let names: Vec<String> = waiting.iter().map(|f| visible_path(f)).collect();
+        let names = if names.is_empty() {
+            "the inbox".to_string()
         } else {
-            let names: Vec<String> = files.iter().map(|f| visible_path(f)).collect();
-            format!("{} waits where it is", names.join(", "))
+            names.join(", ")
         };
-        anyhow::Error::new(e).context(format!("nothing was ingested; {waiting}"))
+        anyhow::Error::new(e).context(format!("nothing was ingested; {names} waits where it is"))
     })?;
     let mut tally = Tally::default();
     let pass = if files.is_empty() {
