@@ -7,10 +7,12 @@
 
 mod common;
 
-use std::process::{Command, Stdio};
 use std::time::Duration;
 
-use common::{csv, network_rows, signal, wait_exit, wait_until, ConfigBuilder, Network, Sampler};
+use common::{
+    csv, network_rows, release_hold, signal, spawn_held, wait_exit, wait_for_hold, ConfigBuilder,
+    Network, Sampler,
+};
 use common::{Value, CHLOROPHYLL};
 
 /// One series and a lease that counts as stale after 2 s without a heartbeat.
@@ -42,32 +44,18 @@ fn a_run_that_lost_its_lease_while_stopped_publishes_nothing_and_exits_1() {
     let (older, newest): (Vec<_>, Vec<_>) = rows.into_iter().partition(|r| r.1 < 2008);
     net.drop_file("2001-2007.csv", csv(&older));
 
-    // The first run holds just before its publishing transaction while `hold` exists.
+    // The first run ingests its file without stopping, then holds just before its
+    // publishing transaction.
     let hold = net.path("hold");
-    std::fs::write(&hold, "").expect("hold file");
-    let mut first = Command::new(env!("CARGO_BIN_EXE_tidemark"))
-        .arg("--config")
-        .arg(net.config_path())
-        .arg("run-once")
-        .current_dir(net.dir.path())
-        .env_remove("RUST_LOG")
-        .env_remove("TIDEMARK_CONFIG")
-        .env("TIDEMARK_TEST_HOLD_BEFORE_PUBLISHING", &hold)
-        .stdin(Stdio::null())
-        .stdout(Stdio::null())
-        .stderr(std::fs::File::create(net.path("first.log")).expect("log"))
-        .spawn()
-        .expect("spawn run-once");
-    assert!(
-        wait_until(Duration::from_secs(300), || log(&net, "first.log")
-            .contains("test hold: waiting before the publishing transaction")),
-        "the first run never reached its publishing transaction:\n{}",
-        log(&net, "first.log")
-    );
+    std::fs::create_dir(&hold).expect("hold folder");
+    release_hold(&hold, "2001-2007.csv", "read");
+    release_hold(&hold, "2001-2007.csv", "committed");
+    let mut first = spawn_held(&net, &["run-once"], &hold, "first");
+    wait_for_hold(&hold, "chlorophyll", "publishing");
     // Stopped, it can neither heartbeat nor publish; released from the hold, it will try
     // to publish the moment it runs again.
     signal(&first, libc::SIGSTOP);
-    std::fs::remove_file(&hold).expect("release the hold");
+    release_hold(&hold, "chlorophyll", "publishing");
     std::thread::sleep(Duration::from_secs(4));
 
     // A second run with a newer file takes the stale lease over and publishes version 1.
@@ -86,7 +74,7 @@ fn a_run_that_lost_its_lease_while_stopped_publishes_nothing_and_exits_1() {
 
     signal(&first, libc::SIGCONT);
     let (status, _) = wait_exit(&mut first, Duration::from_secs(60));
-    let first_err = log(&net, "first.log");
+    let first_err = log(&net, "first.err");
     assert_eq!(
         status.and_then(|s| s.code()),
         Some(1),

@@ -471,3 +471,327 @@ fn named_files_outside_the_inbox_are_copied_not_moved() {
     assert!(!missing.status.success());
     assert!(String::from_utf8_lossy(&missing.stderr).contains("no-such-file.csv is not a file"));
 }
+
+/// Lines `1.0 / 1.0 / 2.0` of one (site, year, visit, column): every line is rejected,
+/// each with its cell's text exactly as written, and each reason lists all three lines.
+#[test]
+fn every_line_of_a_conflict_is_rejected_with_its_text_as_written() {
+    let net = Network::initialised();
+    let rows = [
+        HEADER,
+        "L1,2020,1,1.0,12,,A",  // line 2
+        "L1,2020,1,1.0,12,,A",  // line 3: identical repeat of line 2
+        "L1,2020,1,2.0,12,,A",  // line 4: conflicts on chl
+        "L2,2020,1,5.50,7,,B",  // line 5
+        "L2,2020,1,5.5,7.0,,B", // line 6: the same numbers written otherwise, kept once
+    ];
+    net.drop_file("repeats.csv", format!("{}\n", rows.join("\n")));
+    let out = net.ok(&["ingest"]);
+    assert!(
+        line_for(&out, "repeats.csv").ends_with(", 3 rejected (3 conflicting values in the file)"),
+        "{out}"
+    );
+    let rejected = net.sql(
+        "SELECT r.line, r.column_name, r.raw_value, r.reason FROM rejections r ORDER BY r.line",
+    );
+    let got: Vec<(i64, String, String)> = rejected
+        .iter()
+        .map(|r| (r[0].int(), r[1].text().to_string(), r[2].text().to_string()))
+        .collect();
+    assert_eq!(
+        got,
+        [
+            (2, "chl_ug_l".to_string(), "1.0".to_string()),
+            (3, "chl_ug_l".to_string(), "1.0".to_string()),
+            (4, "chl_ug_l".to_string(), "2.0".to_string()),
+        ]
+    );
+    for r in &rejected {
+        assert!(r[3].text().contains("(lines 2, 3, 4)"), "{}", r[3]);
+    }
+    assert_eq!(
+        net.sqlite3(
+            "SELECT site, column_name, COALESCE(num_value, text_value) FROM current_observations
+             ORDER BY site, column_name"
+        ),
+        "L1|crew|A\nL1|tp_ug_l|12.0\nL2|chl_ug_l|5.5\nL2|crew|B\nL2|tp_ug_l|7.0\n"
+    );
+}
+
+/// A feed file of `rows` distinct rows whose sites are named after `tag`.
+fn rows_file(tag: &str, rows: usize) -> String {
+    let mut text = format!("{HEADER}\n");
+    for j in 0..rows {
+        text.push_str(&format!(
+            "{tag}-{j},2020,1,{}.5,{},,A\n",
+            j % 7 + 1,
+            j % 5 + 2
+        ));
+    }
+    text
+}
+
+/// Two `ingest` processes started together on one inbox of many files: each file is
+/// claimed by exactly one of them, so both succeed, nothing is read twice or reported as
+/// missing, and every file is archived once.
+#[test]
+fn two_processes_ingesting_one_inbox_take_each_file_once() {
+    let net = Network::initialised();
+    const FILES: usize = 60;
+    const ROWS: usize = 300;
+    for i in 0..FILES {
+        net.drop_file(&format!("f{i:03}.csv"), rows_file(&format!("S{i}"), ROWS));
+    }
+    let (a, b) = std::thread::scope(|s| {
+        let a = s.spawn(|| net.tidemark(&["ingest"]));
+        let b = s.spawn(|| net.tidemark(&["ingest"]));
+        (
+            a.join().expect("first ingest"),
+            b.join().expect("second ingest"),
+        )
+    });
+    let mut lines = Vec::new();
+    for out in [&a, &b] {
+        let stdout = String::from_utf8_lossy(&out.stdout).into_owned();
+        let stderr = String::from_utf8_lossy(&out.stderr).into_owned();
+        assert!(
+            out.status.success(),
+            "both succeed: {}\nstdout: {stdout}\nstderr: {stderr}",
+            out.status
+        );
+        assert!(
+            stderr.trim().is_empty(),
+            "nothing to complain about: {stderr}"
+        );
+        lines.extend(stdout.lines().map(str::to_string));
+    }
+    for i in 0..FILES {
+        let name = format!("f{i:03}.csv");
+        let about: Vec<&String> = lines.iter().filter(|l| l.contains(&name)).collect();
+        assert_eq!(about.len(), 1, "{name} is reported once: {about:?}");
+        assert!(about[0].contains("ingested as batch"), "{}", about[0]);
+    }
+    assert_eq!(
+        net.sqlite3(
+            "SELECT status, COUNT(*), COUNT(DISTINCT source) FROM ingest_batches GROUP BY status"
+        ),
+        format!("ingested|{FILES}|{FILES}\n")
+    );
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM observations").int(),
+        (FILES * ROWS * 3) as i64
+    );
+    assert_eq!(net.files_in("archive").len(), FILES);
+    assert_eq!(common::inbox_and_claimed(&net), (vec![], vec![]));
+    assert_eq!(
+        net.sqlite3("SELECT DISTINCT status FROM runs WHERE command = 'ingest'"),
+        "succeeded\n"
+    );
+}
+
+/// A process killed while it holds claimed files (once before its batch committed, once
+/// after) leaves them in its claim folder; the next run takes them over: each file is
+/// ingested exactly once and ends in the archive.
+#[test]
+fn a_file_claimed_by_a_killed_process_is_ingested_once_by_the_next_run() {
+    let net = Network::initialised();
+    let hold = net.path("hold");
+    std::fs::create_dir_all(&hold).expect("hold folder");
+    net.drop_file("a.csv", rows_file("A", 5));
+    net.drop_file("b.csv", rows_file("B", 4));
+
+    // Killed with a.csv read and nothing written.
+    let mut first = common::spawn_held(&net, &["ingest"], &hold, "first");
+    common::wait_for_hold(&hold, "a.csv", "read");
+    first.kill().expect("kill the first ingest");
+    first.wait().expect("reap it");
+    assert_eq!(net.scalar("SELECT COUNT(*) FROM ingest_batches").int(), 0);
+    assert_eq!(
+        common::inbox_and_claimed(&net),
+        (vec!["b.csv".to_string()], vec!["a.csv".to_string()])
+    );
+    let status = net.ok(&["status"]);
+    assert!(
+        status.contains("1 file(s) waiting, 1 being ingested"),
+        "{status}"
+    );
+
+    // The second takes a.csv over and ingests it; killed with b.csv committed but not
+    // yet archived.
+    common::release_hold(&hold, "a.csv", "read");
+    common::release_hold(&hold, "a.csv", "committed");
+    common::release_hold(&hold, "b.csv", "read");
+    let mut second = common::spawn_held(&net, &["ingest"], &hold, "second");
+    common::wait_for_hold(&hold, "b.csv", "committed");
+    second.kill().expect("kill the second ingest");
+    second.wait().expect("reap it");
+    let said = std::fs::read_to_string(net.path("second.out")).expect("stdout");
+    assert!(
+        line_for(&said, "a.csv").contains(
+            "ingested as batch 1: 5 rows, 15 values accepted (0 superseding, 0 unchanged), 0 rejected (taken over from a process that stopped while ingesting it)"
+        ),
+        "{said}"
+    );
+    assert_eq!(
+        common::inbox_and_claimed(&net),
+        (vec![], vec!["b.csv".to_string()])
+    );
+
+    // The third finds b.csv's batch committed: a duplicate, archived, nothing counted twice.
+    let out = net.ok(&["ingest"]);
+    assert!(
+        line_for(&out, "b.csv")
+            .contains("duplicate of batch 2, nothing changed (recorded as batch 3) (taken over"),
+        "{out}"
+    );
+    assert_eq!(
+        net.sqlite3("SELECT batch_id, source, status FROM ingest_batches ORDER BY batch_id"),
+        "1|a.csv|ingested\n2|b.csv|ingested\n3|b.csv|duplicate\n"
+    );
+    assert_eq!(net.scalar("SELECT COUNT(*) FROM observations").int(), 27);
+    assert_eq!(net.files_in("archive"), ["a.csv", "b.csv"]);
+    assert_eq!(common::inbox_and_claimed(&net), (vec![], vec![]));
+    assert!(
+        !net.path("inbox/.ingesting").exists(),
+        "no claim folder or lock is left"
+    );
+}
+
+/// A file appended to while it is read is never archived with its tail unread: seen
+/// before its batch commits, nothing of it is stored; seen after, its batch stands (it is
+/// what was read) and the file stays. Either way it goes back to the inbox, and the next
+/// run stores the whole of it.
+#[test]
+fn a_file_written_to_while_it_is_read_is_left_for_the_next_run() {
+    use std::io::Write as _;
+    let net = Network::initialised();
+    let hold = net.path("hold");
+    std::fs::create_dir_all(&hold).expect("hold folder");
+    for (name, step) in [("early.csv", "read"), ("late.csv", "committed")] {
+        let whole = rows_file(name, 40);
+        let cut = whole
+            .match_indices('\n')
+            .nth(20)
+            .map(|(i, _)| i + 1)
+            .expect("21 lines");
+        let (head, tail) = whole.split_at(cut);
+        net.drop_file(name, head);
+        // The sender still has the file open and goes on writing.
+        let mut sender = std::fs::OpenOptions::new()
+            .append(true)
+            .open(net.path(&format!("inbox/{name}")))
+            .expect("open for appending");
+        if step == "committed" {
+            common::release_hold(&hold, name, "read");
+        }
+        let mut ingest = common::spawn_held(&net, &["ingest"], &hold, name);
+        common::wait_for_hold(&hold, name, step);
+        sender.write_all(tail.as_bytes()).expect("append");
+        drop(sender);
+        common::release_hold(&hold, name, step);
+        let status = ingest.wait().expect("ingest ends");
+        let said = std::fs::read_to_string(net.path(&format!("{name}.out"))).expect("stdout");
+        assert!(
+            status.success(),
+            "a file left for later is no failure: {said}"
+        );
+        let line = line_for(&said, name);
+        assert_eq!(
+            std::fs::read_to_string(net.path(&format!("inbox/{name}"))).expect("back in the inbox"),
+            whole
+        );
+        assert!(!net.files_in("archive").contains(&name.to_string()));
+        if step == "read" {
+            assert!(
+                line.contains("changed while it was read (")
+                    && line.contains(
+                        "nothing of it was stored and it is back in the inbox for the next run"
+                    ),
+                "{line}"
+            );
+            assert_eq!(net.scalar("SELECT COUNT(*) FROM ingest_batches").int(), 0);
+            assert_eq!(net.scalar("SELECT COUNT(*) FROM observations").int(), 0);
+        } else {
+            assert!(
+                line.contains("changed after it was read and its batch 2 committed")
+                    && line.contains("the file was not archived and it is back in the inbox"),
+                "{line}"
+            );
+            assert_eq!(
+                net.scalar("SELECT rows_read FROM ingest_batches WHERE batch_id = 2")
+                    .int(),
+                20
+            );
+        }
+        let status = net.ok(&["status"]);
+        assert!(status.contains("inbox      1 file(s) waiting"), "{status}");
+
+        let again = net.ok(&["ingest"]);
+        assert!(
+            line_for(&again, name).contains(": 40 rows, 120 values accepted"),
+            "{again}"
+        );
+        assert_eq!(common::inbox_and_claimed(&net), (vec![], vec![]));
+    }
+    // early.csv: batch 1; late.csv: batch 2 (the first 20 rows), then batch 3 (all 40).
+    assert_eq!(
+        net.sqlite3("SELECT batch_id, source, rows_read, values_unchanged FROM ingest_batches ORDER BY batch_id"),
+        "1|early.csv|40|0\n2|late.csv|20|0\n3|late.csv|40|60\n"
+    );
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM current_observations")
+            .int(),
+        240
+    );
+}
+
+/// Symbolic links, FIFOs and folders in the inbox are never read, but they are named on
+/// the `ingest` line, in the run's message and in `status`.
+#[test]
+fn entries_that_are_not_regular_files_are_named_on_the_ingest_line_and_in_status() {
+    let net = Network::initialised();
+    let real = net.path("elsewhere.csv");
+    std::fs::write(&real, rows_file("X", 2)).expect("write");
+    std::os::unix::fs::symlink(&real, net.path("inbox/link.csv")).expect("symlink");
+    let fifo = std::process::Command::new("mkfifo")
+        .arg(net.path("inbox/pipe.csv"))
+        .status()
+        .expect("mkfifo");
+    assert!(fifo.success());
+    std::fs::create_dir(net.path("inbox/sub")).expect("folder");
+    let skipped = "3 inbox entries skipped, not regular files: link.csv (symbolic link), \
+                   pipe.csv (FIFO), sub (folder); move the files themselves into the inbox";
+
+    let out = net.ok(&["ingest"]);
+    assert!(out.contains(skipped), "{out}");
+    assert!(out.contains("no regular file to ingest"), "{out}");
+
+    net.drop_file("good.csv", rows_file("G", 2));
+    let out = net.ok(&["ingest"]);
+    assert!(out.contains(skipped), "{out}");
+    assert!(
+        line_for(&out, "good.csv").contains("ingested as batch 1"),
+        "{out}"
+    );
+    let message = net.scalar("SELECT message FROM runs ORDER BY run_id DESC LIMIT 1");
+    assert!(message.text().contains(skipped), "{message}");
+
+    let status = net.ok(&["status"]);
+    assert!(status.contains("inbox      0 file(s) waiting"), "{status}");
+    assert!(status.contains(skipped), "{status}");
+    let json: serde_json::Value =
+        serde_json::from_str(&net.ok(&["status", "--json"])).expect("json");
+    assert_eq!(
+        json["inbox_skipped"],
+        serde_json::json!([
+            {"name": "link.csv", "kind": "symbolic link"},
+            {"name": "pipe.csv", "kind": "FIFO"},
+            {"name": "sub", "kind": "folder"}
+        ])
+    );
+    assert_eq!(json["inbox_waiting"], 0);
+    // Nothing was followed or moved.
+    assert!(net.path("inbox/link.csv").is_symlink());
+    assert!(real.is_file());
+    assert_eq!(net.files_in("archive"), ["good.csv"]);
+}

@@ -604,3 +604,76 @@ fn named_report_sites_get_their_own_charts() {
     );
     assert_eq!(next.int(), 2);
 }
+
+/// A control character anywhere outside a line end, or in the page.
+fn has_control(text: &str) -> bool {
+    text.chars().any(|c| c.is_control() && c != '\n')
+}
+
+/// A file name and a site code holding terminal escape sequences (clear the screen, set
+/// the window title, ring the bell) are stored verbatim, but `ingest`, `run-once`, `status`
+/// and the report (HTML and its SVG) show them only as visible escapes.
+#[test]
+fn control_characters_in_names_and_codes_are_shown_as_escapes() {
+    let net = Network::with_config(CONFIG);
+    net.ok(&["init"]);
+    let code = "Lake\u{1b}[2J\u{1b}]0;owned\u{7} 03";
+    let shown_code = "Lake\\u{1b}[2J\\u{1b}]0;owned\\u{7} 03";
+    let name = "spring\u{1b}[2J\u{1b}[31m\n.csv";
+    let shown_name = "spring\\u{1b}[2J\\u{1b}[31m\\n.csv";
+    let text = feed(&base(), "Lake", 2015..2021).replace("\"Lake 03\"", &csv_field(code));
+    assert!(text.contains(code));
+    net.drop_file(name, text);
+
+    let out = net.tidemark(&["ingest"]);
+    let (stdout, stderr) = (
+        String::from_utf8_lossy(&out.stdout).into_owned(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    );
+    assert!(out.status.success(), "{stdout}{stderr}");
+    assert!(
+        !has_control(&stdout) && !has_control(&stderr),
+        "{stdout:?} {stderr:?}"
+    );
+    assert!(
+        stdout.starts_with(&format!("inbox/{shown_name}: ingested as batch 1"))
+            || stdout.contains(&format!("/{shown_name}: ingested as batch 1")),
+        "{stdout}"
+    );
+    // The data itself is kept verbatim.
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM sites WHERE code = 'Lake' || char(27) || '[2J' || char(27) || ']0;owned' || char(7) || ' 03'").int(),
+        1
+    );
+    assert_eq!(net.scalar("SELECT source FROM ingest_batches").text(), name);
+
+    let run = net.tidemark(&["run-once"]);
+    assert!(
+        run.status.success(),
+        "{}",
+        String::from_utf8_lossy(&run.stderr)
+    );
+    assert!(!has_control(&String::from_utf8_lossy(&run.stdout)));
+    assert!(!has_control(&String::from_utf8_lossy(&run.stderr)));
+
+    let status = net.ok(&["status"]);
+    assert!(!has_control(&status), "{status:?}");
+    assert!(status.contains(shown_name), "{status}");
+
+    let missing = net.tidemark(&["ingest", "no\u{1b}[2Jsuch.csv"]);
+    let stderr = String::from_utf8_lossy(&missing.stderr);
+    assert!(!missing.status.success());
+    assert!(!has_control(&stderr), "{stderr:?}");
+    assert!(
+        stderr.contains("no\\u{1b}[2Jsuch.csv is not a file"),
+        "{stderr}"
+    );
+
+    let (_, html) = write_report(&net);
+    assert!(!has_control(&html), "a control character in the report");
+    // Drawn in the site-effect chart and, as one of the extreme sites or not, listed there.
+    assert!(
+        html.contains(shown_code),
+        "the code shown with visible escapes"
+    );
+}

@@ -47,6 +47,23 @@ impl RawCell<'_> {
         }
     }
 
+    /// [`RawCell::raw`] appended to `buf` (no allocation per cell); the range it took.
+    fn append_raw(&self, buf: &mut String) -> Option<std::ops::Range<usize>> {
+        use std::fmt::Write as _;
+        let start = buf.len();
+        match self {
+            RawCell::Empty | RawCell::Unsupported(_) => return None,
+            RawCell::Text(t) => buf.push_str(t),
+            RawCell::Int(i) => {
+                let _ = write!(buf, "{i}");
+            }
+            RawCell::Float(x) => {
+                let _ = write!(buf, "{x}");
+            }
+        }
+        Some(start..buf.len())
+    }
+
     fn raw(&self) -> Option<String> {
         match self {
             RawCell::Empty => None,
@@ -74,6 +91,16 @@ pub struct Measure {
 
 type Key = (u32, i32, u32, u32);
 
+/// One line's cell for a key: its line and its text as written.
+type Occurrence = (u64, Option<String>);
+
+/// An accepted key: its value's index in `values.values` and its text in `first_raw`.
+#[derive(Debug, Clone)]
+struct Seen {
+    at: usize,
+    raw: Option<std::ops::Range<usize>>,
+}
+
 /// Accumulates one file's values.
 pub struct Collector {
     measures: Vec<Measure>,
@@ -83,10 +110,17 @@ pub struct Collector {
     site_ix: HashMap<String, u32>,
     visit_ix: HashMap<String, u32>,
     label_ix: HashMap<String, u32>,
-    /// Where each key's accepted value sits in `values.values`.
-    seen: HashMap<Key, usize>,
+    /// Where each key's accepted value sits in `values.values`, and where its cell's text
+    /// as written sits in `first_raw` (a conflict found later quotes it verbatim: `1.0`,
+    /// not the parsed `1`).
+    seen: HashMap<Key, Seen>,
+    /// The text of every accepted cell, end to end; `Seen::raw` slices it.
+    first_raw: String,
+    /// Identical repeats of an accepted key, (line, raw), so that a conflict found later
+    /// lists them too.
+    repeats: HashMap<Key, Vec<Occurrence>>,
     /// Keys sent with different values in this file: every occurrence (line, raw).
-    conflicts: HashMap<Key, Vec<(u64, Option<String>)>>,
+    conflicts: HashMap<Key, Vec<Occurrence>>,
     rejections: Vec<NewRejection>,
     rows_read: u64,
 }
@@ -116,6 +150,8 @@ impl Collector {
             visit_ix: HashMap::new(),
             label_ix: HashMap::new(),
             seen: HashMap::new(),
+            first_raw: String::new(),
+            repeats: HashMap::new(),
             conflicts: HashMap::new(),
             rejections: Vec::new(),
             rows_read: 0,
@@ -272,7 +308,14 @@ impl Collector {
             }
             match self.seen.get(&key) {
                 None => {
-                    self.seen.insert(key, self.values.values.len());
+                    let raw = cell.append_raw(&mut self.first_raw);
+                    self.seen.insert(
+                        key,
+                        Seen {
+                            at: self.values.values.len(),
+                            raw,
+                        },
+                    );
                     self.values.values.push(NewValue {
                         site: site_i,
                         year,
@@ -282,16 +325,21 @@ impl Collector {
                         line,
                     });
                 }
-                // An identical repeat inside the file is kept once.
-                Some(&at) if same_cell(self.values.values[at].cell, cell_value) => {}
-                Some(&at) => {
-                    let first = self.values.values[at];
-                    let first_raw = match first.cell {
-                        Cell::Num(x) => x.to_string(),
-                        Cell::Label(i) => self.values.labels[i as usize].clone(),
-                    };
-                    self.conflicts
-                        .insert(key, vec![(first.line, Some(first_raw)), (line, cell.raw())]);
+                // An identical repeat inside the file is kept once; its line is kept in
+                // case a later line of the key conflicts.
+                Some(seen) if same_cell(self.values.values[seen.at].cell, cell_value) => {
+                    self.repeats
+                        .entry(key)
+                        .or_default()
+                        .push((line, cell.raw()));
+                }
+                Some(seen) => {
+                    let first_line = self.values.values[seen.at].line;
+                    let first_raw = seen.raw.clone().map(|r| self.first_raw[r].to_string());
+                    let mut occurrences = vec![(first_line, first_raw)];
+                    occurrences.extend(self.repeats.remove(&key).unwrap_or_default());
+                    occurrences.push((line, cell.raw()));
+                    self.conflicts.insert(key, occurrences);
                 }
             }
         }
@@ -556,6 +604,36 @@ mod tests {
             .iter()
             .all(|r| r.reason.contains("lines 2, 3, 4") && r.kind == RejectionKind::Conflict));
         assert_eq!(rejections[1].raw.as_deref(), Some("2.0"));
+        // Each occurrence keeps its text as written, the first one included.
+        assert_eq!(rejections[0].raw.as_deref(), Some("1.0"));
+        assert_eq!(rejections[2].raw.as_deref(), Some("1"));
+    }
+
+    #[test]
+    fn identical_repeats_before_a_conflict_are_rejected_and_listed_too() {
+        let mut c = Collector::new("lake", "season", numeric(&["chl"]));
+        let t = RawCell::Text;
+        for (line, v) in [(2, "1.0"), (3, "1.0"), (4, "2.0"), (5, "1.00")] {
+            c.row(line, t("A"), t("2020"), None, &[t(v)]);
+        }
+        let (_, values, rejections) = c.finish();
+        assert!(values.values.is_empty());
+        let got: Vec<_> = rejections
+            .iter()
+            .map(|r| (r.line, r.raw.as_deref()))
+            .collect();
+        assert_eq!(
+            got,
+            [
+                (Some(2), Some("1.0")),
+                (Some(3), Some("1.0")),
+                (Some(4), Some("2.0")),
+                (Some(5), Some("1.00"))
+            ]
+        );
+        assert!(rejections
+            .iter()
+            .all(|r| r.reason.contains("lines 2, 3, 4, 5")));
     }
 
     #[test]

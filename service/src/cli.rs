@@ -205,6 +205,8 @@ pub fn run() -> ExitCode {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) => {
             let reason = format!("{e:#}").replace('\n', " ");
+            // The reason may quote a file name or a cell: never raw control characters.
+            let reason = crate::visible::visible(&reason);
             // Only the one line: the log stream also goes to stderr and would repeat it.
             eprintln!("tidemark: error: {reason}");
             ExitCode::FAILURE

@@ -11,9 +11,12 @@
 //! use tidemark_service::{config::Config, ingest, store::Store};
 //! let config = Config::load("tidemark.toml".as_ref())?;
 //! let store = Store::init(&config.database).await?;
-//! for file in ingest::inbox_files(&config.feed.inbox)? {
-//!     println!("{}", ingest::ingest_file(&store, &config, &file).await?);
-//! }
+//! let never = std::sync::atomic::AtomicBool::new(false);
+//! ingest::ingest_inbox(&store, &config, &never, |outcome| match outcome {
+//!     Ok(report) => println!("{report}"),
+//!     Err(e) => eprintln!("{e}"),
+//! })
+//! .await?;
 //! # Ok(()) }
 //! ```
 
@@ -32,6 +35,8 @@ pub mod serve;
 pub mod signals;
 pub mod store;
 pub mod telemetry;
+mod test_hold;
+pub mod visible;
 /// The shared words (fit and run status, run trigger); they live with the store because the
 /// store derives their database form.
 pub use store::vocabulary;

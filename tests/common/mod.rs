@@ -464,3 +464,58 @@ pub fn wait_exit(
     }
     (None, start.elapsed())
 }
+
+/// Start the real binary in the background with the test-only pause of the ingest path:
+/// `TIDEMARK_TEST_HOLD=hold` (see `service/src/ingest/hold.rs`). Its stdout goes to
+/// `{log}.out` and its stderr to `{log}.err` in the network's folder.
+pub fn spawn_held(net: &Network, args: &[&str], hold: &Path, log: &str) -> std::process::Child {
+    let out = std::fs::File::create(net.path(&format!("{log}.out"))).expect("log file");
+    let err = std::fs::File::create(net.path(&format!("{log}.err"))).expect("log file");
+    Command::new(env!("CARGO_BIN_EXE_tidemark"))
+        .arg("--config")
+        .arg(net.config_path())
+        .args(args)
+        .current_dir(net.dir.path())
+        .env_remove("RUST_LOG")
+        .env_remove("TIDEMARK_CONFIG")
+        .env("TIDEMARK_TEST_HOLD", hold)
+        .stdin(std::process::Stdio::null())
+        .stdout(out)
+        .stderr(err)
+        .spawn()
+        .expect("spawn tidemark")
+}
+
+/// Wait (at most 60 s) until the held process has reached `step` of `name`.
+pub fn wait_for_hold(hold: &Path, name: &str, step: &str) {
+    let marker = hold.join(format!("{name}.{step}"));
+    assert!(
+        wait_until(std::time::Duration::from_secs(60), || marker.exists()),
+        "the held process never reached {step} of {name}"
+    );
+}
+
+/// Let held processes go on past `step` of `name`.
+pub fn release_hold(hold: &Path, name: &str, step: &str) {
+    std::fs::write(hold.join(format!("{name}.{step}.go")), b"").expect("release the hold");
+}
+
+/// Regular files left in the inbox, and files in its claim folders.
+pub fn inbox_and_claimed(net: &Network) -> (Vec<String>, Vec<String>) {
+    let inbox = net.path("inbox");
+    let waiting = net
+        .files_in("inbox")
+        .into_iter()
+        .filter(|n| inbox.join(n).is_file() && !n.starts_with('.'))
+        .collect();
+    let mut claimed = Vec::new();
+    if let Ok(dirs) = std::fs::read_dir(inbox.join(".ingesting")) {
+        for d in dirs.flatten().filter(|d| d.path().is_dir()) {
+            for f in std::fs::read_dir(d.path()).expect("claim folder").flatten() {
+                claimed.push(f.file_name().to_string_lossy().into_owned());
+            }
+        }
+    }
+    claimed.sort();
+    (waiting, claimed)
+}

@@ -75,15 +75,19 @@ macro_rules! say_err {
     };
 }
 
+// Both print through `visible_lines`: a file name or code that reached a line without
+// its own escaping still cannot drive the terminal.
 #[doc(hidden)]
 pub fn say_line(line: &str) {
     // A closed pipe is already no error for `print_bytes`; nor is anything else here.
+    let line = crate::visible::visible_lines(line);
     let _ = print_bytes(format!("{line}\n").as_bytes());
 }
 
 #[doc(hidden)]
 pub fn say_err_line(line: &str) {
     use std::io::Write as _;
+    let line = crate::visible::visible_lines(line);
     let _ = writeln!(std::io::stderr().lock(), "{line}");
 }
 

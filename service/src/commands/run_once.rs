@@ -36,8 +36,11 @@ pub async fn run(ctx: &Context) -> anyhow::Result<()> {
     watcher.abort();
     lease.release().await?;
     let report = outcome?;
-    for f in &report.files {
+    for f in report.files.iter().chain(&report.deferred) {
         crate::say!("{f}");
+    }
+    if let Some(line) = &report.skipped {
+        crate::say!("{line}");
     }
     for e in &report.file_errors {
         crate::say_err!("tidemark: {e}");

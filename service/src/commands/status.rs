@@ -6,6 +6,7 @@ use super::Context;
 use crate::ingest;
 use crate::lease::{own_claim, stale_reason};
 use crate::store::{BatchSummary, FitSummary, LeaseHolder, RunSummary};
+use crate::visible::{visible, visible_lines};
 use crate::vocabulary::{FitStatus, RunStatus};
 
 /// How many recent runs and batches are shown.
@@ -22,6 +23,11 @@ pub struct StatusReport {
     pub schema_version: i64,
     pub schedule: ScheduleStatus,
     pub inbox_waiting: Option<usize>,
+    /// Files in claim folders: being ingested now, or left by a process that stopped
+    /// (the next ingest or run takes them over).
+    pub inbox_claimed: usize,
+    /// Inbox entries that are not regular files (never read): name and kind.
+    pub inbox_skipped: Vec<ingest::Skipped>,
     pub series: Vec<SeriesStatus>,
     pub series_without_fit: Vec<String>,
     pub runs: Vec<RunSummary>,
@@ -106,6 +112,7 @@ pub async fn run(ctx: &Context, json: bool) -> anyhow::Result<()> {
         LeaseStatus { holder, stale }
     });
     let next_run = config.schedule.next_after(chrono::Utc::now());
+    let listing = ingest::list_inbox(&config.feed.inbox).ok();
     let report = StatusReport {
         attention: attention(&series, &runs, lease.as_ref()),
         config: config.path.display().to_string(),
@@ -118,9 +125,9 @@ pub async fn run(ctx: &Context, json: bool) -> anyhow::Result<()> {
             next_run_local: next_run.map(|t| config.schedule.local(t)),
             catch_up: config.schedule.catch_up,
         },
-        inbox_waiting: ingest::inbox_files(&config.feed.inbox)
-            .ok()
-            .map(|f| f.len()),
+        inbox_waiting: listing.as_ref().map(|l| l.files.len()),
+        inbox_claimed: ingest::claimed_files(&config.feed.inbox),
+        inbox_skipped: listing.map(|l| l.skipped).unwrap_or_default(),
         series_without_fit: series
             .iter()
             .filter(|s| s.latest_fit.is_none())
@@ -135,7 +142,9 @@ pub async fn run(ctx: &Context, json: bool) -> anyhow::Result<()> {
     if json {
         println!("{}", serde_json::to_string_pretty(&report)?);
     } else {
-        print!("{}", render_text(&report));
+        // Fields from files and the database are escaped one by one in `render_text`;
+        // this pass keeps any other control character off the terminal.
+        print!("{}", visible_lines(&render_text(&report)));
     }
     Ok(())
 }
@@ -261,7 +270,7 @@ fn render_text(r: &StatusReport) -> String {
                 ("run", _, _, Some(id)) => format!("run {id}: {}", a.status.to_uppercase()),
                 _ => format!("lease: {}", a.status.to_uppercase()),
             };
-            let _ = writeln!(out, "  {what} at {}: {}", a.at, a.message);
+            let _ = writeln!(out, "  {what} at {}: {}", a.at, visible(&a.message));
         }
         let _ = writeln!(out);
     }
@@ -310,7 +319,18 @@ fn render_text(r: &StatusReport) -> String {
         }
     }
     if let Some(n) = r.inbox_waiting {
-        let _ = writeln!(out, "inbox      {n} file(s) waiting");
+        let claimed = if r.inbox_claimed > 0 {
+            format!(
+                ", {} being ingested (or left by a process that stopped: the next ingest or run takes them over)",
+                r.inbox_claimed
+            )
+        } else {
+            String::new()
+        };
+        let _ = writeln!(out, "inbox      {n} file(s) waiting{claimed}");
+        if !r.inbox_skipped.is_empty() {
+            let _ = writeln!(out, "           {}", ingest::SkippedLine(&r.inbox_skipped));
+        }
     }
     let _ = writeln!(out, "\nseries");
     for s in &r.series {
@@ -353,7 +373,7 @@ fn render_text(r: &StatusReport) -> String {
             run.status,
             run.message
                 .as_deref()
-                .map(|m| format!(": {m}"))
+                .map(|m| format!(": {}", visible(m)))
                 .unwrap_or_default()
         );
     }
@@ -367,14 +387,14 @@ fn render_text(r: &StatusReport) -> String {
             "  batch {} {} {} {}: {} rows, {} accepted, {} rejected{}",
             b.batch_id,
             b.received_at,
-            b.source,
+            visible(&b.source),
             b.status,
             b.rows_read,
             b.values_accepted,
             b.values_rejected,
             b.message
                 .as_deref()
-                .map(|m| format!(" ({m})"))
+                .map(|m| format!(" ({})", visible(m)))
                 .unwrap_or_default()
         );
     }

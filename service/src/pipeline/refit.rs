@@ -458,25 +458,6 @@ async fn attempt_fits(
     })))
 }
 
-/// The test-only variable naming a file: while it exists, a refit holds just before its
-/// publishing transaction (after the gate and the forecasts), so the lease tests can stop
-/// the process there and take its lease over.
-pub const HOLD_BEFORE_PUBLISHING_ENV: &str = "TIDEMARK_TEST_HOLD_BEFORE_PUBLISHING";
-
-async fn hold_before_publishing() {
-    let Some(file) = std::env::var_os(HOLD_BEFORE_PUBLISHING_ENV) else {
-        return;
-    };
-    let file = std::path::PathBuf::from(file);
-    warn!(
-        "test hold: waiting before the publishing transaction while {} exists",
-        file.display()
-    );
-    while file.exists() {
-        tokio::time::sleep(std::time::Duration::from_millis(20)).await;
-    }
-}
-
 /// Record the attempt that ended the sequence: a published version with its summaries,
 /// draws and forecasts, or a rejected attempt with its diagnostics.
 async fn publish(
@@ -561,7 +542,7 @@ async fn publish(
         )
     };
     fit.wall_seconds = Some(started.elapsed().as_secs_f64());
-    hold_before_publishing().await;
+    crate::test_hold::at("publishing", &series.name).await;
     let recorded = to
         .store
         .record_fit(

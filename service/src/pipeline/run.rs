@@ -20,6 +20,10 @@ pub struct RunReport {
     /// `succeeded`, `partial`, `failed` or `abandoned` (cut short by the cancel flag).
     pub status: RunStatus,
     pub files: Vec<String>,
+    /// Files left in the inbox for the next run (they changed while they were read).
+    pub deferred: Vec<String>,
+    /// The inbox entries that are not regular files, in one line, if any.
+    pub skipped: Option<String>,
     pub file_errors: Vec<String>,
     pub series: Vec<SeriesReport>,
     /// The run's one-line summary, as recorded in `runs.message`.
@@ -107,6 +111,8 @@ impl RunReport {
             run_id,
             status: RunStatus::Succeeded,
             files: Vec::new(),
+            deferred: Vec::new(),
+            skipped: None,
             file_errors: Vec::new(),
             series: Vec::new(),
             message: String::new(),
@@ -122,28 +128,38 @@ async fn ingest_inbox(
     report: &mut RunReport,
 ) -> anyhow::Result<()> {
     let inbox = &config.feed.inbox;
-    let files = if inbox.is_dir() {
-        ingest::inbox_files(inbox)?
-    } else {
+    if !inbox.is_dir() {
         report.file_errors.push(format!(
             "inbox {} does not exist; run `tidemark init` or fix feed.inbox",
-            inbox.display()
+            crate::visible::visible_path(inbox)
         ));
-        Vec::new()
-    };
-    for file in &files {
-        if cancel.load(std::sync::atomic::Ordering::Relaxed) {
-            break;
+        return Ok(());
+    }
+    let pass = ingest::ingest_inbox(store, config, cancel, |outcome| match outcome {
+        Ok(r) => {
+            info!("{r}");
+            report.files.push(r.to_string());
         }
-        match ingest::ingest_file(store, config, file).await {
-            Ok(r) => {
-                info!("{r}");
-                report.files.push(r.to_string());
-            }
-            Err(e) => {
-                warn!("{e}");
-                report.file_errors.push(e.to_string());
-            }
+        Err(e) if e.is_deferral() => {
+            warn!("{e}");
+            report.deferred.push(e.to_string());
+        }
+        Err(e) => {
+            warn!("{e}");
+            report.file_errors.push(e.to_string());
+        }
+    })
+    .await;
+    match pass {
+        Ok(pass) if !pass.skipped.is_empty() => {
+            let line = ingest::SkippedLine(&pass.skipped).to_string();
+            warn!("{line}");
+            report.skipped = Some(line);
+        }
+        Ok(_) => {}
+        Err(e) => {
+            warn!("{e}");
+            report.file_errors.push(e.to_string());
         }
     }
     Ok(())
@@ -203,12 +219,21 @@ async fn finish(
     report: &mut RunReport,
 ) -> anyhow::Result<()> {
     if report.status != RunStatus::Failed {
-        report.message = format!(
-            "{} file(s) ingested, {} file error(s); {}",
+        let mut files = format!(
+            "{} file(s) ingested, {} file error(s)",
             report.files.len(),
-            report.file_errors.len(),
-            report.message
+            report.file_errors.len()
         );
+        if !report.deferred.is_empty() {
+            files.push_str(&format!(
+                ", {} left for the next run",
+                report.deferred.len()
+            ));
+        }
+        if let Some(line) = &report.skipped {
+            files.push_str(&format!(", {line}"));
+        }
+        report.message = format!("{files}; {}", report.message);
     }
     if !report.file_errors.is_empty() && report.status == RunStatus::Succeeded {
         report.status = RunStatus::Partial;

@@ -9,6 +9,7 @@ use plotters::prelude::*;
 use super::{ReportError, TargetWidths};
 use crate::drift::SeriesDrift;
 use crate::store::SiteEffect;
+use crate::visible::visible;
 
 /// Width of every chart in pixels (the page scales them down on narrow screens).
 const WIDTH: u32 = 960;
@@ -379,7 +380,11 @@ pub fn site_effects(
         .filter(|v| v.is_finite())
         .fold((neutral, neutral), |(lo, hi), v| (lo.min(v), hi.max(v)));
     let height = (90 + 15 * n as u32).max(220);
-    let codes: Vec<&str> = shown.iter().map(|e| e.site.as_str()).collect();
+    // Control characters are invalid in SVG text: codes are drawn with visible escapes.
+    let codes: Vec<String> = shown
+        .iter()
+        .map(|e| visible(&e.site).into_owned())
+        .collect();
     let longest = codes.iter().map(|c| c.chars().count()).max().unwrap_or(4);
     // The naive text metrics of plotters: about 0.55 em per character at 12 px.
     let label_area = (longest as u32 * 7 + 16).clamp(60, 260);
@@ -542,6 +547,7 @@ pub fn site_panel(p: &SitePanel<'_>, log_axis: bool, units: &str) -> Result<Stri
     } else {
         units.to_string()
     };
+    let site = visible(p.site);
     let mut svg = String::new();
     {
         let root = SVGBackend::with_string(&mut svg, PANEL_SIZE).into_drawing_area();
@@ -549,7 +555,7 @@ pub fn site_panel(p: &SitePanel<'_>, log_axis: bool, units: &str) -> Result<Stri
         macro_rules! draw {
             ($y_range:expr) => {{
                 let mut chart = ChartBuilder::on(&root)
-                    .caption(p.site, ("sans-serif", 14))
+                    .caption(site.as_ref(), ("sans-serif", 14))
                     .margin(8)
                     .x_label_area_size(26)
                     .y_label_area_size(58)

@@ -1,6 +1,7 @@
 //! The report page: HTML text around the charts. Every piece of text that came from a
 //! feed file, the config or the database goes through [`esc`] (site codes may hold
-//! quotes, `<`, `&` or SQL-looking text; they are shown verbatim, never interpreted).
+//! quotes, `<`, `&`, SQL-looking text or control characters; they are shown verbatim or
+//! as visible escapes, never interpreted).
 
 use std::fmt::Write as _;
 
@@ -9,6 +10,7 @@ use super::{
     MAX_SITES_SHOWN,
 };
 use crate::store::FitSummary;
+use crate::visible::visible;
 
 /// The cautions every report carries (README.md § Cautions says the same).
 pub const CAUTION: &str = "Forecasts are statistical estimates from the data given to Tidemark. \
@@ -42,9 +44,10 @@ td.num { text-align: right; font-variant-numeric: tabular-nums; }
 .rejected, .failed, .partial, .abandoned { color: #b00000; font-weight: bold; }
 ";
 
-/// HTML-escape text for element content and quoted attribute values.
+/// HTML-escape text for element content and quoted attribute values; control characters
+/// (invalid in HTML and in the inline SVG) are shown as visible escapes first.
 pub fn esc(text: &str) -> String {
-    html_escape::encode_safe(text).into_owned()
+    html_escape::encode_safe(&visible(text)).into_owned()
 }
 
 fn num(x: Option<f64>, digits: usize) -> String {

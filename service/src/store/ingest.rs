@@ -85,6 +85,23 @@ impl Store {
         file: &BatchFile,
         content: &BatchContent,
     ) -> Result<BatchOutcome, StoreError> {
+        let outcome = self.ingest_batch_checked(file, content, || true).await?;
+        outcome.ok_or_else(|| StoreError::Inconsistent {
+            path: self.path().to_path_buf(),
+            message: "a batch without a check was rolled back by its check".into(),
+        })
+    }
+
+    /// [`Store::ingest_batch`], asking `still_valid` right before the commit whether the
+    /// batch may be committed (the ingest checks that its file did not change since it
+    /// was read). When it says no, the transaction rolls back and `None` is returned:
+    /// nothing of the batch is visible.
+    pub async fn ingest_batch_checked(
+        &self,
+        file: &BatchFile,
+        content: &BatchContent,
+        still_valid: impl FnOnce() -> bool + Send,
+    ) -> Result<Option<BatchOutcome>, StoreError> {
         let mut tx = self
             .pool
             .begin_with("BEGIN IMMEDIATE")
@@ -99,8 +116,12 @@ impl Store {
                     message: other.to_string(),
                 },
             })?;
+        if !still_valid() {
+            tx.rollback().await.map_err(|e| self.sql(e))?;
+            return Ok(None);
+        }
         tx.commit().await.map_err(|e| self.sql(e))?;
-        Ok(outcome)
+        Ok(Some(outcome))
     }
 }
 
