@@ -151,7 +151,10 @@ fn serve_publishes_on_schedule_refuses_a_second_instance_and_stops_on_sigterm() 
     assert_eq!(
         count(&net, "SELECT COUNT(*) FROM fits"),
         1,
-        "an unchanged series was refitted"
+        "an unchanged series was refitted: {} {} {}",
+        net.sqlite3("SELECT fit_id, run_id, series, version, status, message, watermark, created_at FROM fits"),
+        net.sqlite3("SELECT * FROM runs"),
+        net.sqlite3("SELECT * FROM ingest_batches")
     );
 
     signal(&serve, libc::SIGTERM);

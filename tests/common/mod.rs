@@ -253,17 +253,22 @@ impl Network {
         names
     }
 
-    /// Run the real binary with `--config` pointing at this network.
-    pub fn tidemark(&self, args: &[&str]) -> Output {
-        Command::new(env!("CARGO_BIN_EXE_tidemark"))
-            .arg("--config")
+    /// The real binary with `--config` pointing at this network, run in its folder, with
+    /// no logging or config variables of the caller's environment.
+    pub fn command(&self, args: &[&str]) -> Command {
+        let mut c = Command::new(env!("CARGO_BIN_EXE_tidemark"));
+        c.arg("--config")
             .arg(self.config_path())
             .args(args)
             .current_dir(self.dir.path())
             .env_remove("RUST_LOG")
-            .env_remove("TIDEMARK_CONFIG")
-            .output()
-            .expect("run tidemark")
+            .env_remove("TIDEMARK_CONFIG");
+        c
+    }
+
+    /// Run the real binary with `--config` pointing at this network.
+    pub fn tidemark(&self, args: &[&str]) -> Output {
+        self.command(args).output().expect("run tidemark")
     }
 
     /// Run and insist on success; returns stdout.
@@ -360,13 +365,7 @@ pub fn assert_exists(p: &Path) {
 /// service can never block on a full pipe.
 pub fn spawn_logged(net: &Network, args: &[&str], log: &str) -> std::process::Child {
     let err = std::fs::File::create(net.path(log)).expect("log file");
-    Command::new(env!("CARGO_BIN_EXE_tidemark"))
-        .arg("--config")
-        .arg(net.config_path())
-        .args(args)
-        .current_dir(net.dir.path())
-        .env_remove("RUST_LOG")
-        .env_remove("TIDEMARK_CONFIG")
+    net.command(args)
         .stdin(std::process::Stdio::null())
         .stdout(std::process::Stdio::null())
         .stderr(err)
@@ -466,18 +465,12 @@ pub fn wait_exit(
 }
 
 /// Start the real binary in the background with the test-only pause of the ingest path:
-/// `TIDEMARK_TEST_HOLD=hold` (see `service/src/ingest/hold.rs`). Its stdout goes to
+/// `TIDEMARK_TEST_HOLD=hold` (see `service/src/test_hold.rs`). Its stdout goes to
 /// `{log}.out` and its stderr to `{log}.err` in the network's folder.
 pub fn spawn_held(net: &Network, args: &[&str], hold: &Path, log: &str) -> std::process::Child {
     let out = std::fs::File::create(net.path(&format!("{log}.out"))).expect("log file");
     let err = std::fs::File::create(net.path(&format!("{log}.err"))).expect("log file");
-    Command::new(env!("CARGO_BIN_EXE_tidemark"))
-        .arg("--config")
-        .arg(net.config_path())
-        .args(args)
-        .current_dir(net.dir.path())
-        .env_remove("RUST_LOG")
-        .env_remove("TIDEMARK_CONFIG")
+    net.command(args)
         .env("TIDEMARK_TEST_HOLD", hold)
         .stdin(std::process::Stdio::null())
         .stdout(out)

@@ -104,13 +104,10 @@ async fn event(
     Ok(())
 }
 
-/// Inside a write transaction (begun `IMMEDIATE`, so no takeover can slip in before it
-/// commits): confirm the lease row still carries `fence`, renewing its heartbeat. Returns
-/// the current holder when the lease was lost (`None` inside: nobody holds it now).
-pub(super) async fn check_fence(
-    conn: &mut sqlx::SqliteConnection,
-    fence: &Fence,
-) -> Result<Result<(), Option<LeaseHolder>>, sqlx::Error> {
+/// Renew the heartbeat of the lease if the row still carries `fence`; false when it does
+/// not (the lease was taken over or released). The one compare of a fence: the heartbeat
+/// and every fenced write use it.
+async fn renew(conn: &mut sqlx::SqliteConnection, fence: &Fence) -> Result<bool, sqlx::Error> {
     let done = sqlx::query(
         "UPDATE instance_lease SET heartbeat_at = ?3
          WHERE lease_id = 1 AND holder = ?1 AND generation = ?2",
@@ -118,9 +115,19 @@ pub(super) async fn check_fence(
     .bind(&fence.holder)
     .bind(fence.generation)
     .bind(now_utc())
-    .execute(&mut *conn)
+    .execute(conn)
     .await?;
-    if done.rows_affected() == 1 {
+    Ok(done.rows_affected() == 1)
+}
+
+/// Inside a write transaction (begun `IMMEDIATE`, so no takeover can slip in before it
+/// commits): confirm the lease row still carries `fence`, renewing its heartbeat. Returns
+/// the current holder when the lease was lost (`None` inside: nobody holds it now).
+pub(super) async fn check_fence(
+    conn: &mut sqlx::SqliteConnection,
+    fence: &Fence,
+) -> Result<Result<(), Option<LeaseHolder>>, sqlx::Error> {
+    if renew(&mut *conn, fence).await? {
         return Ok(Ok(()));
     }
     let now: Option<LeaseHolder> = sqlx::query_as(HOLDER).fetch_optional(&mut *conn).await?;
@@ -200,17 +207,8 @@ impl Store {
 
     /// Renew the heartbeat. False when the lease is no longer ours (it was taken over).
     pub async fn heartbeat_lease(&self, fence: &Fence) -> Result<bool, StoreError> {
-        let done = sqlx::query(
-            "UPDATE instance_lease SET heartbeat_at = ?3
-             WHERE lease_id = 1 AND holder = ?1 AND generation = ?2",
-        )
-        .bind(&fence.holder)
-        .bind(fence.generation)
-        .bind(now_utc())
-        .execute(&self.pool)
-        .await
-        .map_err(|e| self.sql(e))?;
-        Ok(done.rows_affected() == 1)
+        let mut conn = self.pool.acquire().await.map_err(|e| self.sql(e))?;
+        renew(&mut conn, fence).await.map_err(|e| self.sql(e))
     }
 
     /// Give the lease up (only if it is still ours) and record it.
