@@ -244,3 +244,116 @@ fn sampler_sizes_beyond_their_bounds_are_refused() {
         );
     }
 }
+
+/// Sizes within the bounds can still ask for more memory than a host has (64 chains of a
+/// million draws): the fit is estimated before anything is allocated and refused with the
+/// figure, recorded as a failed attempt, and the run ends instead of growing without bound.
+/// The limit is `sampler.max_memory_mib`; a fit that needs less than it runs as usual.
+#[test]
+fn a_fit_too_big_for_its_memory_limit_is_refused_with_the_figure() {
+    let huge = common::Sampler {
+        chains: 64,
+        draws: 1_000_000,
+        warmup: 1_000_000,
+        min_ess: 400,
+        ..Default::default()
+    };
+    let config = common::ConfigBuilder::new()
+        .series(common::CHLOROPHYLL)
+        .sampler(huge)
+        .build();
+    let net = Network::with_config(&config);
+    net.ok(&["init"]);
+    net.drop_file("a.csv", common::csv(&common::network_rows(12, 6)));
+    let mut child = net
+        .command(&["run-once"])
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .expect("start run-once");
+    let finished = common::wait_until(std::time::Duration::from_secs(60), || {
+        child.try_wait().ok().flatten().is_some()
+    });
+    if !finished {
+        let _ = child.kill();
+        panic!("run-once was still running after 60 s: the fit was not refused up front");
+    }
+    let out = child.wait_with_output().expect("run-once output");
+    assert_eq!(out.status.code(), Some(1), "a refused fit fails the run");
+    let rows = net.sql("SELECT status, message FROM fits");
+    assert_eq!(rows.len(), 1, "{rows:?}");
+    assert_eq!(rows[0][0], common::Value::Text("failed".into()));
+    let message = rows[0][1].text();
+    for part in [
+        "no fit attempt run: even the cold start would need an estimated",
+        "MiB (64 chains x 1000000 draws, 1000000 warm-up, ",
+        "above sampler.max_memory_mib = 4096; lower chains, draws or warmup, or raise the limit",
+    ] {
+        assert!(message.contains(part), "{part:?} missing from {message}");
+    }
+    let need: u64 = message
+        .split("estimated ")
+        .nth(1)
+        .and_then(|m| m.split(' ').next())
+        .and_then(|n| n.parse().ok())
+        .expect("a figure in MiB");
+    // 64 chains x 1e6 draws x (3 standard deviations + 2 coefficients) x 8 bytes, saved
+    // once by the chains and once in the posterior, is already 4883 MiB.
+    assert!(need >= 4883, "{need} MiB is below the draws alone");
+    assert_eq!(
+        net.scalar("SELECT status FROM runs ORDER BY run_id DESC LIMIT 1"),
+        common::Value::Text("partial".into())
+    );
+
+    // Raising the limit is the way through for a host that has the memory; a small
+    // sampler is far under the default and runs.
+    let small = config.replace(
+        "chains = 64\ndraws = 1000000\nwarmup = 1000000",
+        "chains = 2\ndraws = 300\nwarmup = 200",
+    );
+    std::fs::write(net.config_path(), small).expect("write config");
+    let out = net.tidemark(&["refit", "--series", "chlorophyll", "--force"]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM fits WHERE status = 'published'"),
+        common::Value::Int(1)
+    );
+}
+
+#[test]
+fn the_memory_limit_has_bounds() {
+    for (line, found) in [
+        ("max_memory_mib = 0", "found 0"),
+        ("max_memory_mib = 99999999", "found 99999999"),
+    ] {
+        let net = Network::with_config(&format!("{CONFIG}\n[series.sampler]\n{line}\n"));
+        let err = stderr_of(&net, &["init"]);
+        assert!(
+            err.contains("series[1].sampler.max_memory_mib: must be between 16 and 1048576 MiB")
+                && err.contains(found),
+            "{line}: {err}"
+        );
+    }
+}
+
+/// A cron field out of its range is refused in the field's own terms (the cron crate's own
+/// message for this case said "Minutes must be less than 59").
+#[test]
+fn a_cron_field_out_of_range_names_the_field_and_its_range() {
+    for (cron, says) in [
+        ("61 * * * *", "minute 61 is out of range 0-59"),
+        ("0 2 * 13 *", "month 13 is out of range 1-12"),
+    ] {
+        let net = Network::with_config(&CONFIG.replace("30 2 * * *", cron));
+        let err = stderr_of(&net, &["init"]);
+        assert!(
+            err.contains("schedule.cron") && err.contains(says),
+            "{cron}: {err}"
+        );
+        assert!(!err.contains("less than 59"), "{err}");
+    }
+}

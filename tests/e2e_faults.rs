@@ -295,3 +295,125 @@ fn a_damaged_database_is_a_clear_error_and_the_file_waits() {
         "the archive keeps the data"
     );
 }
+
+/// Write zeros into `dir` until its file system is full; the filler file's path.
+fn fill_up(dir: &Path) -> PathBuf {
+    use std::io::Write;
+    let path = dir.join("filler");
+    let mut file = std::fs::File::create(&path).expect("create the filler");
+    let chunk = vec![0u8; 1 << 16];
+    while file.write_all(&chunk).is_ok() {}
+    let _ = file.sync_all();
+    path
+}
+
+fn rows(net: &Network, query: &str) -> i64 {
+    sqlite3_at(&net.path("db/tidemark.db"), query)
+        .trim()
+        .parse()
+        .expect("a count")
+}
+
+#[test]
+fn serve_reports_a_full_disk_and_recovers_on_the_next_tick_once_space_is_free() {
+    let config = CONFIG
+        .replace(
+            "database = \"tidemark.db\"",
+            "database = \"db/tidemark.db\"",
+        )
+        .replace("cron = \"30 2 * * *\"", "cron = \"*/2 * * * * *\"");
+    let net = Network::with_config(&config);
+    let _mount = match Tmpfs::mount(&net.path("db"), "64m") {
+        Ok(m) => m,
+        Err(why) => {
+            eprintln!("skipped: cannot mount a tmpfs here ({why}); needs root or CAP_SYS_ADMIN");
+            return;
+        }
+    };
+    net.ok(&["init"]);
+    for year in [2019, 2020] {
+        net.drop_file(&format!("{year}.csv"), season(30, year));
+    }
+    net.ok(&["ingest"]);
+    let mut serve = common::spawn_logged(&net, &["serve"], "serve.log");
+    let log = |net: &Network| std::fs::read_to_string(net.path("serve.log")).unwrap_or_default();
+    // Two scheduled runs have finished (this invented season is too regular to pass the
+    // gate; that does not matter here): serve is idle between ticks.
+    assert!(
+        common::wait_until(std::time::Duration::from_secs(60), || rows(
+            &net,
+            "SELECT COUNT(*) FROM runs WHERE trigger = 'schedule' AND status != 'running'"
+        ) >= 2),
+        "serve ran no scheduled run: {}",
+        log(&net)
+    );
+
+    // Something else fills the disk; a large delivery arrives.
+    let filler = fill_up(&net.path("db"));
+    let before = snapshot(&net.path("db/tidemark.db"));
+    let runs = rows(&net, "SELECT COUNT(*) FROM runs");
+    net.drop_file("big.csv", season(20_000, 2021));
+    // Not even a run record fits now: each tick says so in its log line and waits.
+    assert!(
+        common::wait_until(std::time::Duration::from_secs(30), || log(&net)
+            .matches("run failed: database")
+            .filter(|_| log(&net).contains("disk full, no space left"))
+            .count()
+            >= 2),
+        "two ticks should have failed on the full disk: {}",
+        log(&net)
+    );
+    // Each line says its cause once (the store error carries its SQLite cause both in its
+    // text and as its source; the line must not repeat it).
+    for line in log(&net).lines().filter(|l| l.contains("run failed")) {
+        assert_eq!(
+            line.matches("no space left").count(),
+            1,
+            "a cause said more than once: {line}"
+        );
+    }
+    assert!(
+        serve.try_wait().expect("try_wait").is_none(),
+        "serve stopped"
+    );
+    assert_eq!(rows(&net, "SELECT COUNT(*) FROM runs"), runs);
+    assert_eq!(net.files_in("inbox"), ["big.csv"], "the file waits");
+    assert_eq!(
+        snapshot(&net.path("db/tidemark.db")),
+        before,
+        "nothing half-written"
+    );
+
+    // Space comes back: the next tick ingests the waiting file.
+    std::fs::remove_file(&filler).expect("free the space");
+    assert!(
+        common::wait_until(std::time::Duration::from_secs(60), || net
+            .files_in("archive")
+            .iter()
+            .any(|f| f == "big.csv")),
+        "serve did not recover once space was free: {}",
+        log(&net)
+    );
+    assert!(
+        !log(&net).contains("transaction depth"),
+        "a connection was left inside a failed transaction: {}",
+        log(&net)
+    );
+
+    common::signal(&serve, libc::SIGTERM);
+    let (exit, _) = common::wait_exit(&mut serve, std::time::Duration::from_secs(20));
+    let exit = exit.unwrap_or_else(|| {
+        let _ = serve.kill();
+        panic!("serve still running 20 s after SIGTERM: {}", log(&net))
+    });
+    assert!(exit.success(), "serve exited {exit}: {}", log(&net));
+    assert_eq!(
+        rows(&net, "SELECT COUNT(*) FROM instance_lease"),
+        0,
+        "the lease was not released"
+    );
+    // A fresh process carries on.
+    net.drop_file("2022.csv", season(30, 2022));
+    let out = net.ok(&["ingest"]);
+    assert!(out.contains("2022.csv: ingested"), "{out}");
+}

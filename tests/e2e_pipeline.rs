@@ -695,3 +695,55 @@ fn run_once_into_a_closed_pipe_still_finishes_its_run() {
         "lease released"
     );
 }
+
+/// A value too large for the model's arithmetic (1e200: a unit or separator mistake) is
+/// left out of the fit with its reason, under its own name: before, a response of 1e200
+/// failed the series with a message about the residual prior, and a covariate with one
+/// such value was called "constant".
+#[test]
+fn a_value_out_of_the_models_range_is_excluded_with_its_reason() {
+    let config = ConfigBuilder::new()
+        .series(common::PHOSPHORUS)
+        .sampler(Sampler::default())
+        .series(CHLOROPHYLL)
+        .sampler(Sampler::default())
+        .build();
+    let net = Network::with_config(&config);
+    net.ok(&["init"]);
+    let rows = common::network_rows(12, 6);
+    let mut text = String::from("lake,season,visit,surface_temp_c,chl_ug_l,tp_ug_l\n");
+    for (i, (lake, year, visit, temp, chl)) in rows.iter().enumerate() {
+        let temp = if i == 3 {
+            "1e200".to_string()
+        } else {
+            format!("{temp:.3}")
+        };
+        let tp = if i == 5 {
+            "1e200".to_string()
+        } else {
+            format!("{:.4}", chl * 3.0 + (i % 7) as f64)
+        };
+        text.push_str(&format!("{lake},{year},{visit},{temp},{chl:.5},{tp}\n"));
+    }
+    net.drop_file("a.csv", text);
+    let out = net.ok(&["run-once"]);
+    assert!(
+        out.contains("phosphorus: published version 1")
+            && out.contains("chlorophyll: published version 1"),
+        "{out}"
+    );
+    let (lake3, year3, visit3, _, _) = &rows[3];
+    let (lake5, year5, visit5, _, _) = &rows[5];
+    let reasons = net.sqlite3(
+        "SELECT f.series, e.site, e.year, e.visit, e.reason FROM fit_exclusions e JOIN fits f USING (fit_id) ORDER BY f.series",
+    );
+    let range = "is out of the range the model computes with (magnitudes up to 1e100 on the model scale); check the value and its unit";
+    assert_eq!(
+        reasons,
+        format!(
+            "chlorophyll|{lake3}|{year3}|{visit3}|surface_temp_c = 1e200 {range}\n\
+             phosphorus|{lake5}|{year5}|{visit5}|tp_ug_l = 1e200 {range}\n"
+        )
+    );
+    assert!(!out.contains("constant") && !out.contains("prior"), "{out}");
+}

@@ -40,6 +40,11 @@ pub struct Data {
     pub(crate) warnings: Vec<String>,
 }
 
+/// Largest magnitude of a response or covariate value on the model scale. Sums of squares
+/// and cross-products over up to 1e9 observations stay finite below it (1e100 squared is
+/// 1e200), so the data-scaled default priors and the statistics never overflow.
+pub const MAX_MAGNITUDE: f64 = 1e100;
+
 /// Below this many levels a variance is weakly identified (common practice: 5).
 pub(crate) const FEW_LEVELS: usize = 5;
 
@@ -90,9 +95,23 @@ impl DataBuilder {
                 value: response,
             });
         }
+        if response.abs() > MAX_MAGNITUDE {
+            return Err(ModelError::OutOfRange {
+                row,
+                what: "the response".into(),
+                value: response,
+            });
+        }
         for (name, &x) in self.covariate_names.iter().zip(covariates) {
             if !x.is_finite() {
                 return Err(ModelError::NonFinite {
+                    row,
+                    what: format!("covariate `{name}`"),
+                    value: x,
+                });
+            }
+            if x.abs() > MAX_MAGNITUDE {
+                return Err(ModelError::OutOfRange {
                     row,
                     what: format!("covariate `{name}`"),
                     value: x,
@@ -364,6 +383,17 @@ mod tests {
         assert!(matches!(
             b.push("a", 2000, &[], &[], f64::NAN),
             Err(ModelError::NonFinite { .. })
+        ));
+        // Finite but beyond what sums of squares can hold: refused under its own name.
+        assert!(matches!(
+            b.push("a", 2000, &[], &[], -1e200),
+            Err(ModelError::OutOfRange { .. })
+        ));
+        b.push("a", 2000, &[], &[], MAX_MAGNITUDE).unwrap();
+        let mut c = builder(&["temp"], &[]);
+        assert!(matches!(
+            c.push("a", 2000, &[], &[1e101], 1.0),
+            Err(ModelError::OutOfRange { .. })
         ));
 
         let mut b = builder(&[], &[]);

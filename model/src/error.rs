@@ -13,6 +13,15 @@ pub enum ModelError {
         what: String,
         value: f64,
     },
+    #[error(
+        "row {row}: {what} is {value:e}, out of the range the model computes with \
+         (magnitudes up to 1e100 on the model scale); check the value and its unit"
+    )]
+    OutOfRange {
+        row: usize,
+        what: String,
+        value: f64,
+    },
     #[error("row {row}: expected {expected} {what}, found {found}")]
     RowShape {
         row: usize,

@@ -28,15 +28,17 @@ mod priors;
 mod reml;
 mod stats;
 
-pub use data::{Data, DataBuilder};
+pub use data::{Data, DataBuilder, MAX_MAGNITUDE};
 pub use error::ModelError;
 pub use priors::{NormalPrior, Priors, ResolvedPriors, SdPrior};
 pub use reml::{fit_point, CoefEstimate, Method, PointFit};
 
+mod budget;
 mod diagnostics;
 mod posterior;
 mod sampler;
 
+pub use budget::memory_estimate;
 pub use diagnostics::{diagnose, Diagnostic};
 pub use posterior::{
     location_conditional, sample, EffectDraws, FitDiagnostics, LocationConditional, Posterior,

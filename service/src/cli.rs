@@ -204,7 +204,7 @@ pub fn run() -> ExitCode {
     match outcome {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) => {
-            let reason = format!("{e:#}").replace('\n', " ");
+            let reason = crate::reason::reason_of(&e).replace('\n', " ");
             // The reason may quote a file name or a cell: never raw control characters.
             let reason = crate::visible::visible(&reason);
             // Only the one line: the log stream also goes to stderr and would repeat it.

@@ -192,6 +192,8 @@ pub struct SamplerConfig {
     pub seed: u64,
     pub max_rhat: f64,
     pub min_ess: f64,
+    /// A fit whose estimated memory exceeds this many MiB is refused before it starts.
+    pub max_memory_mib: u64,
 }
 
 impl Default for SamplerConfig {
@@ -204,6 +206,7 @@ impl Default for SamplerConfig {
             seed: 1,
             max_rhat: 1.01,
             min_ess: 400.0,
+            max_memory_mib: DEFAULT_MAX_MEMORY_MIB,
         }
     }
 }
@@ -507,6 +510,12 @@ fn check_priors(p: &Priors, at: &str) -> Result<(), (String, String)> {
 pub const MAX_CHAINS: u32 = 64;
 pub const MAX_DRAWS: u32 = 1_000_000;
 pub const MAX_WARMUP: u32 = 1_000_000;
+/// Default of `sampler.max_memory_mib`: a sixth of this project's 24 GiB reference machine,
+/// far above what the benchmarks' fits need (under 1 GiB) and low enough that a typo in
+/// `chains` or `draws` is refused with a figure instead of exhausting a shared host.
+pub const DEFAULT_MAX_MEMORY_MIB: u64 = 4096;
+/// Bounds of `sampler.max_memory_mib`.
+const MAX_MEMORY_MIB: std::ops::RangeInclusive<u64> = 16..=1_048_576;
 
 fn check_sampler(s: &SamplerConfig, at: &str) -> Result<(), (String, String)> {
     let err = |k: &str, m: String| Err((format!("{at}.{k}"), m));
@@ -546,6 +555,17 @@ fn check_sampler(s: &SamplerConfig, at: &str) -> Result<(), (String, String)> {
         return err(
             "min_ess",
             format!("must be a positive number, found {}", s.min_ess),
+        );
+    }
+    if !MAX_MEMORY_MIB.contains(&s.max_memory_mib) {
+        return err(
+            "max_memory_mib",
+            format!(
+                "must be between {} and {} MiB, found {}",
+                MAX_MEMORY_MIB.start(),
+                MAX_MEMORY_MIB.end(),
+                s.max_memory_mib
+            ),
         );
     }
     let saved = f64::from(s.chains) * f64::from(s.draws);

@@ -29,6 +29,7 @@ pub mod ingest;
 pub mod lease;
 pub mod pipeline;
 pub mod progress;
+pub mod reason;
 pub mod report;
 pub mod schedule;
 pub mod serve;

@@ -59,6 +59,7 @@ impl Schedule {
             )))
             }
         };
+        check_ranges(&full).map_err(cron_err)?;
         full[5] = day_numbers_to_names(&full[5]).map_err(cron_err)?;
         // A day field that begins with `*` (`*`, `*/2`) counts as unrestricted, as in the
         // common crontab implementations.
@@ -117,6 +118,48 @@ impl Schedule {
             .min()
             .map(|t| t.with_timezone(&Utc))
     }
+}
+
+/// The fields before day-of-week (in the 6-field form) with their standard ranges.
+const FIELD_RANGES: [(&str, u32, u32); 5] = [
+    ("second", 0, 59),
+    ("minute", 0, 59),
+    ("hour", 0, 23),
+    ("day of month", 1, 31),
+    ("month", 1, 12),
+];
+
+/// Numbers outside a field's range, said in the field's own terms (the `cron` crate's
+/// message for `61` is "Minutes must be less than 59", which is off by one and names the
+/// seconds field we add in front).
+fn check_ranges(full: &[String]) -> Result<(), String> {
+    for ((name, low, high), field) in FIELD_RANGES.iter().zip(full) {
+        for item in field.split(',') {
+            let (base, step) = match item.split_once('/') {
+                Some((b, s)) => (b, Some(s)),
+                None => (item, None),
+            };
+            if let Some(step) = step {
+                if step.parse::<u32>().is_ok_and(|n| n == 0) {
+                    return Err(format!("{name} step must be at least 1, found {item:?}"));
+                }
+            }
+            let ends = match base.split_once('-') {
+                Some((a, b)) => vec![a, b],
+                None => vec![base],
+            };
+            for end in ends {
+                if let Ok(n) = end.parse::<u32>() {
+                    if n < *low || n > *high {
+                        return Err(format!(
+                            "{name} {n} is out of range {low}-{high} (in {field:?})"
+                        ));
+                    }
+                }
+            }
+        }
+    }
+    Ok(())
 }
 
 /// Rewrite standard day-of-week numbers (0–7) as names so that the `cron` crate, which
@@ -248,10 +291,22 @@ mod tests {
             Schedule::parse("30 2 * *", "UTC").unwrap_err().key,
             "schedule.cron"
         );
-        assert_eq!(
-            Schedule::parse("61 2 * * *", "UTC").unwrap_err().key,
-            "schedule.cron"
-        );
+        for (cron, says) in [
+            ("61 2 * * *", "minute 61 is out of range 0-59"),
+            ("0 24 * * *", "hour 24 is out of range 0-23"),
+            ("0 2 0 * *", "day of month 0 is out of range 1-31"),
+            ("0 2 1-32 * *", "day of month 32 is out of range 1-31"),
+            ("0 2 * 13 *", "month 13 is out of range 1-12"),
+            ("60 0 2 * * *", "second 60 is out of range 0-59"),
+            ("*/0 2 * * *", "minute step must be at least 1"),
+        ] {
+            let e = Schedule::parse(cron, "UTC").unwrap_err();
+            assert_eq!(e.key, "schedule.cron");
+            assert!(e.message.contains(says), "{cron}: {}", e.message);
+        }
+        // The ends of the ranges are accepted.
+        Schedule::parse("59 23 31 12 *", "UTC").unwrap();
+        Schedule::parse("0-59/15 0-23 1-31 1-12 0-7", "UTC").unwrap();
         assert_eq!(
             Schedule::parse("0 3 * * 9", "UTC").unwrap_err().key,
             "schedule.cron"

@@ -63,7 +63,7 @@ fn log_end(ended: Result<anyhow::Result<RunReport>, tokio::task::JoinError>) {
             status = %r.status,
             "run finished with problems; see `tidemark status`"
         ),
-        Ok(Err(e)) => error!("run failed: {e:#}"),
+        Ok(Err(e)) => error!("run failed: {}", crate::reason::reason_of(&e)),
         Err(e) => error!("run task ended abnormally: {e}"),
     }
 }

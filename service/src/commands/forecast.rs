@@ -33,7 +33,7 @@ pub async fn run(ctx: &Context, series: Option<String>) -> anyhow::Result<()> {
             RunStatus::Succeeded,
             format!("forecasts rewritten for {n} version(s)"),
         ),
-        Err(e) => (RunStatus::Failed, format!("{e:#}")),
+        Err(e) => (RunStatus::Failed, crate::reason::reason_of(e)),
     };
     store.finish_run(run_id, status, Some(&message)).await?;
     lease.release().await?;

@@ -1,7 +1,7 @@
 //! From stored rows to the model's input: the transform, and the rows a series cannot use,
 //! each with its reason (they are recorded with the fit, never silently dropped).
 
-use tidemark_model::{Data, DataBuilder, ModelError};
+use tidemark_model::{Data, DataBuilder, ModelError, MAX_MAGNITUDE};
 
 use crate::config::{SeriesConfig, Transform};
 use crate::store::SeriesRow;
@@ -29,9 +29,20 @@ pub enum InputError {
     },
 }
 
+/// Why a value too large for the model's arithmetic is left out: almost always a unit or
+/// a decimal-separator mistake in the delivery, so the visit is excluded with its value
+/// instead of failing the whole series.
+fn out_of_range(column: &str, value: f64) -> String {
+    format!(
+        "{column} = {value:e} is out of the range the model computes with (magnitudes up to \
+         {MAX_MAGNITUDE:e} on the model scale); check the value and its unit"
+    )
+}
+
 /// Build the model input. A visit without the response is simply not an observation of
 /// this series; a visit with the response but without a covariate or group label, or with
-/// a non-positive value under `log`, is excluded with a reason.
+/// a non-positive value under `log`, or with a value beyond [`MAX_MAGNITUDE`], is excluded
+/// with a reason.
 pub fn build(series: &SeriesConfig, rows: &[SeriesRow]) -> Result<ModelInput, InputError> {
     let mut builder = DataBuilder::new(series.covariates.clone(), series.groups.clone());
     let mut excluded = Vec::new();
@@ -60,10 +71,18 @@ pub fn build(series: &SeriesConfig, rows: &[SeriesRow]) -> Result<ModelInput, In
                 continue;
             }
         };
+        if y.abs() > MAX_MAGNITUDE {
+            excluded.push(exclude(out_of_range(&series.response, value)));
+            continue;
+        }
         covariates.clear();
         let mut missing = None;
         for (name, v) in series.covariates.iter().zip(&row.covariates) {
             match v {
+                Some(v) if v.abs() > MAX_MAGNITUDE => {
+                    missing = Some(out_of_range(name, *v));
+                    break;
+                }
                 Some(v) => covariates.push(*v),
                 None => {
                     missing = Some(format!("covariate {name} is missing"));

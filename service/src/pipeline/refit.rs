@@ -229,8 +229,15 @@ async fn refit_series(
     } else {
         warm_start(store, &series.name).await?
     };
+    let (plan, skipped) = match within_memory(series, &data, attempt_plan(series, warm)) {
+        Ok(planned) => planned,
+        Err(message) => {
+            warn!(series = %series.name, "{message}");
+            return record_failure(to, fit, report, message, &exclusions, started).await;
+        }
+    };
     let sampling = Instant::now();
-    let fitted = match attempt_fits(series, opts, data, attempt_plan(series, warm)).await? {
+    let fitted = match attempt_fits(series, opts, data, plan, skipped).await? {
         Attempts::Fitted(f) => f,
         Attempts::Failed(message) => {
             return record_failure(to, fit, report, message, &exclusions, started).await;
@@ -371,6 +378,52 @@ fn attempt_plan(series: &SeriesConfig, warm: Option<(i64, WarmStart)>) -> Vec<At
     attempts
 }
 
+/// Keep the attempts whose estimated memory is within `sampler.max_memory_mib`; the
+/// others are dropped before anything is allocated. Returns the kept attempts and a note
+/// per dropped one; when none is kept, the error says the smallest estimate and how the
+/// settings got there.
+fn within_memory(
+    series: &SeriesConfig,
+    data: &tidemark_model::Data,
+    attempts: Vec<Attempt>,
+) -> Result<(Vec<Attempt>, Vec<String>), String> {
+    const MIB: u64 = 1 << 20;
+    let limit = series.sampler.max_memory_mib;
+    let mut notes = Vec::new();
+    let mut smallest: Option<(u64, &'static str, SamplerSettings)> = None;
+    let mut kept = Vec::new();
+    for attempt in attempts {
+        let need = tidemark_model::memory_estimate(data, &attempt.1);
+        if need <= limit.saturating_mul(MIB) {
+            kept.push(attempt);
+            continue;
+        }
+        notes.push(format!(
+            "{} not run: it would need an estimated {} MiB, above sampler.max_memory_mib = {limit}",
+            attempt.0,
+            need.div_ceil(MIB)
+        ));
+        // On a tie the later attempt is named: a cold start rather than the warm one.
+        if smallest.as_ref().is_none_or(|(n, _, _)| need <= *n) {
+            smallest = Some((need, attempt.0, attempt.1));
+        }
+    }
+    match smallest {
+        Some((need, label, s)) if kept.is_empty() => Err(format!(
+            "no fit attempt run: even the {label} would need an estimated {} MiB ({} chains x {} \
+             draws, {} warm-up, {} observations, {} sites), above sampler.max_memory_mib = \
+             {limit}; lower chains, draws or warmup, or raise the limit",
+            need.div_ceil(MIB),
+            s.chains,
+            s.draws,
+            s.warmup,
+            data.n_obs(),
+            data.n_sites(),
+        )),
+        _ => Ok((kept, notes)),
+    }
+}
+
 /// The attempt that ended the sequence: the first to pass the gate, else the last.
 struct Fitted {
     post: Posterior,
@@ -394,9 +447,9 @@ async fn attempt_fits(
     opts: &RefitOptions,
     data: Arc<tidemark_model::Data>,
     attempts: Vec<Attempt>,
+    mut notes: Vec<String>,
 ) -> anyhow::Result<Attempts> {
     let priors = model_priors(series);
-    let mut notes: Vec<String> = Vec::new();
     let mut last: Option<(Posterior, SamplerSettings, Option<i64>)> = None;
     for (label, settings, warm) in attempts {
         let (from, warm_state) = match warm {
@@ -426,7 +479,10 @@ async fn attempt_fits(
                         series.name
                     )));
                 }
-                return Ok(Attempts::Failed(format!("{label}: {e:#}")));
+                return Ok(Attempts::Failed(format!(
+                    "{label}: {}",
+                    crate::reason::reason_of(&e)
+                )));
             }
         };
         let ok = passes(&post.diagnostics, series);

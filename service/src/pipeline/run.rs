@@ -205,7 +205,7 @@ async fn refit_and_record(
         Err(e) if matches!(e.downcast_ref(), Some(StoreError::LeaseLost { .. })) => return Err(e),
         Err(e) => {
             report.status = RunStatus::Failed;
-            report.message = format!("{e:#}");
+            report.message = crate::reason::reason_of(&e);
         }
     }
     Ok(())

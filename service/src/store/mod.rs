@@ -26,7 +26,7 @@ use sqlx::migrate::Migrator;
 use sqlx::sqlite::{
     SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteSynchronous,
 };
-use sqlx::Row;
+use sqlx::{Connection, Row};
 
 pub use drift::ComponentRow;
 pub use export::{DriftExportRow, ForecastExportRow, PosteriorExportRow, VersionDraws};
@@ -80,6 +80,8 @@ pub enum StoreError {
     },
     #[error("database {path} is locked by another writer (waited {} s); nothing was changed, try again when it is done", BUSY_TIMEOUT.as_secs())]
     Busy { path: PathBuf, source: sqlx::Error },
+    #[error("database {path}: disk full, no space left to write to it; the change was rolled back and nothing half-written is visible; free some space and it is retried (by `serve` on its next tick)")]
+    DiskFull { path: PathBuf, source: sqlx::Error },
     #[error("database {path}: {source}")]
     Sql { path: PathBuf, source: sqlx::Error },
     #[error("this process lost the lease of database {path} (it held generation {generation}; {now}) while it worked; it wrote nothing, and its run stays abandoned")]
@@ -168,6 +170,17 @@ impl Store {
             .pragma("temp_store", "memory");
         let pool = SqlitePoolOptions::new()
             .max_connections(4)
+            // SQLite may roll a transaction back by itself (a full disk, an I/O error);
+            // sqlx then still counts it open and that connection would refuse every later
+            // BEGIN. Such a connection is closed instead of reused; the pool opens a
+            // fresh one. The ping first runs the rollback queued when the transaction
+            // was dropped, so a cleanly rolled-back connection is kept.
+            .after_release(|conn, _| {
+                Box::pin(async move {
+                    conn.ping().await?;
+                    Ok(!conn.is_in_transaction())
+                })
+            })
             .connect_with(options)
             .await
             .map_err(|source| StoreError::Sql {
@@ -255,17 +268,19 @@ impl Store {
     }
 
     fn sql(&self, source: sqlx::Error) -> StoreError {
-        // SQLITE_BUSY and its extended codes (5, 261, 517…): the busy timeout ran out.
-        let busy = source
+        // The primary result code is the low byte of an extended one (5, 261, 517…).
+        let code = source
             .as_database_error()
             .and_then(|d| d.code())
             .and_then(|c| c.parse::<i64>().ok())
-            .is_some_and(|c| c & 0xff == 5);
+            .map(|c| c & 0xff);
         let path = self.path.clone();
-        if busy {
-            StoreError::Busy { path, source }
-        } else {
-            StoreError::Sql { path, source }
+        match code {
+            // SQLITE_BUSY: the busy timeout ran out.
+            Some(5) => StoreError::Busy { path, source },
+            // SQLITE_FULL.
+            Some(13) => StoreError::DiskFull { path, source },
+            _ => StoreError::Sql { path, source },
         }
     }
 }

@@ -40,7 +40,22 @@ pub(super) async fn mark_running_abandoned(
     .await
 }
 
+// An autocommit `… RETURNING` statement is read with `fetch_all`, never `fetch_one` or
+// `fetch_optional`: SQLite commits it when its last step runs, and a commit that fails
+// (a full disk) is reported only there. Stopping after the first row would hand back the
+// id of a row that was never stored.
+
 impl Store {
+    /// The single row of an autocommit `INSERT … RETURNING`.
+    fn the_one<T>(&self, rows: Vec<T>, what: &str) -> Result<T, StoreError> {
+        rows.into_iter()
+            .next()
+            .ok_or_else(|| StoreError::Inconsistent {
+                path: self.path().to_path_buf(),
+                message: format!("an insert returned no {what}"),
+            })
+    }
+
     /// Record a tick that did no work (status `skipped`), with the reason.
     pub async fn record_skipped_run(
         &self,
@@ -58,9 +73,10 @@ impl Store {
         .bind(origin.command)
         .bind(origin.fence.as_ref().map(|f| &f.holder))
         .bind(origin.fence.as_ref().map(|f| f.generation))
-        .fetch_one(&self.pool)
+        .fetch_all(&self.pool)
         .await
         .map_err(|e| self.sql(e))
+        .and_then(|ids| self.the_one(ids, "run id"))
     }
 
     /// When the newest run that ran to its end (succeeded, partial or failed) started.
@@ -100,9 +116,10 @@ impl Store {
         .bind(origin.command)
         .bind(origin.fence.as_ref().map(|f| &f.holder))
         .bind(origin.fence.as_ref().map(|f| f.generation))
-        .fetch_one(&self.pool)
+        .fetch_all(&self.pool)
         .await
         .map_err(|e| self.sql(e))
+        .and_then(|ids| self.the_one(ids, "run id"))
     }
 
     /// Close a run record; returns the status it has now. A run no longer `running` (a
@@ -121,9 +138,11 @@ impl Store {
         .bind(now_utc())
         .bind(status)
         .bind(message)
-        .fetch_optional(&self.pool)
+        .fetch_all(&self.pool)
         .await
-        .map_err(|e| self.sql(e))?;
+        .map_err(|e| self.sql(e))?
+        .into_iter()
+        .next();
         match closed {
             Some(s) => Ok(s),
             None => sqlx::query_scalar("SELECT status FROM runs WHERE run_id = ?1")
