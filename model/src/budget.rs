@@ -39,11 +39,12 @@ pub fn memory_estimate(data: &Data, settings: &SamplerSettings) -> u64 {
     let warmup = settings.warmup.max(settings.warm_warmup) as u64;
     let (_, n_effect) = effect_thinning(settings.draws, settings.effect_draws);
     let n_effect = n_effect as u64;
-    let threads = chains.min(
-        std::thread::available_parallelism()
-            .map_or(1, |n| n.get() as u64)
-            .max(settings.threads as u64),
-    );
+    // The worker count `sample` uses: `threads`, or one per core when it is 0.
+    let threads = match settings.threads {
+        0 => std::thread::available_parallelism().map_or(1, |n| n.get() as u64),
+        t => t as u64,
+    }
+    .clamp(1, chains.max(1));
 
     let sat = |terms: &[u64]| terms.iter().fold(0u64, |a, &t| a.saturating_add(t));
     let mul = |terms: &[u64]| terms.iter().fold(1u64, |a, &t| a.saturating_mul(t));
