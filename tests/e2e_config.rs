@@ -357,3 +357,129 @@ fn a_cron_field_out_of_range_names_the_field_and_its_range() {
         assert!(!err.contains("less than 59"), "{err}");
     }
 }
+
+/// Runs `tidemark args…` and returns its exit code and its peak resident set size in
+/// bytes, as the kernel accounts it for that one child (`wait4`).
+#[allow(
+    clippy::zombie_processes,
+    reason = "the child is reaped by wait4, which std does not know about"
+)]
+fn peak_rss_of(net: &Network, args: &[&str]) -> (Option<i32>, u64) {
+    let child = net
+        .command(args)
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .expect("start tidemark");
+    let mut status = 0;
+    // SAFETY: `rusage` is plain data the kernel fills in; the pid is our own child, reaped
+    // here exactly once.
+    let mut usage: libc::rusage = unsafe { std::mem::zeroed() };
+    let pid = unsafe { libc::wait4(child.id() as libc::pid_t, &mut status, 0, &mut usage) };
+    assert_eq!(pid, child.id() as libc::pid_t, "wait4 failed");
+    let code = libc::WIFEXITED(status).then(|| libc::WEXITSTATUS(status));
+    // Linux reports `ru_maxrss` in KiB.
+    (code, usage.ru_maxrss as u64 * 1024)
+}
+
+/// A lake network with ten covariates: enough coefficients that publishing the draws file,
+/// not summarising the draws, makes the peak. Deterministic, so the figures repeat.
+fn wide_network_csv() -> String {
+    let mut out = String::from("lake,season,visit,chl");
+    for k in 0..10 {
+        out.push_str(&format!(",x{k}"));
+    }
+    out.push('\n');
+    for s in 0..12u32 {
+        for t in 0..6u32 {
+            // A fixed integer hash per cell: values that look random and are not collinear.
+            let xs: Vec<f64> = (0..10u64)
+                .map(|k| {
+                    let mut h = (u64::from(s) << 40) ^ (u64::from(t) << 20) ^ k;
+                    h = h.wrapping_mul(0x9E37_79B9_7F4A_7C15);
+                    h ^= h >> 29;
+                    h = h.wrapping_mul(0xBF58_476D_1CE4_E5B9);
+                    h ^= h >> 32;
+                    (h >> 11) as f64 / (1u64 << 53) as f64 - 0.5
+                })
+                .collect();
+            let y = 1.0
+                + 0.1 * f64::from(s % 4)
+                + 0.2 * f64::from(t % 3)
+                + 0.05 * xs.iter().sum::<f64>()
+                + 0.2 * (f64::from(s * 13 + t)).cos();
+            out.push_str(&format!("Lake {s},{},1,{y:.5}", 2001 + t));
+            for x in xs {
+                out.push_str(&format!(",{x:.5}"));
+            }
+            out.push('\n');
+        }
+    }
+    out
+}
+
+/// The estimate a refused fit states, then the measured peak of the same fit with room to
+/// run: the estimate covers it and is not far above it. One case where summarising the
+/// draws makes the peak, one where publishing them does.
+#[test]
+fn the_memory_estimate_covers_the_measured_peak_of_a_refit() {
+    let wide = format!(
+        "name = \"wide\"\nresponse = \"chl\"\nsite = \"lake\"\nyear = \"season\"\nvisit = \"visit\"\n\
+         covariates = [{}]\n",
+        (0..10).map(|k| format!("\"x{k}\"")).collect::<Vec<_>>().join(", ")
+    );
+    let cases = [
+        (
+            common::CHLOROPHYLL.to_string(),
+            common::csv(&common::network_rows(12, 6)),
+            150_000,
+        ),
+        (wide, wide_network_csv(), 100_000),
+    ];
+    for (series, feed, draws) in cases {
+        // Enough draws that they, not the process itself, make most of the peak.
+        let sampler = common::Sampler {
+            chains: 2,
+            draws,
+            warmup: 300,
+            min_ess: 100,
+            ..Default::default()
+        };
+        let config = common::ConfigBuilder::new()
+            .series(&series)
+            .sampler(sampler)
+            .build();
+        let net = Network::with_config(
+            &config.replace("min_ess = 100\n", "min_ess = 100\nmax_memory_mib = 16\n"),
+        );
+        net.ok(&["init"]);
+        net.drop_file("a.csv", feed);
+        // The lowest limit refuses the fit and says the estimate.
+        let (code, _) = peak_rss_of(&net, &["run-once"]);
+        assert_eq!(code, Some(1));
+        let message = net.scalar("SELECT message FROM fits").text().to_string();
+        let estimate_mib: u64 = message
+            .split("estimated ")
+            .nth(1)
+            .and_then(|m| m.split(' ').next())
+            .and_then(|n| n.parse().ok())
+            .unwrap_or_else(|| panic!("a figure in MiB in {message}"));
+        // With room to run, the same fit's measured peak stays under that estimate.
+        std::fs::write(net.config_path(), &config).expect("write config");
+        let (code, peak) = peak_rss_of(&net, &["refit", "--force", "--cold"]);
+        assert_eq!(code, Some(0), "the refit with the default limit runs");
+        assert_eq!(
+            net.scalar("SELECT COUNT(*) FROM fits WHERE status = 'published'"),
+            common::Value::Int(1)
+        );
+        let peak_mib = peak.div_ceil(1 << 20);
+        assert!(
+            estimate_mib >= peak_mib,
+            "{message}: estimate {estimate_mib} MiB below the measured peak {peak_mib} MiB"
+        );
+        assert!(
+            estimate_mib <= 2 * peak_mib,
+            "{message}: estimate {estimate_mib} MiB more than twice the measured peak {peak_mib} MiB"
+        );
+    }
+}

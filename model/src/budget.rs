@@ -5,10 +5,11 @@
 //! The estimate counts the allocations that grow with the settings or the data: the
 //! sufficient statistics (dense in the `q` non-site parameters, one matrix per count
 //! class), each worker's factorisation workspace, every chain's saved draws and warm-up
-//! history, and the assembled posterior with its summaries (a second copy of the draws
-//! exists while the posterior is assembled). It leaves out the data itself, which the
-//! caller already holds. It is an upper-leaning estimate, not an accounting: the test
-//! `estimate_covers_the_posterior_it_describes` checks it covers what a fit returns.
+//! history, the assembled posterior (a second copy of the draws), and the summaries, where
+//! every worker holds several copies of one quantity's draws at once. It leaves out the
+//! data itself, which the caller already holds. It is an upper-leaning estimate, not an
+//! accounting: `tests/memory_peak.rs` checks that it covers the peak a counting allocator
+//! measures during `sample`, and is within twice it.
 
 use crate::data::Data;
 use crate::sampler::{effect_thinning, SamplerSettings};
@@ -17,6 +18,12 @@ use crate::sampler::{effect_thinning, SamplerSettings};
 const F64: u64 = 8;
 /// A warm-up history entry is its own vector: its header plus the allocator's overhead.
 const VEC_OVERHEAD: u64 = 24 + 16;
+/// Copies of one scalar's draws that its summary holds at once: the chains, their split
+/// halves, the flattened draws, their order, the sorted draws, the normal scores (and
+/// their per-chain copies), the folded draws, their order and scores, and the tail
+/// indicators. Counted from `diagnostics::diagnose_with`, with copies to spare;
+/// `tests/memory_peak.rs` checks the total against a counting allocator.
+const SUMMARY_COPIES: u64 = 14;
 
 /// Estimated peak memory in bytes of `sample(data, _, settings, _, _)`.
 ///
@@ -67,14 +74,19 @@ pub fn memory_estimate(data: &Data, settings: &SamplerSettings) -> u64 {
         mul(&[warmup, sat(&[mul(&[m, F64]), VEC_OVERHEAD])]),
     ]);
     let chains_out = mul(&[chains, per_chain]);
-    // Assembly copies the draws into the posterior and sorts one scalar's draws at a time
-    // for its summary.
+    // Assembly copies the draws into the posterior; then every worker summarises one
+    // scalar at a time, each holding several copies of that scalar's draws, beside one
+    // shared table of normal scores per draw count.
     let assembled = sat(&[
         mul(&[chains, draws, m + p, F64]),
         mul(&[chains, n_effect, sat(&[n_sites, q, m, p, 2]), F64]),
-        mul(&[chains, draws, 2, F64]),
     ]);
-    sat(&[stats, workspace, chains_out, assembled])
+    let per_scalar = mul(&[chains, draws.max(n_effect), F64]);
+    let summaries = sat(&[
+        mul(&[threads, SUMMARY_COPIES, per_scalar]),
+        mul(&[chains, sat(&[draws, n_effect]), F64]),
+    ]);
+    sat(&[stats, workspace, chains_out, assembled, summaries])
 }
 
 /// Distinct per-site observation counts (the count classes of the sufficient statistics).

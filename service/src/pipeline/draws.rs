@@ -17,7 +17,7 @@ use arrow_array::{Array, Float64Array, ListArray, RecordBatch, StringArray, UInt
 use arrow_ipc::reader::FileReader;
 use arrow_ipc::writer::FileWriter;
 use arrow_schema::{ArrowError, DataType, Field, Schema};
-use tidemark_model::{ForecastBasis, Posterior, WarmStart};
+use tidemark_model::{Data, ForecastBasis, Posterior, SamplerSettings, WarmStart};
 
 /// Format tag stored in `fit_draws.format`.
 pub const FORMAT: &str = "arrow-ipc-file";
@@ -47,14 +47,17 @@ struct Rows {
 }
 
 impl Rows {
-    fn new() -> Self {
+    /// Builders sized for `rows` rows of `values` numbers in all, so that the values are
+    /// written once into a buffer of their final size: a growing buffer would hold up to
+    /// twice the draws while it doubles, and the draws are the largest thing a fit holds.
+    fn with_capacity(rows: usize, values: usize) -> Self {
         Rows {
             kind: StringBuilder::new(),
             term: StringBuilder::new(),
             level: StringBuilder::new(),
-            chains: UInt32Builder::new(),
-            draws: UInt32Builder::new(),
-            values: ListBuilder::new(Float64Builder::new()),
+            chains: UInt32Builder::with_capacity(rows),
+            draws: UInt32Builder::with_capacity(rows),
+            values: ListBuilder::with_capacity(Float64Builder::with_capacity(values), rows),
         }
     }
 
@@ -72,19 +75,60 @@ impl Rows {
         self.level.append_option(level);
         self.chains.append_value(chains as u32);
         self.draws.append_value(draws as u32);
-        self.values
-            .values()
-            .append_slice(&values.collect::<Vec<f64>>());
+        let items = self.values.values();
+        for v in values {
+            items.append_value(v);
+        }
         self.values.append(true);
     }
 }
 
+/// Upper-leaning size in bytes of the draws file a fit with these settings writes: every
+/// saved draw of the standard deviations and coefficients, the forecast basis of
+/// `basis_per_chain` joint draws per chain, and a row header per quantity.
+pub fn size_estimate(data: &Data, settings: &SamplerSettings, basis_per_chain: usize) -> u64 {
+    let m = data.sd_names().len() as u64;
+    let p = 1 + data.covariate_names().len() as u64;
+    let levels = (data.n_sites() + data.n_years()) as u64
+        + data
+            .group_labels()
+            .iter()
+            .map(|l| l.len() as u64)
+            .sum::<u64>();
+    let chains = settings.chains as u64;
+    let saved = chains
+        .saturating_mul(settings.draws as u64)
+        .saturating_mul(m + p);
+    let basis = chains
+        .saturating_mul(basis_per_chain as u64)
+        .saturating_mul(levels + 1);
+    let rows = m + p + levels + 1 + data.n_sites() as u64 + p;
+    saved
+        .saturating_add(basis)
+        .saturating_mul(8)
+        .saturating_add(rows.saturating_mul(ROW_BYTES))
+        .saturating_add(FILE_BYTES)
+}
+
+/// Bytes a row costs beyond its values (offsets, kind, term and level); a level is a site
+/// label, so this leaves room for long ones.
+const ROW_BYTES: u64 = 256;
+/// The file's schema, footer and alignment.
+const FILE_BYTES: u64 = 1 << 16;
+
 /// Encode a posterior's draws, keeping `basis_per_chain` joint effect draws per chain.
 pub fn encode(post: &Posterior, basis: &ForecastBasis) -> Result<Vec<u8>, ArrowError> {
-    let mut rows = Rows::new();
     let (c, d) = (post.chains, post.draws);
     let m = post.sd_names.len();
     let p = post.coef_names.len();
+    let effect_rows = basis.site_labels.len()
+        + basis.year_labels.len()
+        + basis.group_labels.iter().map(Vec::len).sum::<usize>()
+        + 1;
+    let data_rows = basis.covariate_means.len() + basis.site_labels.len();
+    let n_rows = m + p + effect_rows + data_rows;
+    let n_values = c * d * (m + p) + basis.n * effect_rows + data_rows;
+    let mut rows = Rows::with_capacity(n_rows, n_values);
     for (k, name) in post.sd_names.iter().enumerate() {
         rows.push(
             "sd",
@@ -185,7 +229,9 @@ pub fn encode(post: &Posterior, basis: &ForecastBasis) -> Result<Vec<u8>, ArrowE
             Arc::new(rows.values.finish()),
         ],
     )?;
-    let mut buf = Vec::new();
+    // The file is the values plus offsets, labels and metadata: reserve that once.
+    let mut buf =
+        Vec::with_capacity(n_values * 8 + n_rows * ROW_BYTES as usize + FILE_BYTES as usize);
     {
         let mut writer = FileWriter::try_new(&mut buf, &schema)?;
         writer.write(&batch)?;

@@ -393,7 +393,7 @@ fn within_memory(
     let mut smallest: Option<(u64, &'static str, SamplerSettings)> = None;
     let mut kept = Vec::new();
     for attempt in attempts {
-        let need = tidemark_model::memory_estimate(data, &attempt.1);
+        let need = memory_estimate(data, &attempt.1);
         if need <= limit.saturating_mul(MIB) {
             kept.push(attempt);
             continue;
@@ -422,6 +422,29 @@ fn within_memory(
         )),
         _ => Ok((kept, notes)),
     }
+}
+
+/// Copies of the draws file alive at once while a version is published, beside the
+/// posterior. Three can be read off the code (the Arrow arrays, the IPC writer's encoded
+/// batch and the file; later the file and the store driver's and SQLite's copies of the
+/// bound blob); the peak measured with many coefficients needs five, so five it is.
+const PUBLISH_COPIES: u64 = 5;
+/// The process itself before any fit: code, runtime, the SQLite page cache, the data.
+const PROCESS_BASE_BYTES: u64 = 24 << 20;
+
+/// Estimated peak memory in bytes of one attempt from sampling to publishing: the larger
+/// of the sampler's peak (while it summarises) and the publishing peak (the posterior
+/// plus the copies of its draws file), above what the process holds anyway.
+/// `tests/e2e_config.rs::the_memory_estimate_covers_the_measured_peak_of_a_refit` checks
+/// it against the peak resident size the kernel measures.
+fn memory_estimate(data: &tidemark_model::Data, settings: &SamplerSettings) -> u64 {
+    let sampling = tidemark_model::memory_estimate(data, settings);
+    let file = draws::size_estimate(data, settings, BASIS_DRAWS_PER_CHAIN);
+    let publishing = file.saturating_mul(1 + PUBLISH_COPIES);
+    sampling
+        .max(publishing)
+        .saturating_add(data.n_obs() as u64 * 64)
+        .saturating_add(PROCESS_BASE_BYTES)
 }
 
 /// The attempt that ended the sequence: the first to pass the gate, else the last.

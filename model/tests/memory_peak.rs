@@ -1,0 +1,83 @@
+//! The memory estimate against the heap a fit really uses: a counting allocator records
+//! the peak bytes live while `sample` runs, and the estimate must cover it without being
+//! far above it. This file is its own test binary, so the allocator counts nothing else.
+
+use std::alloc::{GlobalAlloc, Layout, System};
+use std::sync::atomic::{AtomicUsize, Ordering};
+
+use tidemark_model::simulate::{simulate, NetworkSpec};
+use tidemark_model::{memory_estimate, sample, Controls, Priors, SamplerSettings};
+
+struct Counting;
+
+static LIVE: AtomicUsize = AtomicUsize::new(0);
+static PEAK: AtomicUsize = AtomicUsize::new(0);
+
+unsafe impl GlobalAlloc for Counting {
+    unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
+        let p = unsafe { System.alloc(layout) };
+        if !p.is_null() {
+            let now = LIVE.fetch_add(layout.size(), Ordering::SeqCst) + layout.size();
+            PEAK.fetch_max(now, Ordering::SeqCst);
+        }
+        p
+    }
+    unsafe fn dealloc(&self, ptr: *mut u8, layout: Layout) {
+        unsafe { System.dealloc(ptr, layout) };
+        LIVE.fetch_sub(layout.size(), Ordering::SeqCst);
+    }
+}
+
+#[global_allocator]
+static GLOBAL: Counting = Counting;
+
+/// Peak heap bytes of one fit, measured from a fresh peak.
+fn measured_peak(data: &tidemark_model::Data, s: &SamplerSettings) -> u64 {
+    let before = LIVE.load(Ordering::SeqCst);
+    PEAK.store(before, Ordering::SeqCst);
+    let post = sample(data, &Priors::default(), s, None, Controls::default()).unwrap();
+    let peak = PEAK.load(Ordering::SeqCst).saturating_sub(before) as u64;
+    drop(post);
+    peak
+}
+
+/// Shapes where different terms dominate: saved draws with one worker, several workers
+/// summarising at once, more chains than workers, and many sites and years (the effect
+/// draws and the dense statistics). The tests run one at a time (one allocator).
+#[test]
+fn the_estimate_covers_the_measured_peak_and_is_not_far_above_it() {
+    let cases = [
+        (12usize, 4usize, 2usize, 40_000usize, 1usize),
+        (12, 4, 4, 20_000, 4),
+        (12, 4, 6, 10_000, 2),
+        (300, 12, 2, 2_000, 2),
+    ];
+    for (sites, years, chains, draws, threads) in cases {
+        let (data, _) = simulate(&NetworkSpec {
+            sites,
+            years,
+            seed: 11,
+            ..Default::default()
+        });
+        let s = SamplerSettings {
+            chains,
+            draws,
+            warmup: 300,
+            threads,
+            ..SamplerSettings::default()
+        };
+        let peak = measured_peak(&data, &s);
+        let estimate = memory_estimate(&data, &s);
+        let case = format!(
+            "{sites} sites x {years} years, {chains} chains x {draws} draws, {threads} threads"
+        );
+        assert!(
+            estimate >= peak,
+            "{case}: estimate {estimate} B below the measured peak {peak} B"
+        );
+        assert!(
+            estimate <= 2 * peak,
+            "{case}: estimate {estimate} B more than twice the measured peak {peak} B"
+        );
+    }
+}
