@@ -358,6 +358,73 @@ fn a_cron_field_out_of_range_names_the_field_and_its_range() {
     }
 }
 
+#[test]
+fn a_cron_that_can_never_fire_is_refused_before_serve_starts() {
+    let net = Network::with_config(&CONFIG.replace("30 2 * * *", "0 0 30 2 *"));
+    for command in ["serve", "init", "run-once"] {
+        let out = net.tidemark(&[command]);
+        assert_eq!(out.status.code(), Some(1), "{command}");
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert!(
+            err.contains("schedule.cron") && err.contains("never fires"),
+            "{command}: {err}"
+        );
+    }
+    // Nothing started: no database, so no lease was taken and no run recorded.
+    assert!(!net.db_path().exists());
+}
+
+/// The next tick by the rules of POSIX `crontab`, found by walking the hours from `now`:
+/// when both day fields are restricted a day matches either; a field beginning with `*`
+/// is unrestricted. Independent of the service's parser.
+fn next_posix_tick(
+    now: chrono::DateTime<chrono::Utc>,
+    day_matches: impl Fn(chrono::DateTime<chrono::Utc>) -> bool,
+) -> chrono::DateTime<chrono::Utc> {
+    use chrono::{DurationRound, Timelike};
+    let mut t = now.duration_trunc(chrono::TimeDelta::hours(1)).unwrap();
+    loop {
+        t += chrono::TimeDelta::hours(1);
+        if t.hour() == 2 && day_matches(t) {
+            return t;
+        }
+    }
+}
+
+#[test]
+fn status_shows_the_next_tick_by_standard_cron_day_rules() {
+    use chrono::{Datelike, Weekday};
+    type DayRule = fn(chrono::DateTime<chrono::Utc>) -> bool;
+    let cases: [(&str, DayRule); 3] = [
+        // Both restricted: the 1st OR a Monday.
+        ("0 2 1 * 1", |t| t.day() == 1 || t.weekday() == Weekday::Mon),
+        // Day-of-week begins with `*`: the 15th, whatever the weekday.
+        ("0 2 15 * */2", |t| t.day() == 15),
+        // Day-of-month unrestricted: Mondays only.
+        ("0 2 * * 1", |t| t.weekday() == Weekday::Mon),
+    ];
+    for (cron, rule) in cases {
+        let net = Network::with_config(&CONFIG.replace("30 2 * * *", cron));
+        net.ok(&["init"]);
+        let before = chrono::Utc::now();
+        let out = net.ok(&["status"]);
+        let after = chrono::Utc::now();
+        let shown = out
+            .split("next tick ")
+            .nth(1)
+            .and_then(|rest| rest.split_whitespace().next())
+            .and_then(|t| chrono::DateTime::parse_from_rfc3339(t).ok())
+            .unwrap_or_else(|| panic!("{cron}: no next tick in {out}"))
+            .with_timezone(&chrono::Utc);
+        // `status` read the clock between `before` and `after`.
+        let expected = [next_posix_tick(before, rule), next_posix_tick(after, rule)];
+        assert!(
+            expected.contains(&shown),
+            "{cron}: status says {shown}, POSIX cron says {expected:?}"
+        );
+    }
+}
+
 /// Runs `tidemark args…` and returns its exit code and its peak resident set size in
 /// bytes, as the kernel accounts it for that one child (`wait4`).
 #[allow(
