@@ -100,6 +100,15 @@ fn refit_publishes_a_version_with_all_four_targets_and_ordered_intervals() {
          WHERE abs(share_site + share_year + share_groups + share_residual + share_estimation - 1) > 1e-9",
     );
     assert_eq!(bad_shares, Value::Int(0));
+    // A log series publishes no response-scale sd, and its mean (the median of the draws'
+    // predictive means) lies inside the 95% interval.
+    assert_eq!(
+        net.scalar(
+            "SELECT COUNT(*) FROM latest_forecasts WHERE series = 'chlorophyll'
+             AND (sd IS NOT NULL OR mean IS NULL OR mean < q025 OR mean > q975)"
+        ),
+        Value::Int(0)
+    );
     // Next year is one past the data; new-site rows have no site.
     assert_eq!(
         net.scalar("SELECT MIN(year) FROM latest_forecasts WHERE target = 'known_site_new_year'"),

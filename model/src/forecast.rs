@@ -8,8 +8,12 @@
 //! and residual noise). The forecast is the mixture over draws, so parameter uncertainty
 //! enters through the spread of `m_d` and `v_d`. Its quantiles are found by solving the
 //! mixture CDF exactly (Rao–Blackwellised: no extra Monte Carlo noise from drawing
-//! observations). Under a log transform, quantiles map through `exp` and the mean and sd
-//! use the lognormal moments of each component.
+//! observations). Under a log transform, quantiles map through `exp`; the response-scale
+//! mean and sd of the mixture need not exist (each component's mean is `exp(m_d + v_d/2)`,
+//! and `E[exp(v/2)]` over the posterior of `v` is infinite under half-t and exponential
+//! priors, and under a half-normal one once its scale is large enough), so `mean` is the
+//! posterior median of the per-draw predictive mean — finite for any posterior — and `sd`
+//! is not given.
 //!
 //! The predictive variance `E[v_d] + Var(m_d)` is split into shares by source: each
 //! unknown effect's variance, residual noise, and `Var(m_d)` as the estimation share.
@@ -162,8 +166,11 @@ pub struct ForecastRow {
     pub scenario: String,
     /// The site's last observed year (known-site rows; `None` for a new site).
     pub last_observed_year: Option<i32>,
+    /// Predictive mean; under a log transform the posterior median of each draw's
+    /// predictive mean `exp(m_d + v_d/2)` (see the module comment).
     pub mean: f64,
-    pub sd: f64,
+    /// Predictive sd; `None` under a log transform, where it may not exist.
+    pub sd: Option<f64>,
     pub q025: f64,
     pub q10: f64,
     pub q25: f64,
@@ -183,6 +190,16 @@ const PROBS: [f64; 7] = [0.5, 0.25, 0.75, 0.1, 0.9, 0.025, 0.975];
 #[inline]
 fn norm_pdf(z: f64) -> f64 {
     (-0.5 * z * z).exp() / (2.0 * std::f64::consts::PI).sqrt()
+}
+
+/// Median of ascending values (the mean of the middle two for an even count).
+fn median_sorted(sorted: &[f64]) -> f64 {
+    let n = sorted.len();
+    if n % 2 == 1 {
+        sorted[n / 2]
+    } else {
+        0.5 * (sorted[n / 2 - 1] + sorted[n / 2])
+    }
 }
 
 /// Quantile `p` of the equal-weight mixture of `N(means[d], sds[d]^2)`.
@@ -384,26 +401,20 @@ fn row_from(spec: RowSpec, comp: &Predictive) -> ForecastRow {
     let var_m = comp.means.iter().map(|m| (m - mean_m).powi(2)).sum::<f64>() / n;
     let mean_v = comp.vars.iter().sum::<f64>() / n;
     let (mean, sd, q) = match spec.transform {
-        Transform::None => (mean_m, (mean_v + var_m).sqrt(), q),
+        Transform::None => (mean_m, Some((mean_v + var_m).sqrt()), q),
         Transform::Log => {
-            // Lognormal moments per component, then the mixture's.
-            let m1 = comp
+            // The median over draws of each draw's lognormal mean: finite whatever the
+            // tails of the variance posterior (the mixture's own mean may not be).
+            let mut per_draw: Vec<f64> = comp
                 .means
                 .iter()
                 .zip(&comp.vars)
                 .map(|(m, v)| (m + 0.5 * v).exp())
-                .sum::<f64>()
-                / n;
-            let m2 = comp
-                .means
-                .iter()
-                .zip(&comp.vars)
-                .map(|(m, v)| (2.0 * m + 2.0 * v).exp())
-                .sum::<f64>()
-                / n;
+                .collect();
+            per_draw.sort_unstable_by(f64::total_cmp);
             (
-                m1,
-                (m2 - m1 * m1).max(0.0).sqrt(),
+                median_sorted(&per_draw),
+                None,
                 q.iter().map(|z| z.exp()).collect(),
             )
         }

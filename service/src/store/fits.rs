@@ -163,7 +163,7 @@ async fn insert_forecasts(
                 .push_bind(&f.scenario)
                 .push_bind(f.last_observed_year)
                 .push_bind(finite(f.mean))
-                .push_bind(finite(f.sd))
+                .push_bind(f.sd.and_then(finite))
                 .push_bind(finite(f.q025))
                 .push_bind(finite(f.q10))
                 .push_bind(finite(f.q25))
