@@ -144,6 +144,7 @@ fn expected_sql(what: &str, series: Option<&str>) -> (Vec<&'static str>, String)
                 "share_groups",
                 "share_residual",
                 "share_estimation",
+                "prior_only",
             ];
             let sql = format!(
                 "SELECT {} FROM latest_forecasts {} ORDER BY series, target, site, year, scenario",

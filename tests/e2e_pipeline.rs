@@ -756,3 +756,62 @@ fn a_value_out_of_the_models_range_is_excluded_with_its_reason() {
     );
     assert!(!out.contains("constant") && !out.contains("prior"), "{out}");
 }
+
+#[test]
+fn next_year_rows_of_a_single_year_network_are_marked_prior_only_until_a_second_year_arrives() {
+    let config = ConfigBuilder::new()
+        .series(CHLOROPHYLL)
+        .sampler(Sampler {
+            min_ess: 100,
+            ..Default::default()
+        })
+        .build();
+    let net = Network::with_config(&config);
+    net.ok(&["init"]);
+    let rows = common::network_rows(15, 2);
+    let (first, second): (Vec<_>, Vec<_>) = rows.into_iter().partition(|r| r.1 == 2001);
+    let lakes = first
+        .iter()
+        .map(|r| r.0.as_str())
+        .collect::<std::collections::BTreeSet<_>>()
+        .len();
+    net.drop_file("2001.csv", common::csv(&first));
+    net.ok(&["run-once"]);
+    let marked = |net: &Network| {
+        net.sqlite3(
+            "SELECT target, COALESCE(prior_only, '-'), COUNT(*) FROM latest_forecasts
+             GROUP BY target, prior_only ORDER BY target",
+        )
+    };
+    // One year: the year sd is its prior, so every next-year row says so; rows in the
+    // observed year know its effect and are not marked.
+    assert_eq!(
+        marked(&net),
+        format!(
+            "known_site_known_year|-|{lakes}\nknown_site_new_year|year|{lakes}\n\
+             new_site_known_year|-|1\nnew_site_new_year|year|1\n"
+        )
+    );
+    let message =
+        net.scalar("SELECT f.message FROM latest_fits lf JOIN fits f ON f.fit_id = lf.fit_id");
+    assert!(
+        message.text().contains("`year` has a single level"),
+        "{message:?}"
+    );
+    // A second year: the year sd is estimated, nothing is marked.
+    net.drop_file("2002.csv", common::csv(&second));
+    net.ok(&["run-once"]);
+    assert_eq!(
+        net.scalar("SELECT MAX(version) FROM latest_fits"),
+        Value::Int(2)
+    );
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM latest_forecasts WHERE prior_only IS NOT NULL"),
+        Value::Int(0)
+    );
+    // The earlier version keeps its marks (published rows never change).
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM forecasts f JOIN fits USING (fit_id) WHERE fits.version = 1 AND f.prior_only = 'year'"),
+        Value::Int(lakes as i64 + 1)
+    );
+}

@@ -115,6 +115,7 @@ fn contract_tables_and_columns_exist() {
                 "share_groups",
                 "share_residual",
                 "share_estimation",
+                "prior_only",
             ],
         ),
         (
@@ -154,6 +155,7 @@ fn contract_tables_and_columns_exist() {
                 "share_groups",
                 "share_residual",
                 "share_estimation",
+                "prior_only",
             ],
         ),
         (

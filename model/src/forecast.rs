@@ -183,6 +183,12 @@ pub struct ForecastRow {
     pub share_groups: f64,
     pub share_residual: f64,
     pub share_estimation: f64,
+    /// The variance components of the parts this row does not know whose factor was
+    /// observed at a single level (one site, one year, one crew): their posterior is the
+    /// prior, so that part of the row's uncertainty is assumed, not estimated. Empty when
+    /// every such component was estimated from the data.
+    #[serde(default)]
+    pub prior_only: Vec<String>,
 }
 
 const PROBS: [f64; 7] = [0.5, 0.25, 0.75, 0.1, 0.9, 0.025, 0.975];
@@ -388,6 +394,8 @@ struct RowSpec<'a> {
     /// Mean variance over draws of the site, year, groups and residual parts the target
     /// does not know (0 for a known part).
     var_parts: [f64; 4],
+    /// See [`ForecastRow::prior_only`].
+    prior_only: Vec<String>,
 }
 
 fn row_from(spec: RowSpec, comp: &Predictive) -> ForecastRow {
@@ -441,6 +449,7 @@ fn row_from(spec: RowSpec, comp: &Predictive) -> ForecastRow {
         share_groups: group_var / total,
         share_residual: resid_var / total,
         share_estimation: var_m / total,
+        prior_only: spec.prior_only,
     }
 }
 
@@ -466,6 +475,25 @@ pub fn forecast(
     let site_var = avg(&|d| sd2(d, 1));
     let year_var = avg(&|d| sd2(d, 2));
     let group_var = avg(&|d| (3..m).map(|k| sd2(d, k)).sum());
+    // Further groups are never known to a forecast; a new site or year only on its targets.
+    let single_level_groups: Vec<String> = basis
+        .group_names
+        .iter()
+        .zip(&basis.group_labels)
+        .filter(|(_, labels)| labels.len() == 1)
+        .map(|(name, _)| name.clone())
+        .collect();
+    let prior_only = |target: ForecastTarget| -> Vec<String> {
+        let mut names = Vec::new();
+        if target.new_site() && n_sites == 1 {
+            names.push("site".to_string());
+        }
+        if target.new_year() && basis.year_labels.len() == 1 {
+            names.push("year".to_string());
+        }
+        names.extend(single_level_groups.iter().cloned());
+        names
+    };
     let spec = |target: ForecastTarget, site: Option<String>, year: i32| RowSpec {
         target,
         site,
@@ -478,6 +506,7 @@ pub fn forecast(
             group_var,
             resid_var,
         ],
+        prior_only: prior_only(target),
     };
     let year_index = |y: i32| basis.year_labels.binary_search(&y).ok();
 

@@ -278,3 +278,38 @@ fn predictive_reproduces_the_forecast_rows_and_refuses_unknown_levels() {
     assert!(predictive(&b, None, Some(4), &[]).is_err());
     assert!(predictive(&b, None, None, &[None, None]).is_err());
 }
+
+/// Rows name the unknown parts whose factor was seen at a single level: the prior alone
+/// sets their variance. Here one site and one crew level, four years.
+#[test]
+fn rows_name_the_components_their_prior_alone_sets() {
+    let mut b = basis();
+    let n = b.n;
+    b.site_labels.truncate(1);
+    b.site.truncate(n);
+    b.site_last_year.truncate(1);
+    b.group_labels = vec![vec!["a".into()]];
+    b.groups[0].truncate(n);
+    let rows = forecast_baseline(&b, Transform::None);
+    let names = |t: ForecastTarget| -> Vec<Vec<String>> {
+        let mut v: Vec<Vec<String>> = rows
+            .iter()
+            .filter(|r| r.target == t)
+            .map(|r| r.prior_only.clone())
+            .collect();
+        v.dedup();
+        v
+    };
+    let s = |v: &[&str]| vec![v.iter().map(|x| x.to_string()).collect::<Vec<_>>()];
+    assert_eq!(names(ForecastTarget::KnownSiteKnownYear), s(&["crew"]));
+    assert_eq!(names(ForecastTarget::KnownSiteNewYear), s(&["crew"]));
+    assert_eq!(
+        names(ForecastTarget::NewSiteKnownYear),
+        s(&["site", "crew"])
+    );
+    assert_eq!(names(ForecastTarget::NewSiteNewYear), s(&["site", "crew"]));
+    // The full basis (3 sites, 4 years, 2 crews) marks nothing.
+    assert!(forecast_baseline(&basis(), Transform::None)
+        .iter()
+        .all(|r| r.prior_only.is_empty()));
+}

@@ -235,6 +235,7 @@ async fn build_from(store: &crate::store::Store, args: &ExportArgs) -> anyhow::R
                 ("share_groups", OptReal(col(&r, |x| x.share_groups))),
                 ("share_residual", OptReal(col(&r, |x| x.share_residual))),
                 ("share_estimation", OptReal(col(&r, |x| x.share_estimation))),
+                ("prior_only", OptText(col(&r, |x| x.prior_only.clone()))),
             ]
         }
         ExportWhat::Posterior => {

@@ -30,6 +30,7 @@ pub struct ForecastExportRow {
     pub share_groups: Option<f64>,
     pub share_residual: Option<f64>,
     pub share_estimation: Option<f64>,
+    pub prior_only: Option<String>,
 }
 
 /// One `posterior_summary` row of a series' latest published version.
@@ -88,7 +89,8 @@ impl Store {
         sqlx::query_as(
             "SELECT series, fit_id, target, site, year, scenario, scenario_covariates,
                     last_observed_year, mean, sd, q025, q10, q25, q50, q75, q90, q975,
-                    share_site, share_year, share_groups, share_residual, share_estimation
+                    share_site, share_year, share_groups, share_residual, share_estimation,
+                    prior_only
              FROM latest_forecasts
              WHERE (?1 IS NULL OR series = ?1) AND (?2 IS NULL OR target = ?2)
              ORDER BY series, target, site, year, scenario",

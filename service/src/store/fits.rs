@@ -153,7 +153,7 @@ async fn insert_forecasts(
         let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
             "INSERT INTO forecasts (fit_id, target, site, year, scenario, last_observed_year, mean, sd, \
              q025, q10, q25, q50, q75, q90, q975, \
-             share_site, share_year, share_groups, share_residual, share_estimation) ",
+             share_site, share_year, share_groups, share_residual, share_estimation, prior_only) ",
         );
         q.push_values(chunk, |mut b, f| {
             b.push_bind(fit_id)
@@ -175,7 +175,8 @@ async fn insert_forecasts(
                 .push_bind(finite(f.share_year))
                 .push_bind(finite(f.share_groups))
                 .push_bind(finite(f.share_residual))
-                .push_bind(finite(f.share_estimation));
+                .push_bind(finite(f.share_estimation))
+                .push_bind((!f.prior_only.is_empty()).then(|| f.prior_only.join(",")));
         });
         q.build().execute(&mut **tx).await?;
     }
