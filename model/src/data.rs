@@ -266,6 +266,30 @@ impl Data {
         }
         last
     }
+    /// Per covariate, each site's own value (index-aligned with `site_labels`) when the
+    /// covariate is an attribute of the site — the same value at every visit of every site
+    /// (the build guarantees replicated sites, so "the same" means something) — else
+    /// `None`. Known-site forecasts hold such a covariate at the site's value: the
+    /// site's effect was estimated beside it, so the network mean would shift that site by
+    /// the coefficient times its distance from the mean.
+    pub fn site_level_covariates(&self) -> Vec<Option<Vec<f64>>> {
+        let n_sites = self.n_sites();
+        self.covariates
+            .iter()
+            .map(|column| {
+                let mut value: Vec<Option<f64>> = vec![None; n_sites];
+                for (&s, &x) in self.site.iter().zip(column) {
+                    match value[s as usize] {
+                        None => value[s as usize] = Some(x),
+                        Some(v) if v == x => {}
+                        Some(_) => return None,
+                    }
+                }
+                // Every site has at least one visit, so every entry is set.
+                value.into_iter().collect()
+            })
+            .collect()
+    }
     /// Network mean of each covariate (original units).
     pub fn covariate_means(&self) -> Vec<f64> {
         self.covariates
@@ -373,6 +397,27 @@ mod tests {
             cov.iter().map(|s| s.to_string()).collect(),
             groups.iter().map(|s| s.to_string()).collect(),
         )
+    }
+
+    #[test]
+    fn a_covariate_constant_within_every_site_is_an_attribute_of_the_site() {
+        // depth: one value per site; temp: varies within site b.
+        let mut b = builder(&["depth", "temp"], &[]);
+        for (site, year, depth, temp, y) in [
+            ("a", 2000, 3.0, 10.0, 1.0),
+            ("a", 2001, 3.0, 10.0, 1.4),
+            ("b", 2000, 8.0, 11.0, 2.0),
+            ("b", 2001, 8.0, 12.5, 2.1),
+            ("c", 2001, 5.0, 9.0, 1.7),
+            ("c", 2002, 5.0, 9.0, 1.1),
+        ] {
+            b.push(site, year, &[], &[depth, temp], y).unwrap();
+        }
+        let d = b.build().unwrap();
+        assert_eq!(
+            d.site_level_covariates(),
+            vec![Some(vec![3.0, 8.0, 5.0]), None]
+        );
     }
 
     #[test]

@@ -35,6 +35,11 @@ pub struct ForecastBasis {
     pub group_names: Vec<String>,
     pub group_labels: Vec<Vec<String>>,
     pub covariate_means: Vec<f64>,
+    /// Per covariate, each monitored site's own value when the covariate is an attribute
+    /// of the site (constant within every site), else `None`; known-site rows hold such a
+    /// covariate at the site's value instead of the network mean.
+    #[serde(default)]
+    pub site_covariates: Vec<Option<Vec<f64>>>,
     pub site_last_year: Vec<i32>,
     /// Number of joint draws.
     pub n: usize,
@@ -323,8 +328,26 @@ pub fn predictive(
             basis.covariate_means.len()
         ));
     }
-    let fixed = fixed_part(basis, covariates);
+    let fixed = fixed_part(basis, &covariates_at(basis, site, covariates));
     Ok(predictive_from(basis, &fixed, site, year))
+}
+
+/// The covariate values a row is computed at: the given ones; for a monitored site, its
+/// own value of each covariate that is an attribute of the site; else `None` (the network
+/// mean, which is also the baseline of within-site varying covariates and of new sites).
+fn covariates_at(
+    basis: &ForecastBasis,
+    site: Option<usize>,
+    given: &[Option<f64>],
+) -> Vec<Option<f64>> {
+    (0..basis.covariate_means.len())
+        .map(|j| {
+            given.get(j).copied().flatten().or_else(|| {
+                let values = basis.site_covariates.get(j)?.as_ref()?;
+                site.and_then(|s| values.get(s).copied())
+            })
+        })
+        .collect()
 }
 
 /// Model-scale mean of the fixed part per draw: the mean at the network's average
@@ -469,6 +492,12 @@ pub fn forecast(
     let n_sites = basis.site_labels.len();
     let next_year = basis.data_through_year() + 1;
     let fixed = fixed_part(basis, &scenario.covariates);
+    // Whether a known site's row needs its own fixed part (a site-level covariate the
+    // scenario leaves at its baseline).
+    let site_level = (0..basis.covariate_means.len()).any(|j| {
+        scenario.covariates.get(j).copied().flatten().is_none()
+            && basis.site_covariates.get(j).is_some_and(|v| v.is_some())
+    });
     let sd2 = |d: usize, k: usize| basis.sd[d * m + k].powi(2);
     let avg = |f: &dyn Fn(usize) -> f64| (0..basis.n).map(f).sum::<f64>() / basis.n as f64;
     let resid_var = avg(&|d| sd2(d, 0));
@@ -525,7 +554,12 @@ pub fn forecast(
                     let year = basis.site_last_year[s];
                     (year, year_index(year))
                 };
-                let comp = predictive_from(basis, &fixed, Some(s), t);
+                let comp = if site_level {
+                    let at = covariates_at(basis, Some(s), &scenario.covariates);
+                    predictive_from(basis, &fixed_part(basis, &at), Some(s), t)
+                } else {
+                    predictive_from(basis, &fixed, Some(s), t)
+                };
                 let mut row = row_from(
                     spec(target, Some(basis.site_labels[s].clone()), year),
                     &comp,

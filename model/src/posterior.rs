@@ -107,6 +107,9 @@ pub struct Posterior {
     pub group_names: Vec<String>,
     pub group_labels: Vec<Vec<String>>,
     pub covariate_means: Vec<f64>,
+    /// Per covariate, each site's value when it is an attribute of the site
+    /// ([`Data::site_level_covariates`]).
+    pub site_covariates: Vec<Option<Vec<f64>>>,
     /// Latest observed year of each site.
     pub site_last_year: Vec<i32>,
     pub n_obs: usize,
@@ -180,6 +183,7 @@ impl Posterior {
             group_names: self.group_names.clone(),
             group_labels: self.group_labels.clone(),
             covariate_means: self.covariate_means.clone(),
+            site_covariates: self.site_covariates.clone(),
             site_last_year: self.site_last_year.clone(),
             n: cols.len(),
             draw_index: cols.iter().map(|&c| eff.draw_index[c]).collect(),
@@ -449,6 +453,7 @@ fn assemble(
         group_names: data.group_names.clone(),
         group_labels: data.group_labels.clone(),
         covariate_means: data.covariate_means(),
+        site_covariates: data.site_level_covariates(),
         site_last_year: data.site_last_year(),
         n_obs: data.n_obs(),
         chains,

@@ -65,6 +65,7 @@ fn basis() -> ForecastBasis {
         group_names: vec!["crew".into()],
         group_labels: vec![vec!["a".into(), "b".into()]],
         covariate_means: vec![10.0],
+        site_covariates: vec![None],
         site_last_year: vec![2004, 2003, 2002],
         n,
         draw_index: (0..n).collect(),
@@ -139,12 +140,24 @@ fn moments(v: &[f64]) -> (f64, f64, f64) {
 }
 
 fn check_rows(transform: Transform, scenario: &Scenario, x: f64) {
-    let b = basis();
+    check_rows_of(&basis(), transform, scenario, |_| x);
+}
+
+/// [`check_rows`] on a given basis, each row's Monte Carlo at the covariate value `x_of`
+/// says that row should be computed at.
+fn check_rows_of(
+    b: &ForecastBasis,
+    transform: Transform,
+    scenario: &Scenario,
+    x_of: impl Fn(&ForecastRow) -> f64,
+) {
+    let b = b.clone();
     let rows = forecast(&b, transform, scenario);
     assert_eq!(rows.len(), 3 + 3 + 4 + 1);
     let mut rng = ChaCha8Rng::seed_from_u64(7);
     let n_vals = (N_DRAWS * K) as f64;
     for row in &rows {
+        let x = x_of(row);
         let at = format!(
             "{} {:?} {} ({transform}, x = {x})",
             row.target.as_str(),
@@ -263,6 +276,56 @@ fn a_covariate_scenario_moves_every_target_by_its_coefficient_draws() {
 #[test]
 fn log_scale_targets_equal_a_plain_monte_carlo_of_the_back_transformed_values() {
     check_rows(Transform::Log, &Scenario::baseline(), 10.0);
+}
+
+/// Site depths for the site-level covariate tests: far enough from the network mean (10)
+/// that holding them at the mean moves a known-site row by many Monte Carlo errors.
+const DEPTHS: [f64; 3] = [6.0, 10.5, 15.0];
+
+fn site_level_basis() -> ForecastBasis {
+    let mut b = basis();
+    b.site_covariates = vec![Some(DEPTHS.to_vec())];
+    b
+}
+
+fn depth_of(b: &ForecastBasis, row: &ForecastRow) -> f64 {
+    match &row.site {
+        Some(label) => DEPTHS[b.site_labels.iter().position(|s| s == label).unwrap()],
+        None => 10.0,
+    }
+}
+
+/// A covariate that is an attribute of the site: known-site rows at the site's own value,
+/// new-site rows at the network mean.
+#[test]
+fn a_site_level_covariate_is_held_at_each_known_sites_own_value() {
+    let b = site_level_basis();
+    check_rows_of(&b, Transform::None, &Scenario::baseline(), |r| {
+        depth_of(&b, r)
+    });
+    check_rows_of(&b, Transform::Log, &Scenario::baseline(), |r| {
+        depth_of(&b, r)
+    });
+    // The public predictive follows the same rule.
+    let rows = forecast_baseline(&b, Transform::None);
+    let row = rows
+        .iter()
+        .find(|r| r.target == ForecastTarget::KnownSiteNewYear && r.site.as_deref() == Some("s1"))
+        .unwrap();
+    assert_eq!(
+        predictive(&b, Some(0), None, &[]).unwrap().quantile(0.1),
+        row.q10
+    );
+}
+
+/// A scenario's value overrides the site's own value, for every row.
+#[test]
+fn a_scenario_value_overrides_a_site_level_covariate() {
+    let scenario = Scenario {
+        name: "x14".into(),
+        covariates: vec![Some(14.0)],
+    };
+    check_rows_of(&site_level_basis(), Transform::None, &scenario, |_| 14.0);
 }
 
 /// The predictive the calibration study scores with is the one the rows come from.

@@ -27,6 +27,7 @@ fn basis(c: f64, residual: f64, site: f64, year_sd: &[f64]) -> ForecastBasis {
         group_names: vec![],
         group_labels: vec![],
         covariate_means: vec![],
+        site_covariates: vec![],
         site_last_year: vec![2020],
         n,
         draw_index: (0..n).collect(),

@@ -7,8 +7,10 @@
 //! `term`, `level` (nullable), `chains`, `draws_per_chain` and `values` (a list of
 //! `chains x draws_per_chain` numbers, chain after chain). `basis/draw_index` holds, per
 //! kept joint draw, its index into the full `sd`/`coef` draws (chain-major); `data`
-//! rows hold the covariate means (`covariate_mean`, level = covariate) and each site's
-//! latest observed year (`site_last_year`, level = site).
+//! rows hold the covariate means (`covariate_mean`, level = covariate), each site's
+//! latest observed year (`site_last_year`, level = site) and, for a covariate that is an
+//! attribute of the site, every site's value in the order of the `effect/site` rows
+//! (`site_covariate`, level = covariate).
 
 use std::sync::Arc;
 
@@ -125,9 +127,17 @@ pub fn encode(post: &Posterior, basis: &ForecastBasis) -> Result<Vec<u8>, ArrowE
         + basis.year_labels.len()
         + basis.group_labels.iter().map(Vec::len).sum::<usize>()
         + 1;
-    let data_rows = basis.covariate_means.len() + basis.site_labels.len();
+    let site_level: Vec<(&String, &Vec<f64>)> = post.coef_names[1..]
+        .iter()
+        .zip(&basis.site_covariates)
+        .filter_map(|(name, v)| v.as_ref().map(|v| (name, v)))
+        .collect();
+    let data_rows = basis.covariate_means.len() + basis.site_labels.len() + site_level.len();
     let n_rows = m + p + effect_rows + data_rows;
-    let n_values = c * d * (m + p) + basis.n * effect_rows + data_rows;
+    let n_values = c * d * (m + p)
+        + basis.n * effect_rows
+        + data_rows
+        + site_level.len() * basis.site_labels.len();
     let mut rows = Rows::with_capacity(n_rows, n_values);
     for (k, name) in post.sd_names.iter().enumerate() {
         rows.push(
@@ -214,6 +224,16 @@ pub fn encode(post: &Posterior, basis: &ForecastBasis) -> Result<Vec<u8>, ArrowE
             1,
             1,
             std::iter::once(*year as f64),
+        );
+    }
+    for (name, values) in &site_level {
+        rows.push(
+            "data",
+            "site_covariate",
+            Some(name),
+            1,
+            values.len(),
+            values.iter().copied(),
         );
     }
 
@@ -318,6 +338,7 @@ pub fn decode(blob: &[u8]) -> Result<Decoded, ArrowError> {
     let mut draw_index: Vec<f64> = Vec::new();
     let mut covariate_means = Vec::new();
     let mut site_last_year: Vec<(String, i32)> = Vec::new();
+    let mut site_covariates: std::collections::HashMap<String, Vec<f64>> = Default::default();
     let (mut chains, mut draws) = (0usize, 0usize);
     for row in stored_rows(blob)? {
         let StoredRow {
@@ -339,6 +360,9 @@ pub fn decode(blob: &[u8]) -> Result<Decoded, ArrowError> {
             "data" if term == "covariate_mean" => covariate_means.push(v[0]),
             "data" if term == "site_last_year" => {
                 site_last_year.push((level.unwrap_or_default(), v[0] as i32))
+            }
+            "data" if term == "site_covariate" => {
+                site_covariates.insert(level.unwrap_or_default(), v);
             }
             _ => {}
         }
@@ -398,7 +422,17 @@ pub fn decode(blob: &[u8]) -> Result<Decoded, ArrowError> {
         }
     }
     let last: std::collections::HashMap<String, i32> = site_last_year.into_iter().collect();
+    // Files written before site-level covariates were kept have none: the network mean.
+    let site_covariates = coef[1..]
+        .iter()
+        .map(|(name, _)| {
+            site_covariates
+                .remove(name)
+                .filter(|v| v.len() == site_labels.len())
+        })
+        .collect();
     let basis = ForecastBasis {
+        site_covariates,
         coef_names: coef.iter().map(|(n, _)| n.clone()).collect(),
         site_last_year: site_labels
             .iter()
