@@ -798,6 +798,18 @@ fn next_year_rows_of_a_single_year_network_are_marked_prior_only_until_a_second_
         message.text().contains("`year` has a single level"),
         "{message:?}"
     );
+    let report = |net: &Network| {
+        let path = net.path("report.html");
+        net.ok(&["report", "--out", path.to_str().unwrap()]);
+        std::fs::read_to_string(path).expect("the report")
+    };
+    let page = report(&net);
+    assert!(
+        page.contains("Assumed, not estimated")
+            && page.contains("<code>known_site_new_year</code>: year")
+            && page.contains("<code>new_site_new_year</code>: year"),
+        "the report names the prior-only rows"
+    );
     // A second year: the year sd is estimated, nothing is marked.
     net.drop_file("2002.csv", common::csv(&second));
     net.ok(&["run-once"]);
@@ -809,6 +821,7 @@ fn next_year_rows_of_a_single_year_network_are_marked_prior_only_until_a_second_
         net.scalar("SELECT COUNT(*) FROM latest_forecasts WHERE prior_only IS NOT NULL"),
         Value::Int(0)
     );
+    assert!(!report(&net).contains("Assumed, not estimated"));
     // The earlier version keeps its marks (published rows never change).
     assert_eq!(
         net.scalar("SELECT COUNT(*) FROM forecasts f JOIN fits USING (fit_id) WHERE fits.version = 1 AND f.prior_only = 'year'"),

@@ -78,6 +78,9 @@ pub struct SeriesSection {
     pub unserved_attempt: Option<FitSummary>,
     pub drift: Option<SeriesDrift>,
     pub widths: Vec<TargetWidths>,
+    /// `(target, components)` of the latest version's rows whose width partly rests on a
+    /// prior alone (`forecasts.prior_only`), one entry per distinct pair.
+    pub prior_only: Vec<(String, String)>,
     /// Every site effect of the latest version, lowest median first.
     pub site_effects: Vec<SiteEffect>,
     /// The sites drawn one chart each, in the order drawn.
@@ -235,16 +238,26 @@ impl Report {
             });
             let rows = store.variance_components(Some(name)).await?;
             let drift = drift::build(&rows).series.into_iter().next();
-            let (widths, site_effects) = match &latest {
+            let (widths, prior_only, site_effects) = match &latest {
                 Some(fit) => {
                     let intervals = store.forecast_intervals(fit.fit_id).await?;
+                    let mut prior_only: Vec<(String, String)> = intervals
+                        .iter()
+                        .filter_map(|f| Some((f.target.clone(), f.prior_only.clone()?)))
+                        .collect();
+                    prior_only.sort();
+                    prior_only.dedup();
                     let rows: Vec<_> = intervals
                         .into_iter()
                         .map(|f| (f.target, f.q10, f.q90))
                         .collect();
-                    (target_widths(&rows), store.site_effects(fit.fit_id).await?)
+                    (
+                        target_widths(&rows),
+                        prior_only,
+                        store.site_effects(fit.fit_id).await?,
+                    )
                 }
-                None => (Vec::new(), Vec::new()),
+                None => (Vec::new(), Vec::new(), Vec::new()),
             };
             let mut panels = Vec::new();
             let mut unknown_sites = Vec::new();
@@ -283,6 +296,7 @@ impl Report {
                 unserved_attempt,
                 drift,
                 widths,
+                prior_only,
                 site_effects,
                 panels,
                 panels_named: !sites.is_empty(),

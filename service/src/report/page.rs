@@ -175,6 +175,28 @@ fn section(out: &mut String, s: &SeriesSection) -> Result<(), ReportError> {
             charts::interval_widths(&s.widths, &width_units)?
         );
     }
+    if !s.prior_only.is_empty() {
+        let items: Vec<String> = s
+            .prior_only
+            .iter()
+            .map(|(target, parts)| {
+                format!(
+                    "<code>{}</code>: {}",
+                    html_escape::encode_text(target),
+                    html_escape::encode_text(parts)
+                )
+            })
+            .collect();
+        let _ = writeln!(
+            out,
+            "<p class=\"caution\"><b>Assumed, not estimated.</b> Part of these forecasts' \
+             uncertainty comes from a variance the data cannot estimate yet, because its factor \
+             was observed at a single level (one year, one site or one group level): its \
+             posterior is its prior, so that part of the interval width is an assumption \
+             (column <code>prior_only</code>). {}.</p>",
+            items.join("; ")
+        );
+    }
 
     // (c) Site effects, ranked.
     if !s.site_effects.is_empty() {

@@ -12,6 +12,8 @@ pub struct ForecastInterval {
     pub target: String,
     pub q10: Option<f64>,
     pub q90: Option<f64>,
+    /// The row's variance components set by their prior alone (`forecasts.prior_only`).
+    pub prior_only: Option<String>,
 }
 
 /// The posterior summary of one site effect of a fit.
@@ -65,7 +67,8 @@ impl Store {
         fit_id: i64,
     ) -> Result<Vec<ForecastInterval>, StoreError> {
         sqlx::query_as(
-            "SELECT target, q10, q90 FROM forecasts WHERE fit_id = ?1 ORDER BY target, site, year",
+            "SELECT target, q10, q90, prior_only FROM forecasts WHERE fit_id = ?1
+             ORDER BY target, site, year",
         )
         .bind(fit_id)
         .fetch_all(&self.pool)
