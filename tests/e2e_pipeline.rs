@@ -916,3 +916,88 @@ fn a_site_level_covariate_places_each_known_site_at_its_own_value() {
         .sqlite3("SELECT target, site, year, q10, q50, q90 FROM latest_forecasts ORDER BY 1, 2, 3");
     assert_eq!(before, after);
 }
+
+/// Invented test data: the phosphorus series (as measured, no covariates) of a generated
+/// network for the given years, every value multiplied by `factor`.
+fn phosphorus_feed(years: std::ops::Range<i32>, factor: f64) -> String {
+    let spec = NetworkSpec {
+        sites: 15,
+        years: 8,
+        missing: 0.1,
+        covariates: 0,
+        sd_site: 0.5,
+        sd_year: 0.3,
+        intercept: 20.0,
+        first_year: 2015,
+        seed: 23,
+        ..Default::default()
+    };
+    let (rows, _) = simulate_rows(&spec);
+    let mut out = String::from("lake,season,visit,tp_ug_l\n");
+    let mut visit = std::collections::HashMap::new();
+    for r in rows.iter().filter(|r| years.contains(&r.year)) {
+        let v = visit.entry((r.site, r.year)).or_insert(0);
+        *v += 1;
+        out.push_str(&format!(
+            "Lake {:02},{},{},{:.6}\n",
+            r.site,
+            r.year,
+            v,
+            r.y * factor
+        ));
+    }
+    out
+}
+
+/// Every value re-sent in another unit (x1000, e.g. mg/l to µg/l): the model refuses the
+/// warm start before sampling, so the refit goes straight to the cold start, runs one
+/// sampled attempt and records the reason in the version's message.
+#[test]
+fn a_unit_change_goes_straight_to_a_cold_start_with_the_reason() {
+    let config = ConfigBuilder::new()
+        .series(common::PHOSPHORUS)
+        .sampler(Sampler {
+            seed: 3,
+            ..Default::default()
+        })
+        .build();
+    let net = Network::with_config(&config);
+    net.ok(&["init"]);
+    net.drop_file("a.csv", phosphorus_feed(2015..2021, 1.0));
+    net.ok(&["run-once"]);
+    net.drop_file("b-in-new-units.csv", phosphorus_feed(2015..2021, 1000.0));
+    let out = net
+        .command(&["run-once"])
+        .env("RUST_LOG", "tidemark_service=info")
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(out.status.success(), "{stdout}\n{stderr}");
+    assert!(stdout.contains("published version 2"), "{stdout}");
+    let row = &net.sql(
+        "SELECT warm_start_from, warmup, message FROM fits WHERE version = 2 AND status = 'published'",
+    )[0];
+    assert!(
+        row[0].is_null(),
+        "the version must come from a cold start: {row:?}"
+    );
+    assert_eq!(row[1], Value::Int(300), "cold warm-up: {row:?}");
+    let message = row[2].text();
+    assert!(
+        message.contains(
+            "warm start refused: the new data conflict with the previous version's posterior"
+        ) && message.contains("the residual standard deviation is")
+            && message.contains("unit or scale")
+            && message.contains("started cold"),
+        "{message}"
+    );
+    assert!(!message.contains("failed the gate"), "{message}");
+    // One sampled attempt: one gate line in the log (the warm start never sampled).
+    let gate_lines = stderr
+        .lines()
+        .filter(|l| l.contains("min bulk-ESS"))
+        .count();
+    assert_eq!(gate_lines, 1, "{stderr}");
+    assert!(stderr.contains("starting cold"), "{stderr}");
+}

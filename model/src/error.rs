@@ -56,4 +56,8 @@ pub enum ModelError {
     Numerical(String),
     #[error("the fit was cancelled")]
     Cancelled,
+    /// The previous version's posterior conflicts with the new data
+    /// ([`crate::check_warm_start`]); nothing was sampled, and a cold start is the way on.
+    #[error("warm start refused: {reason}")]
+    WarmStartRefused { reason: String, distance: f64 },
 }

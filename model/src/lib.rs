@@ -45,6 +45,9 @@ pub use posterior::{
     Summary, SummaryKind,
 };
 pub use sampler::{Controls, Progress, SamplerSettings, WarmStart};
+mod warm;
+pub use posterior::check_warm_start;
+pub use warm::{conflict_threshold, WarmPlan, CONFLICT_TAIL, REFIT_ESS_PER_COMPONENT};
 mod forecast;
 pub mod simulate;
 pub use forecast::{
@@ -52,4 +55,5 @@ pub use forecast::{
     Predictive, Scenario, Transform,
 };
 pub mod calibration;
+pub mod refits;
 pub mod sbc;

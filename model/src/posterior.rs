@@ -1,5 +1,6 @@
 //! Entry point of the Bayesian fit: start values (a Laplace fit of the marginal posterior
-//! of the log standard deviations, or the previous version's posterior), the chains, and
+//! of the log standard deviations, or the previous version's posterior re-centred on the
+//! data, `warm.rs`), the chains, and
 //! the assembled posterior with its summaries and diagnostics.
 
 use crate::data::Data;
@@ -13,9 +14,8 @@ use crate::sampler::{
     run_chain, ChainOutput, ChainStart, Controls, Fit, SamplerSettings, Target, WarmStart,
 };
 use crate::stats::SuffStats;
+use crate::warm::{overdispersed_starts, WarmPlan};
 use nalgebra::{DMatrix, DVector};
-use rand::SeedableRng;
-use rand_chacha::ChaCha8Rng;
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
@@ -227,10 +227,83 @@ pub(crate) fn basis_columns(available: usize, keep: usize) -> Vec<usize> {
         .collect()
 }
 
+/// What every fit of a data set computes before its chains: the sufficient statistics,
+/// the resolved priors and the coefficients' prior in the chains' parameterisation.
+struct Prepared {
+    stats: SuffStats,
+    sd_names: Vec<String>,
+    resolved: ResolvedPriors,
+    beta_prior: BetaPrior,
+}
+
+impl Prepared {
+    fn new(data: &Data, priors: &Priors) -> Result<Prepared, ModelError> {
+        let stats = SuffStats::new(data);
+        let sd_names = data.sd_names();
+        let resolved =
+            priors.resolve(&sd_names, &data.covariate_names, stats.y_mean, stats.y_sd)?;
+        let beta_prior = beta_prior(&resolved, &stats);
+        Ok(Prepared {
+            stats,
+            sd_names,
+            resolved,
+            beta_prior,
+        })
+    }
+
+    fn target(&self) -> Target<'_> {
+        Target {
+            stats: &self.stats,
+            sd_priors: self.resolved.sd.iter().map(|(_, p)| *p).collect(),
+            beta_prior: self.beta_prior.clone(),
+        }
+    }
+}
+
+/// Whether `warm` describes the data's variance components, with consistent sizes; the
+/// reason when it does not.
+fn warm_fits(warm: &WarmStart, sd_names: &[String]) -> Result<(), String> {
+    let m = sd_names.len();
+    if warm.sd_names != sd_names {
+        return Err(format!(
+            "the previous version has the variance components {:?}, the data {:?}",
+            warm.sd_names, sd_names
+        ));
+    }
+    if warm.log_sd_mean.len() != m || warm.log_sd_cov.len() != m * m {
+        return Err("the previous version's posterior moments have the wrong size".into());
+    }
+    Ok(())
+}
+
+/// Check a warm start against the data before sampling (what [`sample`] does first with
+/// its `warm`): the re-centred start points, or [`ModelError::WarmStartRefused`] with the
+/// reason when the data conflict with the previous posterior or describe other variance
+/// components. The method and its threshold are in `warm.rs` (README, "Warm starts").
+pub fn check_warm_start(
+    data: &Data,
+    priors: &Priors,
+    settings: &SamplerSettings,
+    warm: &WarmStart,
+) -> Result<WarmPlan, ModelError> {
+    settings.validate()?;
+    let prep = Prepared::new(data, priors)?;
+    warm_fits(warm, &prep.sd_names).map_err(|reason| ModelError::WarmStartRefused {
+        reason,
+        distance: f64::INFINITY,
+    })?;
+    let target = prep.target();
+    Ok(crate::warm::plan(&target, data, &prep.stats, settings, warm)?.0)
+}
+
 /// Fit the Bayesian model: draws from the exact posterior of every parameter.
 ///
-/// `warm`, when given and naming the same variance components, supplies the start points
-/// and the proposal, and the shorter `warm_warmup` is used.
+/// `warm`, when given and naming the same variance components, is checked against the
+/// data first ([`check_warm_start`]): a conflict returns
+/// [`ModelError::WarmStartRefused`] before any chain runs (the caller starts cold);
+/// otherwise its covariance, re-centred on the data, gives the proposal and the start
+/// points, and the shorter `warm_warmup` is used. A warm start naming other components is
+/// ignored (a cold start).
 pub fn sample(
     data: &Data,
     priors: &Priors,
@@ -239,64 +312,31 @@ pub fn sample(
     controls: Controls,
 ) -> Result<Posterior, ModelError> {
     settings.validate()?;
-    let stats = SuffStats::new(data);
-    let sd_names = data.sd_names();
-    let m = sd_names.len();
-    let resolved = priors.resolve(&sd_names, &data.covariate_names, stats.y_mean, stats.y_sd)?;
-    let beta_prior = beta_prior(&resolved, &stats);
-    let target = Target {
-        stats: &stats,
-        sd_priors: resolved.sd.iter().map(|(_, p)| *p).collect(),
-        beta_prior,
-    };
-
-    let warm = warm.filter(|w| {
-        w.sd_names == sd_names
-            && w.log_sd_mean.len() == m
-            && w.log_sd_cov.len() == m * m
-            && !w.chain_ends.is_empty()
-    });
+    let prep = Prepared::new(data, priors)?;
+    let stats = &prep.stats;
+    let target = prep.target();
+    let warm = warm.filter(|w| warm_fits(w, &prep.sd_names).is_ok());
     let mut warnings = data.warnings.clone();
-    let starts: Vec<ChainStart> = match warm {
+    let (fit, starts, warmup) = match warm {
         Some(w) => {
-            let cov = DMatrix::from_row_slice(m, m, &w.log_sd_cov);
-            let fit =
-                Fit::from_cov(DVector::from_vec(w.log_sd_mean.clone()), &cov).ok_or_else(|| {
-                    ModelError::Numerical("warm-start covariance is not positive definite".into())
-                })?;
-            (0..settings.chains)
-                .map(|c| ChainStart {
-                    eta: w.chain_ends[c % w.chain_ends.len()].clone(),
-                    fit: fit.clone(),
-                    warmup: settings.warm_warmup,
-                })
-                .collect()
+            let (plan, fit) = crate::warm::plan(&target, data, stats, settings, w)?;
+            (fit, plan.starts, settings.warm_warmup)
         }
         None => {
-            let fit = laplace(&target, data, &stats, &mut warnings)?;
-            // Over-dispersed start points, drawn from their own stream so that they do not
-            // depend on how chains are scheduled.
-            let mut rng = ChaCha8Rng::seed_from_u64(settings.seed);
-            rng.set_stream(0);
-            let wide = Fit {
-                mean: fit.mean.clone(),
-                chol: &fit.chol * 1.5,
-            };
-            (0..settings.chains)
-                .map(|_| {
-                    let z = DVector::from_fn(m, |_, _| {
-                        rand::Rng::sample::<f64, _>(&mut rng, rand_distr::StandardNormal)
-                    });
-                    let eta = &wide.mean + &wide.chol * z;
-                    ChainStart {
-                        eta: eta.iter().copied().collect(),
-                        fit: fit.clone(),
-                        warmup: settings.warmup,
-                    }
-                })
-                .collect()
+            let fit = laplace(&target, data, stats, &mut warnings)?;
+            let starts = overdispersed_starts(&fit, settings.chains, settings.seed);
+            (fit, starts, settings.warmup)
         }
     };
+    let starts: Vec<ChainStart> = starts
+        .into_iter()
+        .map(|eta| ChainStart {
+            eta,
+            fit: fit.clone(),
+            warmup,
+            warm: warm.is_some(),
+        })
+        .collect();
 
     let threads = if settings.threads == 0 {
         std::thread::available_parallelism().map_or(1, |n| n.get())
@@ -317,11 +357,17 @@ pub fn sample(
 
     let run = ChainRun {
         outputs,
-        warmup: starts[0].warmup,
+        warmup,
         warm_started: warm.is_some(),
     };
     Ok(assemble(
-        data, &stats, settings, resolved, run, warnings, &pool,
+        data,
+        stats,
+        settings,
+        prep.resolved.clone(),
+        run,
+        warnings,
+        &pool,
     ))
 }
 
@@ -340,7 +386,7 @@ fn beta_prior(resolved: &ResolvedPriors, stats: &SuffStats) -> BetaPrior {
 }
 
 /// Mode and curvature of the log posterior of the log standard deviations.
-fn laplace(
+pub(crate) fn laplace(
     target: &Target,
     data: &Data,
     stats: &SuffStats,

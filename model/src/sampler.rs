@@ -16,8 +16,9 @@
 //! Each transition is one of two Metropolis–Hastings kernels, chosen at random (a mixture
 //! of kernels that each leave the posterior invariant leaves it invariant too):
 //! - an *independence* proposal, a multivariate Student-t (5 df) centred on a Laplace
-//!   fit (or on the previous version's posterior when warm-started), re-fitted to the
-//!   chain's own warm-up draws; close to the posterior it moves in one step anywhere;
+//!   fit (when warm-started: with the previous version's covariance, `warm.rs`),
+//!   re-fitted to the chain's own warm-up draws (when warm-started, only once they hold
+//!   enough effective draws); close to the posterior it moves in one step anywhere;
 //! - an *adaptive random walk* (Haario, Saksman & Tamminen 2001) with the covariance of
 //!   the same fit, scale tuned towards acceptance 0.3 during warm-up; it keeps the chain
 //!   moving in the tails where the independence proposal is thin.
@@ -101,8 +102,10 @@ impl SamplerSettings {
     }
 }
 
-/// What a later fit needs to start where this one ended: the posterior of the log
-/// standard deviations (mean, covariance) and one end point per chain.
+/// What a later fit needs to warm-start from this one: the posterior of the log standard
+/// deviations (mean, covariance; `warm.rs` re-centres it on the new data and draws the
+/// start points from it) and one end point per chain (kept in the record; chains no
+/// longer restart there, as those points are not over-dispersed for the new posterior).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct WarmStart {
     pub sd_names: Vec<String>,
@@ -280,6 +283,21 @@ pub(crate) struct ChainStart {
     pub eta: Vec<f64>,
     pub fit: Fit,
     pub warmup: usize,
+    /// Warm-started: `fit` comes from the previous version and is kept unless the warm-up
+    /// history holds enough effective draws (`warm::REFIT_ESS_PER_COMPONENT`).
+    pub warm: bool,
+}
+
+/// The smallest bulk ESS over the components of a stretch of one chain.
+fn effective_draws(history: &[Vec<f64>]) -> f64 {
+    let m = history.first().map_or(0, |h| h.len());
+    (0..m)
+        .map(|k| {
+            let column: Vec<f64> = history.iter().map(|h| h[k]).collect();
+            crate::diagnostics::diagnose(&[&column]).ess_bulk
+        })
+        .map(|e| if e.is_nan() { 0.0 } else { e })
+        .fold(f64::INFINITY, f64::min)
 }
 
 /// Saved output of one chain.
@@ -399,9 +417,12 @@ pub(crate) fn run_chain(
         if warming {
             history.push(eta.clone());
             if adapt_at.contains(&(it + 1)) {
-                // Refit both proposals to the later half of the warm-up so far.
+                // Refit both proposals to the later half of the warm-up so far; a warm
+                // start keeps the previous version's unless that half is informative.
                 let recent = &history[history.len() / 2..];
-                if let Some(fit) = Fit::from_draws(recent) {
+                let informative = !start.warm
+                    || effective_draws(recent) >= crate::warm::REFIT_ESS_PER_COMPONENT * m as f64;
+                if let Some(fit) = Fit::from_draws(recent).filter(|_| informative) {
                     indep = fit.scaled(PROPOSAL_INFLATE);
                     walk = fit;
                 }

@@ -54,6 +54,8 @@ impl Default for NetworkSpec {
 pub struct Truth {
     pub site: Vec<f64>,
     pub year: Vec<f64>,
+    /// Per further grouping factor ([`simulate_grouped_rows`]), the effect of each level.
+    pub groups: Vec<Vec<f64>>,
 }
 
 /// One row of a generated network.
@@ -61,8 +63,19 @@ pub struct Truth {
 pub struct Row {
     pub site: usize,
     pub year: i32,
+    /// Level of each further grouping factor (empty without them).
+    pub groups: Vec<usize>,
     pub covariates: Vec<f64>,
     pub y: f64,
+}
+
+/// A further grouping factor of a generated network (a crew, an instrument, a lab): each
+/// visit draws one of `levels` uniformly, and level effects are `N(0, sd^2)`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct GroupSpec {
+    pub name: String,
+    pub levels: usize,
+    pub sd: f64,
 }
 
 /// Generate the rows of a network (site labels `S00042`, years from `first_year`).
@@ -93,13 +106,68 @@ pub fn simulate_rows(spec: &NetworkSpec) -> (Vec<Row>, Truth) {
                 rows.push(Row {
                     site: s,
                     year: spec.first_year + t as i32,
+                    groups: Vec::new(),
                     covariates: x,
                     y,
                 });
             }
         }
     }
-    (rows, Truth { site, year })
+    (
+        rows,
+        Truth {
+            site,
+            year,
+            groups: Vec::new(),
+        },
+    )
+}
+
+/// [`simulate_rows`] with further grouping factors: each row draws a level of every factor
+/// and gets its effect added. Levels and effects come from a stream of their own, so the
+/// sites, years, covariates and residuals are exactly those of `simulate_rows(spec)`.
+pub fn simulate_grouped_rows(spec: &NetworkSpec, groups: &[GroupSpec]) -> (Vec<Row>, Truth) {
+    let (mut rows, mut truth) = simulate_rows(spec);
+    let mut rng = ChaCha8Rng::seed_from_u64(spec.seed);
+    rng.set_stream(1);
+    truth.groups = groups
+        .iter()
+        .map(|g| {
+            (0..g.levels)
+                .map(|_| g.sd * rng.sample::<f64, _>(StandardNormal))
+                .collect()
+        })
+        .collect();
+    for r in &mut rows {
+        for (g, effects) in groups.iter().zip(&truth.groups) {
+            let level = rng.gen_range(0..g.levels.max(1) as u32) as usize;
+            r.groups.push(level);
+            r.y += effects[level];
+        }
+    }
+    (rows, truth)
+}
+
+/// Level label of a generated grouping factor.
+pub fn level_label(level: usize) -> String {
+    format!("L{level:03}")
+}
+
+/// Rows of a generated network as a validated [`Data`] set, covariates named `x1, x2, ...`
+/// and the further factors named as in `groups`.
+pub fn rows_data(
+    rows: &[Row],
+    covariates: usize,
+    groups: &[GroupSpec],
+) -> Result<Data, crate::ModelError> {
+    let names = (1..=covariates).map(|j| format!("x{j}")).collect();
+    let mut b = DataBuilder::new(names, groups.iter().map(|g| g.name.clone()).collect());
+    for r in rows {
+        let labels: Vec<String> = r.groups.iter().map(|&l| level_label(l)).collect();
+        let labels: Vec<&str> = labels.iter().map(|l| l.as_str()).collect();
+        b.push(&site_label(r.site), r.year, &labels, &r.covariates, r.y)?;
+    }
+    b.build()
 }
 
 /// Site label used by generated networks.

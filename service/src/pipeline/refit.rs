@@ -3,7 +3,8 @@
 //!
 //! Attempts, in order, until one passes the gate (max R-hat and min bulk/tail ESS from the
 //! config): warm start from the latest published version (skipped with `--cold` or when
-//! there is none), then a cold start, then one extended cold start with twice the draws
+//! there is none; refused by the model before sampling when the new data conflict with
+//! that version's posterior, the reason kept in the message), then a cold start, then one extended cold start with twice the draws
 //! and warm-up. If none passes, the last attempt is recorded as `rejected` with its
 //! diagnostics and the previous version keeps serving.
 
@@ -493,6 +494,15 @@ async fn attempt_fits(
         {
             Ok(p) => p,
             Err(e) => {
+                // Refused before any chain ran: straight on to the cold start, the
+                // reason kept in the version's message.
+                if let Some(tidemark_model::ModelError::WarmStartRefused { reason, .. }) =
+                    e.downcast_ref::<tidemark_model::ModelError>()
+                {
+                    warn!(series = %series.name, attempt = label, "{reason}; starting cold");
+                    notes.push(format!("{label} refused: {reason}; started cold"));
+                    continue;
+                }
                 if matches!(
                     e.downcast_ref::<tidemark_model::ModelError>(),
                     Some(tidemark_model::ModelError::Cancelled)
