@@ -462,12 +462,7 @@ fn wide_network_csv() -> String {
             // A fixed integer hash per cell: values that look random and are not collinear.
             let xs: Vec<f64> = (0..10u64)
                 .map(|k| {
-                    let mut h = (u64::from(s) << 40) ^ (u64::from(t) << 20) ^ k;
-                    h = h.wrapping_mul(0x9E37_79B9_7F4A_7C15);
-                    h ^= h >> 29;
-                    h = h.wrapping_mul(0xBF58_476D_1CE4_E5B9);
-                    h ^= h >> 32;
-                    (h >> 11) as f64 / (1u64 << 53) as f64 - 0.5
+                    common::hash_uniform((u64::from(s) << 40) ^ (u64::from(t) << 20) ^ k) - 0.5
                 })
                 .collect();
             let y = 1.0

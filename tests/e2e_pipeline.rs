@@ -834,12 +834,7 @@ fn next_year_rows_of_a_single_year_network_are_marked_prior_only_until_a_second_
 fn noise(a: u64, b: u64, c: u64) -> f64 {
     let mut total = 0.0;
     for k in 0..4u64 {
-        let mut h = (a << 42) ^ (b << 21) ^ (c << 3) ^ k;
-        h = h.wrapping_mul(0x9E37_79B9_7F4A_7C15);
-        h ^= h >> 29;
-        h = h.wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        h ^= h >> 32;
-        total += (h >> 11) as f64 / (1u64 << 53) as f64;
+        total += common::hash_uniform((a << 42) ^ (b << 21) ^ (c << 3) ^ k);
     }
     (total - 2.0) * 3f64.sqrt()
 }

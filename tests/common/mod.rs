@@ -512,3 +512,13 @@ pub fn inbox_and_claimed(net: &Network) -> (Vec<String>, Vec<String>) {
     claimed.sort();
     (waiting, claimed)
 }
+
+/// A fixed integer hash of `seed` mapped to a uniform value in [0, 1): reproducible,
+/// random-looking values for generated feeds (a splitmix64-style finaliser).
+pub fn hash_uniform(seed: u64) -> f64 {
+    let mut h = seed.wrapping_mul(0x9E37_79B9_7F4A_7C15);
+    h ^= h >> 29;
+    h = h.wrapping_mul(0xBF58_476D_1CE4_E5B9);
+    h ^= h >> 32;
+    (h >> 11) as f64 / (1u64 << 53) as f64
+}
