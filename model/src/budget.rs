@@ -57,15 +57,42 @@ pub fn memory_estimate(data: &Data, settings: &SamplerSettings) -> u64 {
     let mul = |terms: &[u64]| terms.iter().fold(1u64, |a, &t| a.saturating_mul(t));
 
     // Sufficient statistics: W'W and one q x q matrix per count class, and the sparse
-    // per-site rows (at most one entry per observation and parameter it touches).
+    // per-site rows (at most one entry per observation and parameter it touches). Kept
+    // sparse, the matrices are values on M's pattern (a class at most on every entry,
+    // with an index each) and each worker holds the values of M and of a few factors.
     let nnz_per_obs = 1 + data.group_labels().len() as u64 + p;
+    let (matrices, workspace) = match settings
+        .normal_equations
+        .is_sparse_for(data)
+        .then(|| crate::sparse::footprint(data))
+        .flatten()
+    {
+        Some((nnz, factor, pairs, scratch)) => {
+            let (nnz, factor, pairs) = (nnz as u64, factor as u64, pairs as u64);
+            (
+                sat(&[
+                    mul(&[classes + 1, nnz, F64 + 4]),
+                    mul(&[factor, 4]),
+                    // The plan's pair lists (both triangles, grown by doubling).
+                    mul(&[pairs, 4, 2]),
+                ]),
+                mul(&[
+                    threads,
+                    sat(&[mul(&[2, nnz, F64]), mul(&[4, factor, F64]), scratch as u64]),
+                ]),
+            )
+        }
+        // Each worker factorises q x q matrices (the matrix, its factor and a copy).
+        None => (
+            mul(&[classes + 1, q, q, F64]),
+            mul(&[threads, 3, q, q, F64]),
+        ),
+    };
     let stats = sat(&[
-        mul(&[classes + 1, q, q, F64]),
+        matrices,
         mul(&[data.n_obs() as u64, nnz_per_obs, F64 + 4]),
         mul(&[n_sites, 3, F64]),
     ]);
-    // Each worker factorises q x q matrices (the matrix, its factor and a copy).
-    let workspace = mul(&[threads, 3, q, q, F64]);
     // Per chain: saved variance and coefficient draws, thinned effect draws, warm-up
     // history of the log standard deviations.
     let per_chain = sat(&[
@@ -77,9 +104,12 @@ pub fn memory_estimate(data: &Data, settings: &SamplerSettings) -> u64 {
     // Assembly copies the draws into the posterior; then every worker summarises one
     // scalar at a time, each holding several copies of that scalar's draws, beside one
     // shared table of normal scores per draw count.
+    // The effect draws are held three times at the peak (the chains' output, the
+    // level-major posterior and a transient copy while reordering): measured with an
+    // observer factor of 1,500 levels, where `q` is as large as the site count.
     let assembled = sat(&[
         mul(&[chains, draws, m + p, F64]),
-        mul(&[chains, n_effect, sat(&[n_sites, q, m, p, 2]), F64]),
+        mul(&[2, chains, n_effect, sat(&[n_sites, q, m, p, 2]), F64]),
     ]);
     let per_scalar = mul(&[chains, draws.max(n_effect), F64]);
     let summaries = sat(&[

@@ -26,12 +26,14 @@ mod normal;
 mod optimize;
 mod priors;
 mod reml;
+mod sparse;
 mod stats;
+pub use stats::{NormalEquations, SPARSE_FROM_LEVELS};
 
 pub use data::{Data, DataBuilder, MAX_MAGNITUDE};
 pub use error::ModelError;
 pub use priors::{NormalPrior, Priors, ResolvedPriors, SdPrior};
-pub use reml::{fit_point, CoefEstimate, Method, PointFit};
+pub use reml::{fit_point, fit_point_using, CoefEstimate, Method, PointFit};
 
 mod budget;
 mod diagnostics;

@@ -23,7 +23,8 @@
 //! The likelihood identities are the standard ones for Gaussian linear mixed models
 //! (e.g. Harville 1977, JASA 72; Bates & DebRoy 2004, J. Multivariate Anal. 91).
 
-use crate::stats::SuffStats;
+use crate::sparse::SparseFactor;
+use crate::stats::{Normal, SuffStats};
 use nalgebra::{Cholesky, DMatrix, DVector, Dyn};
 use rand::Rng;
 use rand_distr::StandardNormal;
@@ -38,6 +39,38 @@ pub(crate) struct BetaPrior {
     pub prec: Vec<f64>,
 }
 
+/// A Cholesky factor of `M`, dense or sparse (`stats::NormalEquations`).
+#[derive(Debug, Clone)]
+pub(crate) enum Solver {
+    Dense(Cholesky<f64, Dyn>),
+    Sparse(SparseFactor),
+}
+
+impl Solver {
+    /// `M^-1 r`.
+    pub fn solve(&self, r: &DVector<f64>) -> DVector<f64> {
+        match self {
+            Solver::Dense(c) => c.solve(r),
+            Solver::Sparse(f) => DVector::from_vec(f.solve(r.as_slice())),
+        }
+    }
+
+    /// Columns `cols` of `M^-1`, one solve each.
+    pub fn inverse_columns(&self, cols: std::ops::Range<usize>) -> DMatrix<f64> {
+        let q = match self {
+            Solver::Dense(c) => c.l_dirty().nrows(),
+            Solver::Sparse(f) => f.dim(),
+        };
+        let mut out = DMatrix::zeros(q, cols.len());
+        for (k, j) in cols.enumerate() {
+            let mut e = DVector::zeros(q);
+            e[j] = 1.0;
+            out.set_column(k, &self.solve(&e));
+        }
+        out
+    }
+}
+
 /// One factorisation at a given set of standard deviations.
 #[derive(Debug, Clone)]
 pub(crate) struct Factorised {
@@ -46,7 +79,7 @@ pub(crate) struct Factorised {
     pub lambda: f64,
     /// Site precision per count class.
     pub d: Vec<f64>,
-    pub chol: Cholesky<f64, Dyn>,
+    pub chol: Solver,
     pub mean_u: DVector<f64>,
     pub log_det_q: f64,
     /// `log|X' V^-1 X|` in the standardised parameterisation (trailing block of `M`).
@@ -71,52 +104,90 @@ impl Factorised {
             .map(|c| c.n * lambda + prec_site)
             .collect();
 
-        let mut m = &stats.wtw * lambda;
-        let mut r = &stats.wty * lambda;
         let lambda2 = lambda * lambda;
+        let prec_year = 1.0 / (sds[2] * sds[2]);
+        let group_prec: Vec<f64> = (0..lay.group_sizes.len())
+            .map(|k| 1.0 / (sds[3 + k] * sds[3 + k]))
+            .collect();
+        let mut r = &stats.wty * lambda;
         let mut quad_sites = 0.0;
         let mut log_det_d = 0.0;
         for (class, &dk) in stats.classes.iter().zip(&d) {
             let w = lambda2 / dk;
-            m.zip_apply(&class.c, |a, b| *a -= w * b);
             r.axpy(-w, &class.e, 1.0);
             quad_sites += w * class.f;
             log_det_d += class.n_sites * dk.ln();
         }
-        let prec_year = 1.0 / (sds[2] * sds[2]);
-        for j in 0..lay.n_years {
-            m[(j, j)] += prec_year;
-        }
         let mut log_det_prior_re =
             -(stats.n_sites as f64) * 2.0 * sds[1].ln() - lay.n_years as f64 * 2.0 * sds[2].ln();
-        for (k, (&off, &size)) in lay.group_offsets.iter().zip(&lay.group_sizes).enumerate() {
-            let sd = sds[3 + k];
-            let prec = 1.0 / (sd * sd);
-            for j in off..off + size {
-                m[(j, j)] += prec;
-            }
-            log_det_prior_re -= size as f64 * 2.0 * sd.ln();
+        for (k, &size) in lay.group_sizes.iter().enumerate() {
+            log_det_prior_re -= size as f64 * 2.0 * sds[3 + k].ln();
         }
         if let Some(bp) = beta_prior {
             for j in 0..lay.p {
-                m[(lay.fixed_offset + j, lay.fixed_offset + j)] += bp.prec[j];
                 r[lay.fixed_offset + j] += bp.prec[j] * bp.mean[j];
             }
         }
-        // Symmetrise against round-off before factorising.
-        for i in 0..q {
-            for j in 0..i {
-                let v = 0.5 * (m[(i, j)] + m[(j, i)]);
-                m[(i, j)] = v;
-                m[(j, i)] = v;
+        // The prior precision of `u`, on the diagonal of `M`.
+        let prior_diag = |j: usize| -> f64 {
+            if j < lay.n_years {
+                prec_year
+            } else if j < lay.fixed_offset {
+                let k = lay
+                    .group_offsets
+                    .iter()
+                    .rposition(|&off| off <= j)
+                    .unwrap_or(0);
+                group_prec[k]
+            } else {
+                beta_prior.map_or(0.0, |bp| bp.prec[j - lay.fixed_offset])
             }
-        }
-        let chol = Cholesky::new(m)?;
-        let l = chol.l_dirty();
+        };
+        let (chol, diag, half, mean_u) = match &stats.normal {
+            Normal::Dense { wtw, c } => {
+                let mut m = wtw * lambda;
+                for (ck, &dk) in c.iter().zip(&d) {
+                    let w = lambda2 / dk;
+                    m.zip_apply(ck, |a, b| *a -= w * b);
+                }
+                for j in 0..q {
+                    m[(j, j)] += prior_diag(j);
+                }
+                // Symmetrise against round-off before factorising.
+                for i in 0..q {
+                    for j in 0..i {
+                        let v = 0.5 * (m[(i, j)] + m[(j, i)]);
+                        m[(i, j)] = v;
+                        m[(j, i)] = v;
+                    }
+                }
+                let chol = Cholesky::new(m)?;
+                let diag: Vec<f64> = chol.l_dirty().diagonal().iter().copied().collect();
+                // r' M^-1 r = |L^-1 r|^2, from the triangular solve for stability.
+                let half = chol.l_dirty().solve_lower_triangular(&r)?.norm_squared();
+                let mean_u = chol.solve(&r);
+                (Solver::Dense(chol), diag, half, mean_u)
+            }
+            Normal::Sparse(ss) => {
+                let mut m: Vec<f64> = ss.wtw.iter().map(|v| v * lambda).collect();
+                for (ck, &dk) in ss.classes.iter().zip(&d) {
+                    ck.subtract_from(&mut m, lambda2 / dk);
+                }
+                for j in 0..q {
+                    m[ss.plan.diag[ss.plan.pos[j] as usize]] += prior_diag(j);
+                }
+                let f = ss.plan.factorise(&m)?;
+                // The diagonal of L back in u's order, so that the coefficients' entries
+                // are the trailing ones in both cases.
+                let by_pos = f.diagonal();
+                let diag: Vec<f64> = ss.plan.pos.iter().map(|&p| by_pos[p as usize]).collect();
+                let (half, mean_u) = f.half_and_solve(r.as_slice());
+                (Solver::Sparse(f), diag, half, DVector::from_vec(mean_u))
+            }
+        };
         let mut log_det_m = 0.0;
         let mut log_det_schur_beta = 0.0;
-        for i in 0..q {
-            let li = l[(i, i)];
+        for (i, &li) in diag.iter().enumerate() {
             if li.is_nan() || li <= 0.0 || !li.is_finite() {
                 return None;
             }
@@ -125,10 +196,7 @@ impl Factorised {
                 log_det_schur_beta += 2.0 * li.ln();
             }
         }
-        // r' M^-1 r = |L^-1 r|^2, computed from the triangular solve for stability.
-        let half = l.solve_lower_triangular(&r)?;
-        let quad = quad_sites + half.norm_squared();
-        let mean_u = chol.solve(&r);
+        let quad = quad_sites + half;
         Some(Factorised {
             sds: sds.to_vec(),
             lambda,
@@ -177,13 +245,15 @@ impl Factorised {
     /// One exact draw of `u ~ N(M^-1 r, M^-1)`.
     pub fn draw_u<R: Rng + ?Sized>(&self, rng: &mut R) -> DVector<f64> {
         let q = self.mean_u.len();
-        let z = DVector::from_fn(q, |_, _| rng.sample::<f64, _>(StandardNormal));
+        let mut z = DVector::from_fn(q, |_, _| rng.sample::<f64, _>(StandardNormal));
         // L' x = z gives x ~ N(0, (L L')^-1).
-        let x = self
-            .chol
-            .l_dirty()
-            .tr_solve_lower_triangular(&z)
-            .unwrap_or_else(|| DVector::zeros(q));
+        let x = match &self.chol {
+            Solver::Dense(c) => c
+                .l_dirty()
+                .tr_solve_lower_triangular(&z)
+                .unwrap_or_else(|| DVector::zeros(q)),
+            Solver::Sparse(f) => DVector::from_vec(f.noise(z.as_mut_slice())),
+        };
         &self.mean_u + x
     }
 
@@ -217,7 +287,7 @@ impl Factorised {
     pub fn dense_covariance(&self, stats: &SuffStats) -> DMatrix<f64> {
         let s_n = stats.n_sites;
         let q = stats.layout.q;
-        let m_inv = self.chol.inverse();
+        let m_inv = self.chol.inverse_columns(0..q);
         // G = D^-1 B' (S x q): row s is lambda w_s' / d_s.
         let mut g = DMatrix::zeros(s_n, q);
         for s in 0..s_n {

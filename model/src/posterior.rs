@@ -13,6 +13,7 @@ use crate::reml::{point_from_stats, Method};
 use crate::sampler::{
     run_chain, ChainOutput, ChainStart, Controls, Fit, SamplerSettings, Target, WarmStart,
 };
+use crate::stats::NormalEquations;
 use crate::stats::SuffStats;
 use crate::warm::{overdispersed_starts, WarmPlan};
 use nalgebra::{DMatrix, DVector};
@@ -237,8 +238,8 @@ struct Prepared {
 }
 
 impl Prepared {
-    fn new(data: &Data, priors: &Priors) -> Result<Prepared, ModelError> {
-        let stats = SuffStats::new(data);
+    fn new(data: &Data, priors: &Priors, normal: NormalEquations) -> Result<Prepared, ModelError> {
+        let stats = SuffStats::new(data, normal);
         let sd_names = data.sd_names();
         let resolved =
             priors.resolve(&sd_names, &data.covariate_names, stats.y_mean, stats.y_sd)?;
@@ -287,7 +288,7 @@ pub fn check_warm_start(
     warm: &WarmStart,
 ) -> Result<WarmPlan, ModelError> {
     settings.validate()?;
-    let prep = Prepared::new(data, priors)?;
+    let prep = Prepared::new(data, priors, settings.normal_equations)?;
     warm_fits(warm, &prep.sd_names).map_err(|reason| ModelError::WarmStartRefused {
         reason,
         distance: f64::INFINITY,
@@ -312,7 +313,7 @@ pub fn sample(
     controls: Controls,
 ) -> Result<Posterior, ModelError> {
     settings.validate()?;
-    let prep = Prepared::new(data, priors)?;
+    let prep = Prepared::new(data, priors, settings.normal_equations)?;
     let stats = &prep.stats;
     let target = prep.target();
     let warm = warm.filter(|w| warm_fits(w, &prep.sd_names).is_ok());
@@ -780,8 +781,9 @@ pub fn location_conditional(
     data: &Data,
     priors: &Priors,
     sds: &[f64],
+    normal: NormalEquations,
 ) -> Result<LocationConditional, ModelError> {
-    let stats = SuffStats::new(data);
+    let stats = SuffStats::new(data, normal);
     let sd_names = data.sd_names();
     if sds.len() != sd_names.len() || sds.iter().any(|s| s.is_nan() || *s <= 0.0) {
         return Err(ModelError::InvalidSettings(format!(

@@ -12,7 +12,7 @@ use crate::data::Data;
 use crate::error::ModelError;
 use crate::marginal::Factorised;
 use crate::optimize::minimise;
-use crate::stats::SuffStats;
+use crate::stats::{NormalEquations, SuffStats};
 use serde::{Deserialize, Serialize};
 
 /// Which likelihood to maximise.
@@ -60,10 +60,19 @@ impl PointFit {
 /// A factor with a single level is refused: with a flat prior on the intercept its
 /// variance does not enter the likelihood at all.
 pub fn fit_point(data: &Data, method: Method) -> Result<PointFit, ModelError> {
+    fit_point_using(data, method, NormalEquations::Auto)
+}
+
+/// [`fit_point`] with the reduced system stored as `normal` says.
+pub fn fit_point_using(
+    data: &Data,
+    method: Method,
+    normal: NormalEquations,
+) -> Result<PointFit, ModelError> {
     if let Some((factor, levels)) = data.factor_levels().into_iter().find(|(_, l)| *l < 2) {
         return Err(ModelError::TooFewLevels { factor, levels });
     }
-    let stats = SuffStats::new(data);
+    let stats = SuffStats::new(data, normal);
     point_from_stats(data, &stats, method)
 }
 
@@ -124,9 +133,10 @@ pub(crate) fn point_from_stats(
         .map(|j| fac.mean_u[lay.fixed_offset + j])
         .collect();
     let estimates = stats.coef_to_original(&beta_std);
-    let m_inv = fac.chol.inverse();
-    let cov_std = m_inv
-        .view((lay.fixed_offset, lay.fixed_offset), (lay.p, lay.p))
+    let cov_std = fac
+        .chol
+        .inverse_columns(lay.fixed_offset..lay.q)
+        .rows(lay.fixed_offset, lay.p)
         .into_owned();
     let t = stats.coef_transform();
     let cov = &t * cov_std * t.transpose();

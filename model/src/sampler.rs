@@ -66,6 +66,9 @@ pub struct SamplerSettings {
     pub seed: u64,
     /// Worker threads; 0 means one per available core.
     pub threads: usize,
+    /// Dense or sparse reduced system (default: by the number of factor levels).
+    #[serde(default)]
+    pub normal_equations: crate::stats::NormalEquations,
 }
 
 impl Default for SamplerSettings {
@@ -79,6 +82,7 @@ impl Default for SamplerSettings {
             effect_draws: 100,
             seed: 1,
             threads: 0,
+            normal_equations: crate::stats::NormalEquations::Auto,
         }
     }
 }

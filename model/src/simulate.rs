@@ -508,3 +508,62 @@ pub fn survey_data(
     }
     b.build()
 }
+
+/// How a generated observer factor ([`simulate_observer_rows`]) assigns observers.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ObserverAssignment {
+    /// Each observer covers a block of neighbouring sites for a period and moves one block
+    /// along at the next period (volunteers taking over the next survey squares).
+    Blocks,
+    /// Each (block, period) gets an observer drawn uniformly: the same counts, no locality.
+    Random,
+}
+
+/// An observer factor of `levels` observers (effects `N(0, sd^2)`): sites are cut into
+/// contiguous blocks of `min(10, site-periods / levels)` sites, years into periods of
+/// `period_years`, and one observer covers each (block, period).
+#[derive(Debug, Clone, PartialEq)]
+pub struct ObserverSpec {
+    pub levels: usize,
+    pub period_years: usize,
+    pub sd: f64,
+    pub assignment: ObserverAssignment,
+}
+
+/// [`simulate_rows`] plus a factor named `observer` laid out as `observers` says. The
+/// sites, years, covariates and residuals are exactly those of `simulate_rows(spec)`.
+pub fn simulate_observer_rows(spec: &NetworkSpec, observers: &ObserverSpec) -> (Vec<Row>, Truth) {
+    let (mut rows, mut truth) = simulate_rows(spec);
+    let mut rng = ChaCha8Rng::seed_from_u64(spec.seed);
+    rng.set_stream(2);
+    let levels = observers.levels.max(1);
+    let periods = spec.years.div_ceil(observers.period_years.max(1)).max(1);
+    let block = (spec.sites * periods / levels).clamp(1, 10);
+    let blocks = spec.sites.div_ceil(block);
+    let slots = blocks * periods;
+    // Slot order walks the diagonals (block - period): consecutive slots, and so one
+    // observer's slots, are the same block line moving one block per period.
+    let slot_observer: Vec<usize> = match observers.assignment {
+        ObserverAssignment::Blocks => (0..slots)
+            .map(|k| {
+                let (b, t) = (k / periods, k % periods);
+                let diagonal = (b + blocks - t % blocks) % blocks;
+                (diagonal * periods + t) * levels / slots
+            })
+            .collect(),
+        ObserverAssignment::Random => (0..slots)
+            .map(|_| rng.gen_range(0..levels as u32) as usize)
+            .collect(),
+    };
+    let effects: Vec<f64> = (0..levels)
+        .map(|_| observers.sd * rng.sample::<f64, _>(StandardNormal))
+        .collect();
+    for r in &mut rows {
+        let t = (r.year - spec.first_year) as usize / observers.period_years.max(1);
+        let o = slot_observer[(r.site / block) * periods + t.min(periods - 1)];
+        r.groups.push(o);
+        r.y += effects[o];
+    }
+    truth.groups = vec![effects];
+    (rows, truth)
+}

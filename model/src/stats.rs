@@ -20,7 +20,52 @@
 //! scaled by their (population) sd.
 
 use crate::data::Data;
+use crate::sparse::{SparsePlan, SparseStats};
 use nalgebra::{DMatrix, DVector};
+
+/// How the reduced system of the non-site parameters is stored and factorised.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum NormalEquations {
+    /// Sparse once the grouping factors have more than [`SPARSE_FROM_LEVELS`] levels in
+    /// all, dense below.
+    #[default]
+    Auto,
+    /// Dense `q x q` matrices and a dense Cholesky factor.
+    Dense,
+    /// A fixed sparse pattern and a supernodal sparse Cholesky factor (`sparse`).
+    Sparse,
+}
+
+/// Levels of the grouping factors (years not counted) from which `Auto` goes sparse. On
+/// B4-shaped data (`benches/observers.rs`) both take the same time at 30 levels; sparse
+/// is 1.8 times as fast at 100 and 8 times at 300 (docs/benchmarks.md).
+pub const SPARSE_FROM_LEVELS: usize = 60;
+
+impl NormalEquations {
+    /// Whether `data`'s reduced system is kept sparse.
+    pub(crate) fn is_sparse_for(self, data: &Data) -> bool {
+        self.sparse(&Layout::new(data))
+    }
+
+    fn sparse(self, layout: &Layout) -> bool {
+        match self {
+            NormalEquations::Auto => layout.fixed_offset - layout.n_years > SPARSE_FROM_LEVELS,
+            NormalEquations::Dense => false,
+            NormalEquations::Sparse => true,
+        }
+    }
+}
+
+/// `W'W` and the classes' `C_k`, dense or on a sparse pattern.
+#[derive(Debug, Clone)]
+pub(crate) enum Normal {
+    Dense {
+        wtw: DMatrix<f64>,
+        c: Vec<DMatrix<f64>>,
+    },
+    Sparse(SparseStats),
+}
 
 /// Positions of the parameter blocks inside `u`.
 #[derive(Debug, Clone)]
@@ -37,7 +82,7 @@ pub(crate) struct Layout {
 }
 
 impl Layout {
-    fn new(data: &Data) -> Self {
+    pub(crate) fn new(data: &Data) -> Self {
         let n_years = data.n_years();
         let mut group_offsets = Vec::new();
         let mut group_sizes = Vec::new();
@@ -65,7 +110,6 @@ pub(crate) struct CountClass {
     /// Observations per site in this class.
     pub n: f64,
     pub n_sites: f64,
-    pub c: DMatrix<f64>,
     pub e: DVector<f64>,
     pub f: f64,
 }
@@ -80,7 +124,7 @@ pub(crate) struct SuffStats {
     pub y_sd: f64,
     pub cov_mean: Vec<f64>,
     pub cov_sd: Vec<f64>,
-    pub wtw: DMatrix<f64>,
+    pub normal: Normal,
     pub wty: DVector<f64>,
     pub yty: f64,
     pub classes: Vec<CountClass>,
@@ -93,8 +137,9 @@ pub(crate) struct SuffStats {
 }
 
 impl SuffStats {
-    pub fn new(data: &Data) -> Self {
+    pub fn new(data: &Data, normal: NormalEquations) -> Self {
         let layout = Layout::new(data);
+        let sparse = normal.sparse(&layout);
         let n = data.n_obs();
         let q = layout.q;
         let y_mean = data.response.iter().sum::<f64>() / n as f64;
@@ -131,7 +176,7 @@ impl SuffStats {
             }
         };
 
-        let mut wtw = DMatrix::zeros(q, q);
+        let mut wtw = DMatrix::zeros(if sparse { 0 } else { q }, if sparse { 0 } else { q });
         let mut wty = DVector::zeros(q);
         let mut yty = 0.0;
         let mut entries = Vec::with_capacity(nnz);
@@ -168,8 +213,10 @@ impl SuffStats {
                 row(i, &mut entries);
                 for &(a, va) in &entries {
                     wty[a] += va * y;
-                    for &(b, vb) in &entries {
-                        wtw[(a, b)] += va * vb;
+                    if !sparse {
+                        for &(b, vb) in &entries {
+                            wtw[(a, b)] += va * vb;
+                        }
                     }
                     if !is_touched[a] {
                         is_touched[a] = true;
@@ -203,11 +250,12 @@ impl SuffStats {
             .map(|&c| CountClass {
                 n: c as f64,
                 n_sites: 0.0,
-                c: DMatrix::zeros(q, q),
                 e: DVector::zeros(q),
                 f: 0.0,
             })
             .collect();
+        let dense_q = if sparse { 0 } else { q };
+        let mut class_c = vec![DMatrix::zeros(dense_q, dense_q); distinct.len()];
         let mut site_class = Vec::with_capacity(n_sites);
         for (s, count) in counts.iter_mut().enumerate() {
             let k = class_of(*count);
@@ -220,12 +268,38 @@ impl SuffStats {
             for x in lo..hi {
                 let (a, va) = (site_w_idx[x] as usize, site_w_val[x]);
                 class.e[a] += va * ysum;
-                for z in lo..hi {
-                    class.c[(a, site_w_idx[z] as usize)] += va * site_w_val[z];
+                if !sparse {
+                    for z in lo..hi {
+                        class_c[k][(a, site_w_idx[z] as usize)] += va * site_w_val[z];
+                    }
                 }
             }
         }
 
+        let normal = if sparse {
+            let plan = SparsePlan::new(
+                q,
+                layout.n_years,
+                layout.fixed_offset,
+                &site_w_ptr,
+                &site_w_idx,
+            )
+            .expect("the minimum degree order and the symbolic factorisation of a valid pattern");
+            let rows = (0..n).map(|i| {
+                let mut e = Vec::with_capacity(nnz);
+                row(i, &mut e);
+                e
+            });
+            Normal::Sparse(SparseStats::new(
+                plan,
+                rows,
+                (&site_w_ptr, &site_w_idx, &site_w_val),
+                &site_class,
+                distinct.len(),
+            ))
+        } else {
+            Normal::Dense { wtw, c: class_c }
+        };
         SuffStats {
             layout,
             n_obs: n,
@@ -234,7 +308,7 @@ impl SuffStats {
             y_sd: y_var.sqrt(),
             cov_mean,
             cov_sd,
-            wtw,
+            normal,
             wty,
             yty,
             classes,

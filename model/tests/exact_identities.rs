@@ -88,7 +88,6 @@ fn conditional_of_location_parameters_equals_a_dense_solve() {
         coefficients: Some(NormalPrior { mean: 0.2, sd: 0.5 }),
         ..Default::default()
     };
-    let cond = location_conditional(&data, &priors, &sds).unwrap();
 
     // Prior of (intercept, slope) in original units. The documented convention: the
     // intercept prior is on the mean at the covariate's average, the coefficient prior on
@@ -129,32 +128,36 @@ fn conditional_of_location_parameters_equals_a_dense_solve() {
     let cov = q.clone().try_inverse().unwrap();
     let mean = &cov * rhs;
 
-    assert_eq!(cond.mean.len(), dim);
-    let scale_mean = mean.amax();
-    for i in 0..dim {
-        assert!(
-            (cond.mean[i] - mean[i]).abs() < 1e-9 * scale_mean,
-            "mean[{i}]: {} vs {}",
-            cond.mean[i],
-            mean[i]
-        );
-    }
-    let scale_cov = cov.amax();
-    for i in 0..dim {
-        for j in 0..dim {
+    // Both storages of the reduced system must give the same exact conditional.
+    for normal in [NormalEquations::Dense, NormalEquations::Sparse] {
+        let cond = location_conditional(&data, &priors, &sds, normal).unwrap();
+        assert_eq!(cond.mean.len(), dim);
+        let scale_mean = mean.amax();
+        for i in 0..dim {
             assert!(
-                (cond.cov[(i, j)] - cov[(i, j)]).abs() < 1e-9 * scale_cov,
-                "cov[{i},{j}]: {} vs {}",
-                cond.cov[(i, j)],
-                cov[(i, j)]
+                (cond.mean[i] - mean[i]).abs() < 1e-9 * scale_mean,
+                "mean[{i}]: {} vs {}",
+                cond.mean[i],
+                mean[i]
             );
+        }
+        let scale_cov = cov.amax();
+        for i in 0..dim {
+            for j in 0..dim {
+                assert!(
+                    (cond.cov[(i, j)] - cov[(i, j)]).abs() < 1e-9 * scale_cov,
+                    "{normal:?} cov[{i},{j}]: {} vs {}",
+                    cond.cov[(i, j)],
+                    cov[(i, j)]
+                );
+            }
         }
     }
 }
 
 /// The −2 REML log-likelihood from the Schur complement equals the dense formula
 /// `log|V| + log|X'V^-1 X| + r'V^-1 r + (n-p) log 2pi` (docs/architecture.md,
-/// "Parameterisation") at the estimate.
+/// "Parameterisation") at the estimate, with the reduced system stored dense and sparse.
 #[test]
 fn neg2_reml_loglik_equals_the_dense_formula() {
     let spec = NetworkSpec {
@@ -167,47 +170,49 @@ fn neg2_reml_loglik_equals_the_dense_formula() {
         ..Default::default()
     };
     let (data, _) = simulate(&spec);
-    let fit = fit_point(&data, Method::Reml).unwrap();
-    let (rows, _) = tidemark_model::simulate::simulate_rows(&spec);
-    let n = rows.len();
-    let sd = |name: &str| fit.sd_of(name).unwrap();
-    let mut v = DMatrix::from_diagonal_element(n, n, sd("residual").powi(2));
-    for i in 0..n {
-        for j in 0..n {
-            if rows[i].site == rows[j].site {
-                v[(i, j)] += sd("site").powi(2);
-            }
-            if rows[i].year == rows[j].year {
-                v[(i, j)] += sd("year").powi(2);
+    for normal in [NormalEquations::Dense, NormalEquations::Sparse] {
+        let fit = fit_point_using(&data, Method::Reml, normal).unwrap();
+        let (rows, _) = tidemark_model::simulate::simulate_rows(&spec);
+        let n = rows.len();
+        let sd = |name: &str| fit.sd_of(name).unwrap();
+        let mut v = DMatrix::from_diagonal_element(n, n, sd("residual").powi(2));
+        for i in 0..n {
+            for j in 0..n {
+                if rows[i].site == rows[j].site {
+                    v[(i, j)] += sd("site").powi(2);
+                }
+                if rows[i].year == rows[j].year {
+                    v[(i, j)] += sd("year").powi(2);
+                }
             }
         }
-    }
-    let x = DMatrix::from_fn(n, 3, |i, j| {
-        if j == 0 {
-            1.0
-        } else {
-            rows[i].covariates[j - 1]
+        let x = DMatrix::from_fn(n, 3, |i, j| {
+            if j == 0 {
+                1.0
+            } else {
+                rows[i].covariates[j - 1]
+            }
+        });
+        let y = DVector::from_fn(n, |i, _| rows[i].y);
+        let chol = v.clone().cholesky().unwrap();
+        let vinv = chol.inverse();
+        let xtvx = x.transpose() * &vinv * &x;
+        let beta = xtvx.clone().try_inverse().unwrap() * x.transpose() * &vinv * &y;
+        let r = &y - &x * &beta;
+        let log_det_v: f64 = chol.l().diagonal().iter().map(|d| 2.0 * d.ln()).sum();
+        let crit = log_det_v
+            + xtvx.determinant().ln()
+            + (r.transpose() * &vinv * &r)[0]
+            + (n as f64 - 3.0) * (2.0 * std::f64::consts::PI).ln();
+        assert!(
+            (fit.criterion - crit).abs() < 1e-8 * crit.abs(),
+            "{} vs {crit}",
+            fit.criterion
+        );
+        let cov = xtvx.try_inverse().unwrap();
+        for j in 0..3 {
+            assert!((fit.coef[j].estimate - beta[j]).abs() < 1e-8 * beta[j].abs().max(1.0));
+            assert!((fit.coef[j].se - cov[(j, j)].sqrt()).abs() < 1e-7 * cov[(j, j)].sqrt());
         }
-    });
-    let y = DVector::from_fn(n, |i, _| rows[i].y);
-    let chol = v.clone().cholesky().unwrap();
-    let vinv = chol.inverse();
-    let xtvx = x.transpose() * &vinv * &x;
-    let beta = xtvx.clone().try_inverse().unwrap() * x.transpose() * &vinv * &y;
-    let r = &y - &x * &beta;
-    let log_det_v: f64 = chol.l().diagonal().iter().map(|d| 2.0 * d.ln()).sum();
-    let crit = log_det_v
-        + xtvx.determinant().ln()
-        + (r.transpose() * &vinv * &r)[0]
-        + (n as f64 - 3.0) * (2.0 * std::f64::consts::PI).ln();
-    assert!(
-        (fit.criterion - crit).abs() < 1e-8 * crit.abs(),
-        "{} vs {crit}",
-        fit.criterion
-    );
-    let cov = xtvx.try_inverse().unwrap();
-    for j in 0..3 {
-        assert!((fit.coef[j].estimate - beta[j]).abs() < 1e-8 * beta[j].abs().max(1.0));
-        assert!((fit.coef[j].se - cov[(j, j)].sqrt()).abs() < 1e-7 * cov[(j, j)].sqrt());
     }
 }

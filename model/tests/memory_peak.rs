@@ -5,7 +5,10 @@
 use std::alloc::{GlobalAlloc, Layout, System};
 use std::sync::atomic::{AtomicUsize, Ordering};
 
-use tidemark_model::simulate::{simulate, NetworkSpec};
+use tidemark_model::simulate::{
+    rows_data, simulate, simulate_observer_rows, GroupSpec, NetworkSpec, ObserverAssignment,
+    ObserverSpec,
+};
 use tidemark_model::{memory_estimate, sample, Controls, Priors, SamplerSettings};
 
 struct Counting;
@@ -42,23 +45,51 @@ fn measured_peak(data: &tidemark_model::Data, s: &SamplerSettings) -> u64 {
 }
 
 /// Shapes where different terms dominate: saved draws with one worker, several workers
-/// summarising at once, more chains than workers, and many sites and years (the effect
-/// draws and the dense statistics). The tests run one at a time (one allocator).
+/// summarising at once, more chains than workers, many sites and years (the effect draws
+/// and the dense statistics), and an observer factor with many levels (the sparse
+/// statistics and factors, observers in moving blocks). The cases
+/// run in one test, one at a time (one allocator).
 #[test]
 fn the_estimate_covers_the_measured_peak_and_is_not_far_above_it() {
     let cases = [
-        (12usize, 4usize, 2usize, 40_000usize, 1usize),
-        (12, 4, 4, 20_000, 4),
-        (12, 4, 6, 10_000, 2),
-        (300, 12, 2, 2_000, 2),
+        (12usize, 4usize, 2usize, 40_000usize, 1usize, None),
+        (12, 4, 4, 20_000, 4, None),
+        (12, 4, 6, 10_000, 2, None),
+        (300, 12, 2, 2_000, 2, None),
+        (
+            2000,
+            10,
+            2,
+            300,
+            2,
+            Some((1500, ObserverAssignment::Blocks)),
+        ),
     ];
-    for (sites, years, chains, draws, threads) in cases {
-        let (data, _) = simulate(&NetworkSpec {
+    for (sites, years, chains, draws, threads, observers) in cases {
+        let spec = NetworkSpec {
             sites,
             years,
             seed: 11,
             ..Default::default()
-        });
+        };
+        let data = match observers {
+            None => simulate(&spec).0,
+            Some((levels, assignment)) => {
+                let o = ObserverSpec {
+                    levels,
+                    period_years: 2,
+                    sd: 0.3,
+                    assignment,
+                };
+                let (rows, _) = simulate_observer_rows(&spec, &o);
+                let g = GroupSpec {
+                    name: "observer".into(),
+                    levels,
+                    sd: 0.3,
+                };
+                rows_data(&rows, spec.covariates, &[g]).unwrap()
+            }
+        };
         let s = SamplerSettings {
             chains,
             draws,
@@ -69,7 +100,7 @@ fn the_estimate_covers_the_measured_peak_and_is_not_far_above_it() {
         let peak = measured_peak(&data, &s);
         let estimate = memory_estimate(&data, &s);
         let case = format!(
-            "{sites} sites x {years} years, {chains} chains x {draws} draws, {threads} threads"
+            "{sites} sites x {years} years, observers {observers:?}, {chains} chains x {draws} draws, {threads} threads"
         );
         assert!(
             estimate >= peak,
