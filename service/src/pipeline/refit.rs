@@ -277,6 +277,11 @@ async fn detect_change(
     opts: &RefitOptions,
 ) -> anyhow::Result<Option<i64>> {
     let watermark = store.series_watermark(&series.columns()).await?;
+    // No value of the series' columns has arrived yet: nothing to fit, and nothing to
+    // record as a failure at every start (a forced refit still says why it cannot fit).
+    if watermark == 0 && !opts.force {
+        return Ok(None);
+    }
     if !opts.force {
         if let Some(last) = store.fitted_watermark(&series.name).await? {
             if last >= watermark {
