@@ -996,3 +996,35 @@ fn a_unit_change_goes_straight_to_a_cold_start_with_the_reason() {
     assert_eq!(gate_lines, 1, "{stderr}");
     assert!(stderr.contains("starting cold"), "{stderr}");
 }
+
+/// Before any value of a series has arrived, a run has nothing to fit and records no
+/// failed attempt (a scheduled start used to add one `failed` fit per new series); a
+/// forced refit still says why it cannot fit.
+#[test]
+fn a_series_with_no_values_yet_is_not_refitted_until_data_arrive() {
+    let net = Network::with_config(&config(1.05));
+    net.ok(&["init"]);
+    net.ok(&["run-once"]);
+    net.ok(&["run-once"]);
+    assert_eq!(net.scalar("SELECT COUNT(*) FROM fits"), Value::Int(0));
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM runs WHERE status = 'succeeded'"),
+        Value::Int(2)
+    );
+    let out = net.tidemark(&["refit", "--force"]);
+    assert!(
+        !out.status.success(),
+        "a forced refit of an empty series must fail"
+    );
+    let failed = net.sql("SELECT status, message FROM fits");
+    assert_eq!(failed.len(), 1);
+    assert_eq!(failed[0][0], Value::Text("failed".into()));
+    assert!(
+        failed[0][1].text().contains("no observations"),
+        "{:?}",
+        failed[0][1]
+    );
+    net.drop_file("a.csv", feed(2015..2021));
+    net.ok(&["run-once"]);
+    assert_eq!(published_versions(&net), 1);
+}
