@@ -18,6 +18,11 @@ use crate::sampler::{effect_thinning, SamplerSettings};
 const F64: u64 = 8;
 /// A warm-up history entry is its own vector: its header plus the allocator's overhead.
 const VEC_OVERHEAD: u64 = 24 + 16;
+/// faer's matrix products (inside the sparse factorisation) keep one packing buffer per
+/// thread that runs them, sized by the CPU's caches: 4 MiB here (heaptrack, on the
+/// 2-core development machine). A sparse fit runs them on the calling thread (the point
+/// fit that starts the chains) and on every worker.
+const GEMM_PACKING_PER_THREAD: u64 = 4 << 20;
 /// Copies of one scalar's draws that its summary holds at once: the chains, their split
 /// halves, the flattened draws, their order, the sorted draws, the normal scores (and
 /// their per-chain copies), the folded draws, their order and scores, and the tail
@@ -77,8 +82,13 @@ pub fn memory_estimate(data: &Data, settings: &SamplerSettings) -> u64 {
                     mul(&[pairs, 4, 2]),
                 ]),
                 mul(&[
-                    threads,
-                    sat(&[mul(&[2, nnz, F64]), mul(&[4, factor, F64]), scratch as u64]),
+                    threads + 1,
+                    sat(&[
+                        mul(&[2, nnz, F64]),
+                        mul(&[4, factor, F64]),
+                        scratch as u64,
+                        GEMM_PACKING_PER_THREAD,
+                    ]),
                 ]),
             )
         }

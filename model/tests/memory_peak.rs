@@ -47,7 +47,8 @@ fn measured_peak(data: &tidemark_model::Data, s: &SamplerSettings) -> u64 {
 /// Shapes where different terms dominate: saved draws with one worker, several workers
 /// summarising at once, more chains than workers, many sites and years (the effect draws
 /// and the dense statistics), and an observer factor with many levels (the sparse
-/// statistics and factors, observers in moving blocks). The cases
+/// statistics and factors, and the factorisation's per-thread buffers; observers in moving
+/// blocks and at random). The cases
 /// run in one test, one at a time (one allocator).
 #[test]
 fn the_estimate_covers_the_measured_peak_and_is_not_far_above_it() {
