@@ -239,7 +239,7 @@ struct Prepared {
 
 impl Prepared {
     fn new(data: &Data, priors: &Priors, normal: NormalEquations) -> Result<Prepared, ModelError> {
-        let stats = SuffStats::new(data, normal);
+        let stats = SuffStats::new(data, normal)?;
         let sd_names = data.sd_names();
         let resolved =
             priors.resolve(&sd_names, &data.covariate_names, stats.y_mean, stats.y_sd)?;
@@ -783,7 +783,7 @@ pub fn location_conditional(
     sds: &[f64],
     normal: NormalEquations,
 ) -> Result<LocationConditional, ModelError> {
-    let stats = SuffStats::new(data, normal);
+    let stats = SuffStats::new(data, normal)?;
     let sd_names = data.sd_names();
     if sds.len() != sd_names.len() || sds.iter().any(|s| s.is_nan() || *s <= 0.0) {
         return Err(ModelError::InvalidSettings(format!(

@@ -72,7 +72,7 @@ pub fn fit_point_using(
     if let Some((factor, levels)) = data.factor_levels().into_iter().find(|(_, l)| *l < 2) {
         return Err(ModelError::TooFewLevels { factor, levels });
     }
-    let stats = SuffStats::new(data, normal);
+    let stats = SuffStats::new(data, normal)?;
     point_from_stats(data, &stats, method)
 }
 

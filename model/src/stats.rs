@@ -137,7 +137,9 @@ pub(crate) struct SuffStats {
 }
 
 impl SuffStats {
-    pub fn new(data: &Data, normal: NormalEquations) -> Self {
+    /// Fails only when the sparse storage cannot be planned (faer reports an index
+    /// overflow or memory exhaustion for the pattern).
+    pub fn new(data: &Data, normal: NormalEquations) -> Result<Self, crate::ModelError> {
         let layout = Layout::new(data);
         let sparse = normal.sparse(&layout);
         let n = data.n_obs();
@@ -284,7 +286,12 @@ impl SuffStats {
                 &site_w_ptr,
                 &site_w_idx,
             )
-            .expect("the minimum degree order and the symbolic factorisation of a valid pattern");
+            .ok_or_else(|| {
+                crate::ModelError::Numerical(format!(
+                    "the sparse reduced system of {q} parameters could not be planned \
+                     (too many entries for its index type, or out of memory)"
+                ))
+            })?;
             let rows = (0..n).map(|i| {
                 let mut e = Vec::with_capacity(nnz);
                 row(i, &mut e);
@@ -300,7 +307,7 @@ impl SuffStats {
         } else {
             Normal::Dense { wtw, c: class_c }
         };
-        SuffStats {
+        Ok(SuffStats {
             layout,
             n_obs: n,
             n_sites,
@@ -317,7 +324,7 @@ impl SuffStats {
             site_w_ptr,
             site_w_idx,
             site_w_val,
-        }
+        })
     }
 
     /// `w_s' u` for one site.
