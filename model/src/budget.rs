@@ -4,7 +4,8 @@
 //!
 //! The estimate counts the allocations that grow with the settings or the data: the
 //! sufficient statistics (dense in the `q` non-site parameters, one matrix per count
-//! class), each worker's factorisation workspace, every chain's saved draws and warm-up
+//! class; or, kept sparse, values on the pattern its plan computes here), each worker's
+//! factorisation workspace, every chain's saved draws and warm-up
 //! history, the assembled posterior (a second copy of the draws), and the summaries, where
 //! every worker holds several copies of one quantity's draws at once. It leaves out the
 //! data itself, which the caller already holds. It is an upper-leaning estimate, not an
