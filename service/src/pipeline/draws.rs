@@ -1,6 +1,6 @@
 //! The draws of a version as one Arrow IPC file: every saved draw of the standard
 //! deviations and coefficients, and a thinned set of joint draws of the random effects
-//! (the forecast basis). Any Arrow reader can open it; Tidemark reads it back for warm starts
+//! (the forecast basis), its buffers zstd-compressed. Any Arrow reader with zstd support can open it; Tidemark reads it back for warm starts
 //! and for `tidemark forecast`.
 //!
 //! One row per quantity, with columns `kind` (`sd`, `coef`, `effect`, `basis`, `data`),
@@ -17,7 +17,8 @@ use std::sync::Arc;
 use arrow_array::builder::{Float64Builder, ListBuilder, StringBuilder, UInt32Builder};
 use arrow_array::{Array, Float64Array, ListArray, RecordBatch, StringArray, UInt32Array};
 use arrow_ipc::reader::FileReader;
-use arrow_ipc::writer::FileWriter;
+use arrow_ipc::writer::{FileWriter, IpcWriteOptions};
+use arrow_ipc::CompressionType;
 use arrow_schema::{ArrowError, DataType, Field, Schema};
 use tidemark_model::{Data, ForecastBasis, Posterior, SamplerSettings, WarmStart};
 
@@ -253,7 +254,11 @@ pub fn encode(post: &Posterior, basis: &ForecastBasis) -> Result<Vec<u8>, ArrowE
     let mut buf =
         Vec::with_capacity(n_values * 8 + n_rows * ROW_BYTES as usize + FILE_BYTES as usize);
     {
-        let mut writer = FileWriter::try_new(&mut buf, &schema)?;
+        // Arrow IPC's own buffer compression (zstd): any reader with zstd support opens
+        // it, and the draws, the largest part of a version, shrink losslessly.
+        let options =
+            IpcWriteOptions::default().try_with_compression(Some(CompressionType::ZSTD))?;
+        let mut writer = FileWriter::try_new_with_options(&mut buf, &schema, options)?;
         writer.write(&batch)?;
         writer.finish()?;
     }
