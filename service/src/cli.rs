@@ -57,6 +57,12 @@ pub enum Command {
         #[arg(long, value_name = "NAME")]
         series: Option<String>,
     },
+    /// Remove the draws of published versions beyond `store.keep_draws` per series (their summaries and forecasts stay); every run does this at its end
+    Prune {
+        /// List what would be pruned, and change nothing
+        #[arg(long)]
+        dry_run: bool,
+    },
     /// One scheduled run: ingest the inbox, refit what changed, write forecasts
     RunOnce,
     /// Run on the configured schedule until SIGTERM/SIGINT (one instance per database)
@@ -181,6 +187,7 @@ pub fn run() -> ExitCode {
         Command::Serve
             | Command::RunOnce
             | Command::Refit { .. }
+            | Command::Prune { .. }
             | Command::Forecast { .. }
             | Command::Ingest { .. }
             | Command::Init
@@ -249,6 +256,7 @@ pub async fn dispatch(cli: Cli) -> anyhow::Result<()> {
         } => commands::refit::run(&ctx, series, cold, force).await,
         Command::Forecast { series } => commands::forecast::run(&ctx, series).await,
         Command::RunOnce => commands::run_once::run(&ctx).await,
+        Command::Prune { dry_run } => commands::prune::run(&ctx, dry_run).await,
         Command::Serve => commands::serve::run(&ctx).await,
         Command::Reml { series, json } => commands::reml::run(&ctx, series, json).await,
         Command::Init => commands::init::run(&ctx).await,

@@ -52,6 +52,8 @@ pub struct Config {
     pub database: PathBuf,
     /// A lease holder whose heartbeat is older than this counts as gone.
     pub lease_stale_after: std::time::Duration,
+    /// Published versions per series that keep their draws; older ones are pruned.
+    pub keep_draws: u32,
     pub feed: FeedDirs,
     pub schedule: Schedule,
     /// The key columns of the feed, shared by every series (a current limit).
@@ -231,15 +233,21 @@ struct RawConfig {
 struct RawStore {
     database: String,
     lease_stale_after_seconds: u64,
+    keep_draws: u64,
 }
 impl Default for RawStore {
     fn default() -> Self {
         RawStore {
             database: "tidemark.db".into(),
             lease_stale_after_seconds: crate::lease::STALE_AFTER.as_secs(),
+            keep_draws: DEFAULT_KEEP_DRAWS as u64,
         }
     }
 }
+
+/// Published versions per series that keep their draws (`store.keep_draws`): enough to
+/// rebuild or compare the recent past; older versions keep everything else.
+pub const DEFAULT_KEEP_DRAWS: u32 = 10;
 
 /// Bounds of `store.lease_stale_after_seconds`: a limit shorter than a few heartbeats
 /// would take over live holders; a day is longer than any stop worth waiting out.
@@ -363,6 +371,19 @@ impl Config {
         let raw = deserialize_raw(text, file)?;
         let resolve = |key: &str, p: &str| resolve_path(dir, key, p).map_err(invalid);
         let database = resolve("store.database", &raw.store.database)?;
+        let keep_draws = u32::try_from(raw.store.keep_draws)
+            .ok()
+            .filter(|k| *k >= 1)
+            .ok_or_else(|| {
+                invalid((
+                    "store.keep_draws".into(),
+                    format!(
+                        "must be 1 to {} (the latest version's draws serve warm starts and `forecast`), found {}",
+                        u32::MAX,
+                        raw.store.keep_draws
+                    ),
+                ))
+            })?;
         let stale = raw.store.lease_stale_after_seconds;
         if !LEASE_STALE_AFTER_SECONDS.contains(&stale) {
             return Err(invalid((
@@ -404,6 +425,7 @@ impl Config {
             path: PathBuf::from(file),
             database,
             lease_stale_after: std::time::Duration::from_secs(stale),
+            keep_draws,
             feed,
             schedule,
             keys,

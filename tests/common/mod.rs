@@ -314,6 +314,17 @@ impl Network {
 
     /// A query's output from the `sqlite3` command-line client (`-batch -noheader`, `|`
     /// separated), exactly as an analyst would see it.
+    /// Run `query` with the sqlite3 client and return its output, success or not.
+    #[allow(dead_code)]
+    pub fn sqlite3_result(&self, query: &str) -> std::process::Output {
+        Command::new("sqlite3")
+            .arg("-batch")
+            .arg(self.db_path())
+            .arg(query)
+            .output()
+            .expect("the sqlite3 client must be installed (scripts/test installs it)")
+    }
+
     pub fn sqlite3(&self, query: &str) -> String {
         let out = Command::new("sqlite3")
             .arg("-batch")

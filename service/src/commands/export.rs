@@ -283,6 +283,9 @@ async fn build_from(store: &crate::store::Store, args: &ExportArgs) -> anyhow::R
                 anyhow::bail!("`export draws` needs --series NAME and --version V");
             };
             let Some(stored) = store.published_version_draws(name, version).await? else {
+                if let Some(pruned) = store.version_draws_pruned(name, version).await? {
+                    anyhow::bail!("series {name:?} version {version}: {}", pruned.explain());
+                }
                 let versions = store.published_versions(name).await?;
                 let known = if versions.is_empty() {
                     "none yet".to_string()

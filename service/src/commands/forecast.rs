@@ -54,12 +54,17 @@ async fn rewrite(
             crate::say!("{}: no published version yet", s.name);
             continue;
         };
-        let (_, blob) = store.fit_draws(latest.fit_id).await?.with_context(|| {
-            format!(
-                "series {}: fit {} has no stored draws",
-                s.name, latest.fit_id
-            )
-        })?;
+        let Some((_, blob)) = store.fit_draws(latest.fit_id).await? else {
+            let why = match store.draws_pruned(latest.fit_id).await? {
+                Some(pruned) => pruned.explain(),
+                None => "it has no stored draws".to_string(),
+            };
+            anyhow::bail!(
+                "series {}: cannot rebuild the forecasts of fit {}: {why}",
+                s.name,
+                latest.fit_id
+            );
+        };
         let decoded = draws::decode(&blob)
             .with_context(|| format!("series {}: fit {}", s.name, latest.fit_id))?;
         // The transform the version was fitted with, not today's config.

@@ -7,6 +7,7 @@ pub mod export;
 pub mod forecast;
 pub mod ingest;
 pub mod init;
+pub mod prune;
 pub mod refit;
 pub mod reml;
 pub mod report;

@@ -73,6 +73,7 @@ pub async fn run_once_with_progress(
             ..RefitOptions::default()
         };
         refit_and_record(store, config, &opts, &mut report).await?;
+        prune_draws(store, config, opts.fence.as_ref(), &mut report).await?;
         finish(store, config, &cancel, &mut report).await?;
         Ok(report)
     }
@@ -97,12 +98,38 @@ pub async fn refit_run(
             ..opts
         };
         refit_and_record(store, config, &opts, &mut report).await?;
+        prune_draws(store, config, opts.fence.as_ref(), &mut report).await?;
         let selected = config.select_series(opts.series.as_deref())?.len();
         finish_with(store, &opts.cancel, selected, &mut report).await?;
         Ok(report)
     }
     .instrument(span)
     .await
+}
+
+/// Prune the draws of published versions beyond `store.keep_draws` per series, under the
+/// run's fence; what was pruned joins the run's message.
+async fn prune_draws(
+    store: &Store,
+    config: &Config,
+    fence: Option<&crate::store::Fence>,
+    report: &mut RunReport,
+) -> anyhow::Result<()> {
+    let pruned = store.prune_draws(config.keep_draws, false, fence).await?;
+    if !pruned.is_empty() {
+        let bytes: i64 = pruned.iter().map(|p| p.bytes).sum();
+        info!(
+            versions = pruned.len(),
+            bytes, "pruned the draws of older versions"
+        );
+        report.message.push_str(&format!(
+            "; draws of {} older version(s) pruned ({:.1} MB, store.keep_draws = {})",
+            pruned.len(),
+            bytes as f64 / 1e6,
+            config.keep_draws
+        ));
+    }
+    Ok(())
 }
 
 impl RunReport {

@@ -318,7 +318,7 @@ impl Store {
         }
     }
 
-    fn lease_lost(&self, fence: Option<&Fence>, now: Option<LeaseHolder>) -> StoreError {
+    pub(super) fn lease_lost(&self, fence: Option<&Fence>, now: Option<LeaseHolder>) -> StoreError {
         StoreError::LeaseLost {
             path: self.path.clone(),
             generation: fence.map_or(0, |f| f.generation),

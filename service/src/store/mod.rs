@@ -13,6 +13,7 @@ mod fits;
 mod ingest;
 mod lease;
 mod report;
+mod retention;
 mod runs;
 mod series;
 mod status;
@@ -36,6 +37,7 @@ pub use fits::{
 pub use ingest::{BatchFile, BatchOutcome, BatchRecord};
 pub use lease::{Fence, LeaseAttempt, LeaseClaim, LeaseHolder};
 pub use report::{ForecastBand, ForecastInterval, RunHistoryEntry, RunSeriesOutcome, SiteEffect};
+pub use retention::{PruneRecord, PrunedDraws};
 pub use runs::RunOrigin;
 pub use series::SeriesRow;
 pub use status::{BatchSummary, FitSummary, RunSummary};
