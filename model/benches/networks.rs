@@ -9,18 +9,8 @@ use std::time::Instant;
 use tidemark_model::simulate::{simulate, simulate_rows, site_label, NetworkSpec};
 use tidemark_model::*;
 
-fn peak_rss_mib() -> f64 {
-    std::fs::read_to_string("/proc/self/status")
-        .ok()
-        .and_then(|s| {
-            s.lines().find(|l| l.starts_with("VmHWM:")).and_then(|l| {
-                l.split_whitespace()
-                    .nth(1)
-                    .and_then(|v| v.parse::<f64>().ok())
-            })
-        })
-        .map_or(f64::NAN, |kb| kb / 1024.0)
-}
+mod common;
+use common::peak_rss_mib;
 
 fn fit(data: &Data, warm: Option<&WarmStart>) -> (Posterior, f64) {
     let t0 = Instant::now();

@@ -15,18 +15,8 @@ use tidemark_model::simulate::{
 };
 use tidemark_model::*;
 
-fn peak_rss_mib() -> f64 {
-    std::fs::read_to_string("/proc/self/status")
-        .ok()
-        .and_then(|s| {
-            s.lines().find(|l| l.starts_with("VmHWM:")).and_then(|l| {
-                l.split_whitespace()
-                    .nth(1)
-                    .and_then(|v| v.parse::<f64>().ok())
-            })
-        })
-        .map_or(f64::NAN, |kb| kb / 1024.0)
-}
+mod common;
+use common::peak_rss_mib;
 
 fn main() {
     let args: Vec<String> = std::env::args()
