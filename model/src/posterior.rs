@@ -490,7 +490,7 @@ fn assemble(
     };
     let summaries = summarise_all(&saved, summary_rows(data, &sd_names, &coef_names), pool);
     let diagnostics = fit_diagnostics(&summaries, &run, settings.steps_per_draw);
-    let warm_start = WarmStart::from_draws(&sd_names, chains, draws, &sd_draws);
+    let warm_start = WarmStart::from_draws(&sd_names, &sd_draws);
 
     Posterior {
         sd_names,

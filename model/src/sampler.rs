@@ -107,30 +107,22 @@ impl SamplerSettings {
 }
 
 /// What a later fit needs to warm-start from this one: the posterior of the log standard
-/// deviations (mean, covariance; `warm.rs` re-centres it on the new data and draws the
-/// start points from it) and one end point per chain (kept in the record; chains no
-/// longer restart there, as those points are not over-dispersed for the new posterior).
+/// deviations (mean, covariance; `warm.rs` re-centres it on the new data and draws
+/// over-dispersed start points from it).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct WarmStart {
     pub sd_names: Vec<String>,
     pub log_sd_mean: Vec<f64>,
     /// Row-major `m x m` covariance of the log standard deviations.
     pub log_sd_cov: Vec<f64>,
-    /// Log standard deviations at the end of each chain.
-    pub chain_ends: Vec<Vec<f64>>,
 }
 
 impl WarmStart {
     /// The warm-start state of saved standard-deviation draws (`chains x draws x m`,
     /// chain-major, as in [`crate::Posterior::sd_draws`]): moments of their logs over all
-    /// chains, and the last draw of each chain. This is all a later fit needs, so a store
-    /// that keeps the draws keeps the warm start.
-    pub fn from_draws(
-        sd_names: &[String],
-        chains: usize,
-        draws: usize,
-        sd_draws: &[f64],
-    ) -> WarmStart {
+    /// chains. This is all a later fit needs, so a store that keeps the draws keeps the
+    /// warm start.
+    pub fn from_draws(sd_names: &[String], sd_draws: &[f64]) -> WarmStart {
         let m = sd_names.len();
         let log_draws: Vec<Vec<f64>> = sd_draws
             .chunks(m)
@@ -146,15 +138,10 @@ impl WarmStart {
                 DMatrix::<f64>::identity(m, m).iter().copied().collect(),
             ),
         };
-        let chain_ends = (0..chains)
-            .filter(|_| draws > 0)
-            .map(|c| log_draws[c * draws + draws - 1].clone())
-            .collect();
         WarmStart {
             sd_names: sd_names.to_vec(),
             log_sd_mean,
             log_sd_cov,
-            chain_ends,
         }
     }
 }

@@ -60,10 +60,9 @@ pub struct WarmPlan {
     /// Centre of the proposal: the Laplace mode of the new data's posterior of the log
     /// standard deviations.
     pub centre: Vec<f64>,
-    /// Mahalanobis distance of `centre` from the previous posterior mean (module doc).
+    /// Mahalanobis distance of `centre` from the previous posterior mean (module doc);
+    /// at most [`conflict_threshold`] of the number of components.
     pub distance: f64,
-    /// The distance above which a warm start is refused for this many components.
-    pub threshold: f64,
     /// Start point of each chain (log standard deviations).
     pub starts: Vec<Vec<f64>>,
 }
@@ -133,7 +132,6 @@ pub(crate) fn plan(
     let plan = WarmPlan {
         centre: new.mean.iter().copied().collect(),
         distance,
-        threshold,
         starts: overdispersed_starts(&fit, settings.chains, settings.seed),
     };
     Ok((plan, fit))

@@ -384,7 +384,7 @@ pub fn decode(blob: &[u8]) -> Result<Decoded, ArrowError> {
             sd_draws[i * m + k] = v[i];
         }
     }
-    let warm_start = WarmStart::from_draws(&sd_names, chains, draws, &sd_draws);
+    let warm_start = WarmStart::from_draws(&sd_names, &sd_draws);
     let n = draw_index.len();
     let idx: Vec<usize> = draw_index
         .iter()
