@@ -73,8 +73,8 @@ pub fn memory_estimate(data: &Data, settings: &SamplerSettings) -> u64 {
         .then(|| crate::sparse::footprint(data))
         .flatten()
     {
-        Some((nnz, factor, pairs, scratch)) => {
-            let (nnz, factor, pairs) = (nnz as u64, factor as u64, pairs as u64);
+        Some(f) => {
+            let (nnz, factor, pairs) = (f.nnz as u64, f.factor as u64, f.pairs as u64);
             (
                 sat(&[
                     mul(&[classes + 1, nnz, F64 + 4]),
@@ -87,7 +87,7 @@ pub fn memory_estimate(data: &Data, settings: &SamplerSettings) -> u64 {
                     sat(&[
                         mul(&[2, nnz, F64]),
                         mul(&[4, factor, F64]),
-                        scratch as u64,
+                        f.scratch as u64,
                         GEMM_PACKING_PER_THREAD,
                     ]),
                 ]),
@@ -115,12 +115,9 @@ pub fn memory_estimate(data: &Data, settings: &SamplerSettings) -> u64 {
     // Assembly copies the draws into the posterior; then every worker summarises one
     // scalar at a time, each holding several copies of that scalar's draws, beside one
     // shared table of normal scores per draw count.
-    // The effect draws are held three times at the peak (the chains' output, the
-    // level-major posterior and a transient copy while reordering): measured with an
-    // observer factor of 1,500 levels, where `q` is as large as the site count.
     let assembled = sat(&[
         mul(&[chains, draws, m + p, F64]),
-        mul(&[2, chains, n_effect, sat(&[n_sites, q, m, p, 2]), F64]),
+        mul(&[chains, n_effect, sat(&[n_sites, q, m, p, 2]), F64]),
     ]);
     let per_scalar = mul(&[chains, draws.max(n_effect), F64]);
     let summaries = sat(&[

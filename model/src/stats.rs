@@ -178,7 +178,9 @@ impl SuffStats {
             }
         };
 
-        let mut wtw = DMatrix::zeros(if sparse { 0 } else { q }, if sparse { 0 } else { q });
+        // Kept sparse, W'W and the classes' C_k live on the plan's pattern instead.
+        let dense_q = if sparse { 0 } else { q };
+        let mut wtw = DMatrix::zeros(dense_q, dense_q);
         let mut wty = DVector::zeros(q);
         let mut yty = 0.0;
         let mut entries = Vec::with_capacity(nnz);
@@ -256,7 +258,6 @@ impl SuffStats {
                 f: 0.0,
             })
             .collect();
-        let dense_q = if sparse { 0 } else { q };
         let mut class_c = vec![DMatrix::zeros(dense_q, dense_q); distinct.len()];
         let mut site_class = Vec::with_capacity(n_sites);
         for (s, count) in counts.iter_mut().enumerate() {
@@ -292,14 +293,9 @@ impl SuffStats {
                      (too many entries for its index type, or out of memory)"
                 ))
             })?;
-            let rows = (0..n).map(|i| {
-                let mut e = Vec::with_capacity(nnz);
-                row(i, &mut e);
-                e
-            });
             Normal::Sparse(SparseStats::new(
                 plan,
-                rows,
+                (n, &row),
                 (&site_w_ptr, &site_w_idx, &site_w_val),
                 &site_class,
                 distinct.len(),
