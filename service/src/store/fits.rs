@@ -9,7 +9,7 @@
 use sqlx::{QueryBuilder, Sqlite, Transaction};
 use tidemark_model::{ForecastRow, Summary};
 
-use super::lease::{check_fence, Fence, LeaseHolder};
+use super::lease::{begin_fenced, Fence, LeaseHolder};
 use super::{now_utc, Store, StoreError};
 use crate::vocabulary::FitStatus;
 
@@ -204,13 +204,10 @@ impl Store {
     ) -> Result<RecordedFit, StoreError> {
         let run = async {
             // IMMEDIATE: the fence and staleness checks below hold until the commit.
-            let mut tx = self.pool.begin_with("BEGIN IMMEDIATE").await?;
-            if let Some(fence) = guard.fence {
-                if let Err(holder) = check_fence(&mut tx, fence).await? {
-                    tx.rollback().await?;
-                    return Ok(Err(Refused::Lost(holder)));
-                }
-            }
+            let mut tx = match begin_fenced(&self.pool, guard.fence).await? {
+                Ok(tx) => tx,
+                Err(holder) => return Ok(Err(Refused::Lost(holder))),
+            };
             if fit.status == FitStatus::Published && !guard.allow_older {
                 if let Some(definition) = &fit.definition_sha256 {
                     let newest: Option<(i64, i64)> = sqlx::query_as(
@@ -377,13 +374,10 @@ impl Store {
         fence: Option<&Fence>,
     ) -> Result<(), StoreError> {
         let run = async {
-            let mut tx = self.pool.begin_with("BEGIN IMMEDIATE").await?;
-            if let Some(fence) = fence {
-                if let Err(holder) = check_fence(&mut tx, fence).await? {
-                    tx.rollback().await?;
-                    return Ok(Err(holder));
-                }
-            }
+            let mut tx = match begin_fenced(&self.pool, fence).await? {
+                Ok(tx) => tx,
+                Err(holder) => return Ok(Err(holder)),
+            };
             for table in ["forecasts", "forecast_scenarios"] {
                 sqlx::query(&format!("DELETE FROM {table} WHERE fit_id = ?1"))
                     .bind(fit_id)

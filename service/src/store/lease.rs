@@ -134,6 +134,23 @@ pub(super) async fn check_fence(
     Ok(Err(now))
 }
 
+/// Begin a write transaction `IMMEDIATE` (so the check below holds until the commit)
+/// and, for a fenced writer, confirm its fence (`check_fence`). `Ok(Err(holder))` when
+/// the lease was lost; the transaction is then rolled back and nothing was written.
+pub(super) async fn begin_fenced<'c>(
+    pool: &'c sqlx::SqlitePool,
+    fence: Option<&Fence>,
+) -> Result<Result<sqlx::Transaction<'c, sqlx::Sqlite>, Option<LeaseHolder>>, sqlx::Error> {
+    let mut tx = pool.begin_with("BEGIN IMMEDIATE").await?;
+    if let Some(fence) = fence {
+        if let Err(holder) = check_fence(&mut tx, fence).await? {
+            tx.rollback().await?;
+            return Ok(Err(holder));
+        }
+    }
+    Ok(Ok(tx))
+}
+
 impl Store {
     /// Claim the lease. `stale` is asked about a current holder other than `claim`: it
     /// returns the reason the holder is stale (then the lease is taken over), or `None`

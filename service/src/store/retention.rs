@@ -3,7 +3,7 @@
 //! forecasts, diagnostics and exclusions stay; a `draws_pruned` row records the removal,
 //! and the database refuses to delete a published version's draws without it.
 
-use super::lease::check_fence;
+use super::lease::begin_fenced;
 use super::{now_utc, Fence, Store, StoreError};
 
 /// The draws of one version that pruning removes (or, in a dry run, would remove).
@@ -55,13 +55,10 @@ impl Store {
     ) -> Result<Vec<PrunedDraws>, StoreError> {
         let keep = i64::from(keep.max(1));
         let run = async {
-            let mut tx = self.pool.begin_with("BEGIN IMMEDIATE").await?;
-            if let Some(fence) = fence {
-                if let Err(holder) = check_fence(&mut tx, fence).await? {
-                    tx.rollback().await?;
-                    return Ok(Err(holder));
-                }
-            }
+            let mut tx = match begin_fenced(&self.pool, fence).await? {
+                Ok(tx) => tx,
+                Err(holder) => return Ok(Err(holder)),
+            };
             let rows: Vec<PrunedDraws> = sqlx::query_as(CANDIDATES)
                 .bind(keep)
                 .fetch_all(&mut *tx)
