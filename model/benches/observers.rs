@@ -1,5 +1,5 @@
 //! Benchmark B4: B3 (20,000 sites x 25 years x 2 visits, 60% of site-years observed) plus
-//! an observer factor (`simulate::simulate_observer_rows`), fitted with the default
+//! an observer factor (`simulate::observer_data`), fitted with the default
 //! sampler; the reduced system goes sparse by itself (`NormalEquations::Auto`).
 //! Figures in docs/benchmarks.md.
 //!
@@ -10,9 +10,7 @@
 //! per-evaluation figure only. Run one per process for a clean peak-memory figure.
 
 use std::time::Instant;
-use tidemark_model::simulate::{
-    rows_data, simulate_observer_rows, GroupSpec, NetworkSpec, ObserverAssignment, ObserverSpec,
-};
+use tidemark_model::simulate::{observer_data, NetworkSpec, ObserverAssignment, ObserverSpec};
 use tidemark_model::*;
 
 mod common;
@@ -48,13 +46,7 @@ fn main() {
         },
     };
     let t0 = Instant::now();
-    let (rows, _) = simulate_observer_rows(&spec, &observers);
-    let group = GroupSpec {
-        name: "observer".into(),
-        levels,
-        sd: observers.sd,
-    };
-    let data = rows_data(&rows, spec.covariates, &[group]).unwrap();
+    let data = observer_data(&spec, &observers).unwrap();
     println!(
         "B4: {} sites x {} years, {} observations, {} observers ({}), data set built in {:.2} s",
         data.n_sites(),

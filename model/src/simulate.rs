@@ -567,3 +567,18 @@ pub fn simulate_observer_rows(spec: &NetworkSpec, observers: &ObserverSpec) -> (
     truth.groups = vec![effects];
     (rows, truth)
 }
+
+/// [`simulate_observer_rows`] as a validated [`Data`] set: covariates `x1, x2, ...` and
+/// the factor `observer`.
+pub fn observer_data(
+    spec: &NetworkSpec,
+    observers: &ObserverSpec,
+) -> Result<Data, crate::ModelError> {
+    let (rows, _) = simulate_observer_rows(spec, observers);
+    let group = GroupSpec {
+        name: "observer".into(),
+        levels: observers.levels,
+        sd: observers.sd,
+    };
+    rows_data(&rows, spec.covariates, &[group])
+}

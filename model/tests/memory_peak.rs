@@ -6,8 +6,7 @@ use std::alloc::{GlobalAlloc, Layout, System};
 use std::sync::atomic::{AtomicUsize, Ordering};
 
 use tidemark_model::simulate::{
-    rows_data, simulate, simulate_observer_rows, GroupSpec, NetworkSpec, ObserverAssignment,
-    ObserverSpec,
+    observer_data, simulate, NetworkSpec, ObserverAssignment, ObserverSpec,
 };
 use tidemark_model::{memory_estimate, sample, Controls, Priors, SamplerSettings};
 
@@ -82,13 +81,7 @@ fn the_estimate_covers_the_measured_peak_and_is_not_far_above_it() {
                     sd: 0.3,
                     assignment,
                 };
-                let (rows, _) = simulate_observer_rows(&spec, &o);
-                let g = GroupSpec {
-                    name: "observer".into(),
-                    levels,
-                    sd: 0.3,
-                };
-                rows_data(&rows, spec.covariates, &[g]).unwrap()
+                observer_data(&spec, &o).unwrap()
             }
         };
         let s = SamplerSettings {

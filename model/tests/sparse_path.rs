@@ -4,9 +4,7 @@
 //! have an observer factor with many levels, laid out in moving blocks and at random
 //! (the two layouts of benchmark B4).
 
-use tidemark_model::simulate::{
-    rows_data, simulate_observer_rows, GroupSpec, NetworkSpec, ObserverAssignment, ObserverSpec,
-};
+use tidemark_model::simulate::{observer_data, NetworkSpec, ObserverAssignment, ObserverSpec};
 use tidemark_model::*;
 
 fn observer_design(levels: usize, assignment: ObserverAssignment, seed: u64) -> Data {
@@ -24,13 +22,7 @@ fn observer_design(levels: usize, assignment: ObserverAssignment, seed: u64) -> 
         sd: 0.3,
         assignment,
     };
-    let (rows, _) = simulate_observer_rows(&spec, &observers);
-    let group = GroupSpec {
-        name: "observer".into(),
-        levels,
-        sd: 0.3,
-    };
-    rows_data(&rows, 1, &[group]).unwrap()
+    observer_data(&spec, &observers).unwrap()
 }
 
 fn close(a: f64, b: f64, rel: f64) -> bool {
