@@ -112,6 +112,22 @@ pub fn memory_estimate(data: &Data, settings: &SamplerSettings) -> u64 {
         mul(&[warmup, sat(&[mul(&[m, F64]), VEC_OVERHEAD])]),
     ]);
     let chains_out = mul(&[chains, per_chain]);
+    // Censored values: every chain, the target and its template hold their own copy of
+    // the response part of the statistics (per class `e_k`, `W'y`, the site sums and
+    // classes) and of each censored value's row, limit and current value.
+    let censored = data.n_censored() as u64;
+    let censored_copies = if censored == 0 {
+        0
+    } else {
+        mul(&[
+            chains + 2,
+            sat(&[
+                mul(&[classes + 2, q, F64]),
+                mul(&[n_sites, 4, F64]),
+                mul(&[censored, sat(&[mul(&[nnz_per_obs, F64 + 4]), 4 * F64])]),
+            ]),
+        ])
+    };
     // Assembly copies the draws into the posterior; then every worker summarises one
     // scalar at a time, each holding several copies of that scalar's draws, beside one
     // shared table of normal scores per draw count.
@@ -124,7 +140,14 @@ pub fn memory_estimate(data: &Data, settings: &SamplerSettings) -> u64 {
         mul(&[threads, SUMMARY_COPIES, per_scalar]),
         mul(&[chains, sat(&[draws, n_effect]), F64]),
     ]);
-    sat(&[stats, workspace, chains_out, assembled, summaries])
+    sat(&[
+        stats,
+        workspace,
+        chains_out,
+        censored_copies,
+        assembled,
+        summaries,
+    ])
 }
 
 /// Distinct per-site observation counts (the count classes of the sufficient statistics).

@@ -20,6 +20,17 @@ pub struct DataBuilder {
     groups: Vec<Vec<String>>,
     covariates: Vec<Vec<f64>>,
     response: Vec<f64>,
+    censored: Vec<(u32, Censoring)>,
+}
+
+/// Which side of its limit a censored value lies on.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Censoring {
+    /// Left-censored: the value is below its limit (a detection limit, `<x`).
+    Below,
+    /// Right-censored: the value is above its limit (a measuring range, `>x`).
+    Above,
 }
 
 /// A validated set of observations on the model scale.
@@ -38,6 +49,9 @@ pub struct Data {
     pub(crate) covariate_names: Vec<String>,
     pub(crate) group_names: Vec<String>,
     pub(crate) warnings: Vec<String>,
+    /// Censored observations, by row: their `response` holds the limit, a provisional
+    /// value for start points and data-scaled priors only (`censored.rs`).
+    pub(crate) censored: Vec<(u32, Censoring)>,
 }
 
 /// Largest magnitude of a response or covariate value on the model scale. Sums of squares
@@ -59,7 +73,26 @@ impl DataBuilder {
             sites: Vec::new(),
             years: Vec::new(),
             response: Vec::new(),
+            censored: Vec::new(),
         }
+    }
+
+    /// Add one censored observation: its value lies on the `side` of `limit` (model
+    /// scale). The likelihood of the row is the normal distribution function (or
+    /// survival function) at the limit; nothing substitutes a value for it.
+    pub fn push_censored(
+        &mut self,
+        site: &str,
+        year: i32,
+        groups: &[&str],
+        covariates: &[f64],
+        side: Censoring,
+        limit: f64,
+    ) -> Result<(), ModelError> {
+        let row = self.response.len();
+        self.push(site, year, groups, covariates, limit)?;
+        self.censored.push((row as u32, side));
+        Ok(())
     }
 
     /// Add one observation. `groups` and `covariates` follow the names given to `new`.
@@ -202,11 +235,17 @@ impl DataBuilder {
             covariate_names: self.covariate_names,
             group_names: self.group_names,
             warnings,
+            censored: self.censored,
         })
     }
 }
 
 impl Data {
+    /// Number of censored observations.
+    pub fn n_censored(&self) -> usize {
+        self.censored.len()
+    }
+
     pub fn n_obs(&self) -> usize {
         self.response.len()
     }

@@ -54,6 +54,15 @@ pub enum ModelError {
     InvalidSettings(String),
     #[error("numerical failure: {0}")]
     Numerical(String),
+    #[error(
+        "{censored} of the {observations} values are censored (known only to lie below or \
+         above a limit); REML needs complete values and Tidemark never substitutes a limit \
+         for a value: the posterior (`tidemark refit`) treats them exactly"
+    )]
+    Censored {
+        censored: usize,
+        observations: usize,
+    },
     #[error("the fit was cancelled")]
     Cancelled,
     /// The previous version's posterior conflicts with the new data

@@ -19,6 +19,7 @@
 //! assert_eq!(fit.sd.len(), 3); // residual, site, year
 //! ```
 
+mod censored;
 mod data;
 mod error;
 mod marginal;
@@ -30,7 +31,7 @@ mod sparse;
 mod stats;
 pub use stats::{NormalEquations, SPARSE_FROM_LEVELS};
 
-pub use data::{Data, DataBuilder, MAX_MAGNITUDE};
+pub use data::{Censoring, Data, DataBuilder, MAX_MAGNITUDE};
 pub use error::ModelError;
 pub use priors::{NormalPrior, Priors, ResolvedPriors, SdPrior};
 pub use reml::{fit_point, fit_point_using, CoefEstimate, Method, PointFit};

@@ -71,6 +71,31 @@ impl Solver {
     }
 }
 
+/// `r = lambda W'y + Lambda_u m_u - lambda^2 sum_k e_k / d_k` and the site part of
+/// `mu' Q mu`, `lambda^2 sum_k f_k / d_k`.
+fn rhs(
+    stats: &SuffStats,
+    lambda: f64,
+    d: &[f64],
+    beta_prior: Option<&BetaPrior>,
+) -> (DVector<f64>, f64) {
+    let lambda2 = lambda * lambda;
+    let mut r = &stats.wty * lambda;
+    let mut quad_sites = 0.0;
+    for (class, &dk) in stats.classes.iter().zip(d) {
+        let w = lambda2 / dk;
+        r.axpy(-w, &class.e, 1.0);
+        quad_sites += w * class.f;
+    }
+    if let Some(bp) = beta_prior {
+        let off = stats.layout.fixed_offset;
+        for j in 0..stats.layout.p {
+            r[off + j] += bp.prec[j] * bp.mean[j];
+        }
+    }
+    (r, quad_sites)
+}
+
 /// One factorisation at a given set of standard deviations.
 #[derive(Debug, Clone)]
 pub(crate) struct Factorised {
@@ -109,24 +134,17 @@ impl Factorised {
         let group_prec: Vec<f64> = (0..lay.group_sizes.len())
             .map(|k| 1.0 / (sds[3 + k] * sds[3 + k]))
             .collect();
-        let mut r = &stats.wty * lambda;
-        let mut quad_sites = 0.0;
-        let mut log_det_d = 0.0;
-        for (class, &dk) in stats.classes.iter().zip(&d) {
-            let w = lambda2 / dk;
-            r.axpy(-w, &class.e, 1.0);
-            quad_sites += w * class.f;
-            log_det_d += class.n_sites * dk.ln();
-        }
+        let (r, quad_sites) = rhs(stats, lambda, &d, beta_prior);
+        let log_det_d: f64 = stats
+            .classes
+            .iter()
+            .zip(&d)
+            .map(|(class, &dk)| class.n_sites * dk.ln())
+            .sum();
         let mut log_det_prior_re =
             -(stats.n_sites as f64) * 2.0 * sds[1].ln() - lay.n_years as f64 * 2.0 * sds[2].ln();
         for (k, &size) in lay.group_sizes.iter().enumerate() {
             log_det_prior_re -= size as f64 * 2.0 * sds[3 + k].ln();
-        }
-        if let Some(bp) = beta_prior {
-            for j in 0..lay.p {
-                r[lay.fixed_offset + j] += bp.prec[j] * bp.mean[j];
-            }
         }
         // The prior precision of `u`, on the diagonal of `M`.
         let prior_diag = |j: usize| -> f64 {
@@ -143,7 +161,7 @@ impl Factorised {
                 beta_prior.map_or(0.0, |bp| bp.prec[j - lay.fixed_offset])
             }
         };
-        let (chol, diag, half, mean_u) = match &stats.normal {
+        let (chol, diag, half, mean_u) = match stats.normal.as_ref() {
             Normal::Dense { wtw, c } => {
                 let mut m = wtw * lambda;
                 for (ck, &dk) in c.iter().zip(&d) {
@@ -208,6 +226,28 @@ impl Factorised {
             quad,
             log_det_prior_re,
         })
+    }
+
+    /// Re-evaluate the parts that depend on the response (`r`, `mu' Q mu`, the mean of
+    /// `u`) after censored values moved (`censored.rs`); the factor depends on the
+    /// standard deviations alone and is kept.
+    pub fn refresh(&mut self, stats: &SuffStats, beta_prior: Option<&BetaPrior>) {
+        let (r, quad_sites) = rhs(stats, self.lambda, &self.d, beta_prior);
+        let (half, mean_u) = match &self.chol {
+            Solver::Dense(c) => {
+                let half = c
+                    .l_dirty()
+                    .solve_lower_triangular(&r)
+                    .map_or(f64::INFINITY, |z| z.norm_squared());
+                (half, c.solve(&r))
+            }
+            Solver::Sparse(f) => {
+                let (half, mean_u) = f.half_and_solve(r.as_slice());
+                (half, DVector::from_vec(mean_u))
+            }
+        };
+        self.quad = quad_sites + half;
+        self.mean_u = mean_u;
     }
 
     /// `-2 log L_REML` in the standardised parameterisation (flat prior on `beta`).

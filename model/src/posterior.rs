@@ -232,6 +232,7 @@ pub(crate) fn basis_columns(available: usize, keep: usize) -> Vec<usize> {
 /// the resolved priors and the coefficients' prior in the chains' parameterisation.
 struct Prepared {
     stats: SuffStats,
+    censored: Option<crate::censored::Augmented>,
     sd_names: Vec<String>,
     resolved: ResolvedPriors,
     beta_prior: BetaPrior,
@@ -244,8 +245,10 @@ impl Prepared {
         let resolved =
             priors.resolve(&sd_names, &data.covariate_names, stats.y_mean, stats.y_sd)?;
         let beta_prior = beta_prior(&resolved, &stats);
+        let censored = crate::censored::Augmented::new(data, &stats);
         Ok(Prepared {
             stats,
+            censored,
             sd_names,
             resolved,
             beta_prior,
@@ -257,6 +260,7 @@ impl Prepared {
             stats: &self.stats,
             sd_priors: self.resolved.sd.iter().map(|(_, p)| *p).collect(),
             beta_prior: self.beta_prior.clone(),
+            censored: self.censored.clone(),
         }
     }
 }

@@ -69,6 +69,12 @@ pub fn fit_point_using(
     method: Method,
     normal: NormalEquations,
 ) -> Result<PointFit, ModelError> {
+    if data.n_censored() > 0 {
+        return Err(ModelError::Censored {
+            censored: data.n_censored(),
+            observations: data.n_obs(),
+        });
+    }
     if let Some((factor, levels)) = data.factor_levels().into_iter().find(|(_, l)| *l < 2) {
         return Err(ModelError::TooFewLevels { factor, levels });
     }

@@ -27,6 +27,7 @@
 //! Chains run on a thread pool; chain `c` draws from its own ChaCha stream `(seed, c)`, so
 //! the draws for a seed are the same whatever the number of threads.
 
+use crate::censored::Augmented;
 use crate::error::ModelError;
 use crate::marginal::{BetaPrior, Factorised};
 use crate::priors::SdPrior;
@@ -166,25 +167,47 @@ pub(crate) struct Target<'a> {
     pub stats: &'a SuffStats,
     pub sd_priors: Vec<SdPrior>,
     pub beta_prior: BetaPrior,
+    /// The censored values with their provisional starting values; each chain moves its
+    /// own copy (`censored.rs`), and its target is then the posterior given the current
+    /// values.
+    pub censored: Option<Augmented>,
 }
 
 impl Target<'_> {
     pub fn eval(&self, eta: &[f64]) -> Option<(f64, Factorised)> {
+        self.eval_with(self.stats, eta)
+    }
+
+    /// [`Target::eval`] on a chain's own statistics (censored values moved).
+    pub fn eval_with(&self, stats: &SuffStats, eta: &[f64]) -> Option<(f64, Factorised)> {
         if eta.iter().any(|e| !e.is_finite() || e.abs() > 700.0) {
             return None;
         }
         let sds: Vec<f64> = eta.iter().map(|e| e.exp()).collect();
-        let fac = Factorised::new(self.stats, &sds, Some(&self.beta_prior))?;
-        // Density of eta = log sd: prior of sd times the Jacobian sd.
-        let prior: f64 = self
-            .sd_priors
-            .iter()
-            .zip(&sds)
-            .zip(eta)
-            .map(|((p, &s), &e)| p.ln_pdf(s) + e)
-            .sum();
-        let lp = fac.log_marginal(self.stats, &self.beta_prior) + prior;
+        let fac = Factorised::new(stats, &sds, Some(&self.beta_prior))?;
+        let lp = fac.log_marginal(stats, &self.beta_prior) + self.log_prior(eta);
         lp.is_finite().then_some((lp, fac))
+    }
+
+    /// Density of `eta = log sd`: the prior of the sds times the Jacobian `sd`.
+    fn log_prior(&self, eta: &[f64]) -> f64 {
+        self.sd_priors
+            .iter()
+            .zip(eta)
+            .map(|(p, &e)| p.ln_pdf(e.exp()) + e)
+            .sum()
+    }
+
+    /// The log density at the current `eta` after the censored values moved: the factor
+    /// is kept, the response parts of `fac` are evaluated again.
+    fn rescore(&self, stats: &SuffStats, eta: &[f64], fac: &mut Factorised) -> f64 {
+        fac.refresh(stats, Some(&self.beta_prior));
+        let lp = fac.log_marginal(stats, &self.beta_prior) + self.log_prior(eta);
+        if lp.is_finite() {
+            lp
+        } else {
+            f64::NEG_INFINITY
+        }
     }
 
     pub fn log_density(&self, eta: &[f64]) -> f64 {
@@ -327,6 +350,7 @@ pub(crate) fn run_chain(
     let mut rng = ChaCha8Rng::seed_from_u64(settings.seed);
     rng.set_stream(chain as u64 + 1);
 
+    let mut aug = target.censored.clone();
     let mut eta = start.eta.clone();
     let (mut lp, mut fac) = target
         .eval(&eta)
@@ -381,7 +405,8 @@ pub(crate) fn run_chain(
                 walk.step_normal(&eta, log_rw_scale.exp(), &mut rng)
             };
             let mut accepted = false;
-            if let Some((lp_new, fac_new)) = target.eval(&proposal) {
+            let now = aug.as_ref().map_or(stats, |a| &a.stats);
+            if let Some((lp_new, fac_new)) = target.eval_with(now, &proposal) {
                 let mut log_ratio = lp_new - lp;
                 if independence {
                     log_ratio += indep.ln_t(&eta) - indep.ln_t(&proposal);
@@ -418,6 +443,11 @@ pub(crate) fn run_chain(
                     walk = fit;
                 }
             }
+            if let Some(a) = aug.as_mut() {
+                let u = fac.draw_u(&mut rng);
+                a.sweep(&fac, u.as_slice(), None, &mut rng);
+                lp = target.rescore(&a.stats, &eta, &mut fac);
+            }
             continue;
         }
         let saved = it - warmup;
@@ -425,11 +455,19 @@ pub(crate) fn run_chain(
         let u = fac.draw_u(&mut rng);
         out.beta_std
             .extend((0..lay.p).map(|j| u[lay.fixed_offset + j]));
+        let mut sites_drawn = false;
         if saved % thin == thin - 1 && out.effect_index.len() < n_effect {
-            fac.draw_sites(stats, u.as_slice(), &mut rng, &mut site_buf);
+            let now = aug.as_ref().map_or(stats, |a| &a.stats);
+            fac.draw_sites(now, u.as_slice(), &mut rng, &mut site_buf);
             out.site_effects.extend_from_slice(&site_buf);
             out.u_effects.extend(u.iter());
             out.effect_index.push(saved);
+            sites_drawn = true;
+        }
+        if let Some(a) = aug.as_mut() {
+            let sites = sites_drawn.then_some(site_buf.as_slice());
+            a.sweep(&fac, u.as_slice(), sites, &mut rng);
+            lp = target.rescore(&a.stats, &eta, &mut fac);
         }
     }
     out.end = eta;

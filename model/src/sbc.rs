@@ -3,7 +3,7 @@
 //! the rank of each true value among thinned posterior draws. With an exact sampler the
 //! ranks are uniform; a chi-square test of the rank histogram checks it.
 
-use crate::data::DataBuilder;
+use crate::data::{Censoring, DataBuilder};
 use crate::error::ModelError;
 use crate::posterior::sample;
 use crate::priors::{NormalPrior, Priors, SdPrior};
@@ -25,6 +25,10 @@ pub struct SbcSpec {
     pub coefficient: NormalPrior,
     /// Posterior draws kept per replicate (ranks run 0..=kept).
     pub kept: usize,
+    /// Values on this side of this limit are delivered censored. The limit is fixed by
+    /// the design, not by the parameters or the data, so the censoring is ignorable and
+    /// the censored likelihood is the right one.
+    pub censor: Option<(Censoring, f64)>,
     pub settings: SamplerSettings,
 }
 
@@ -38,6 +42,7 @@ impl Default for SbcSpec {
             intercept: NormalPrior { mean: 1.0, sd: 1.0 },
             coefficient: NormalPrior { mean: 0.0, sd: 0.5 },
             kept: 99,
+            censor: None,
             settings: SamplerSettings {
                 chains: 2,
                 draws: 500,
@@ -53,8 +58,17 @@ impl Default for SbcSpec {
 /// The quantities ranked, in order.
 pub const SBC_QUANTITIES: [&str; 5] = ["sd residual", "sd site", "sd year", "intercept", "coef x"];
 
+/// What one replicate gives.
+#[derive(Debug, Clone)]
+pub struct Replicate {
+    /// Ranks of the true values of [`SBC_QUANTITIES`].
+    pub ranks: Vec<usize>,
+    pub censored: usize,
+    pub observations: usize,
+}
+
 /// One replicate: ranks of the true values of [`SBC_QUANTITIES`].
-pub fn sbc_replicate(spec: &SbcSpec, seed: u64) -> Result<Vec<usize>, ModelError> {
+pub fn sbc_replicate(spec: &SbcSpec, seed: u64) -> Result<Replicate, ModelError> {
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
     let sd_resid = spec.sd_prior.sample(&mut rng);
     let sd_site = spec.sd_prior.sample(&mut rng);
@@ -80,7 +94,16 @@ pub fn sbc_replicate(spec: &SbcSpec, seed: u64) -> Result<Vec<usize>, ModelError
     let mut b = DataBuilder::new(vec!["x".into()], vec![]);
     for &(s, t, x, e) in &rows {
         let y = intercept + coef_std * (x - mean_x) / sd_x + site[s] + year[t] + sd_resid * e;
-        b.push(&format!("s{s}"), 2000 + t as i32, &[], &[x], y)?;
+        let site = format!("s{s}");
+        match spec.censor {
+            Some((Censoring::Below, limit)) if y < limit => {
+                b.push_censored(&site, 2000 + t as i32, &[], &[x], Censoring::Below, limit)?
+            }
+            Some((Censoring::Above, limit)) if y > limit => {
+                b.push_censored(&site, 2000 + t as i32, &[], &[x], Censoring::Above, limit)?
+            }
+            _ => b.push(&site, 2000 + t as i32, &[], &[x], y)?,
+        }
     }
     let data = b.build()?;
     let priors = Priors {
@@ -105,7 +128,7 @@ pub fn sbc_replicate(spec: &SbcSpec, seed: u64) -> Result<Vec<usize>, ModelError
     ];
     let total = post.chains * post.draws;
     let step = (total / spec.kept).max(1);
-    let ranks = truth
+    let ranks: Vec<usize> = truth
         .iter()
         .enumerate()
         .map(|(q, &true_value)| {
@@ -121,7 +144,11 @@ pub fn sbc_replicate(spec: &SbcSpec, seed: u64) -> Result<Vec<usize>, ModelError
                 .count()
         })
         .collect();
-    Ok(ranks)
+    Ok(Replicate {
+        ranks,
+        censored: data.n_censored(),
+        observations: data.n_obs(),
+    })
 }
 
 /// Chi-square test of uniformity of ranks in `0..=max_rank`, pooled into `bins` bins.

@@ -582,3 +582,33 @@ pub fn observer_data(
     };
     rows_data(&rows, spec.covariates, &[group])
 }
+
+/// `data` with every value on `side` of the empirical `share` quantile of the response
+/// delivered as censored at that limit (benchmarks and demonstrations; a limit taken from
+/// the data is not what a laboratory does, but it fixes the censored share). Returns the
+/// censored data and the limit.
+pub fn censor_share(data: &Data, side: crate::Censoring, share: f64) -> (Data, f64) {
+    let mut sorted = data.response.clone();
+    sorted.sort_by(f64::total_cmp);
+    let at = |p: f64| {
+        let k = ((sorted.len() as f64 * p) as usize).min(sorted.len() - 1);
+        sorted[k]
+    };
+    let limit = match side {
+        crate::Censoring::Below => at(share),
+        crate::Censoring::Above => at(1.0 - share),
+    };
+    let mut out = data.clone();
+    out.censored.clear();
+    for (i, y) in out.response.iter_mut().enumerate() {
+        let beyond = match side {
+            crate::Censoring::Below => *y < limit,
+            crate::Censoring::Above => *y > limit,
+        };
+        if beyond {
+            *y = limit;
+            out.censored.push((i as u32, side));
+        }
+    }
+    (out, limit)
+}

@@ -104,6 +104,29 @@ impl Layout {
     }
 }
 
+/// Row `i` of `W` as (index in `u`, value): its year, its group levels, the intercept and
+/// its standardised covariates.
+pub(crate) fn design_row(
+    data: &Data,
+    layout: &Layout,
+    (cov_mean, cov_sd): (&[f64], &[f64]),
+    i: usize,
+    out: &mut Vec<(usize, f64)>,
+) {
+    out.clear();
+    out.push((data.year[i] as usize, 1.0));
+    for (k, g) in data.groups.iter().enumerate() {
+        out.push((layout.group_offsets[k] + g[i] as usize, 1.0));
+    }
+    out.push((layout.fixed_offset, 1.0));
+    for (j, c) in data.covariates.iter().enumerate() {
+        out.push((
+            layout.fixed_offset + 1 + j,
+            (c[i] - cov_mean[j]) / cov_sd[j],
+        ));
+    }
+}
+
 /// Sites that share one observation count.
 #[derive(Debug, Clone)]
 pub(crate) struct CountClass {
@@ -124,16 +147,19 @@ pub(crate) struct SuffStats {
     pub y_sd: f64,
     pub cov_mean: Vec<f64>,
     pub cov_sd: Vec<f64>,
-    pub normal: Normal,
+    /// The design part, shared: chains that move censored values (`censored.rs`) clone
+    /// the rest, which depends on the response.
+    pub normal: std::sync::Arc<Normal>,
     pub wty: DVector<f64>,
     pub yty: f64,
     pub classes: Vec<CountClass>,
     pub site_class: Vec<usize>,
     pub site_ysum: Vec<f64>,
     /// Sparse `w_s` per site: entries `site_w_idx[site_w_ptr[s]..site_w_ptr[s+1]]`.
-    pub site_w_ptr: Vec<usize>,
-    pub site_w_idx: Vec<u32>,
-    pub site_w_val: Vec<f64>,
+    /// Shared like `normal`: they do not depend on the response.
+    pub site_w_ptr: std::sync::Arc<Vec<usize>>,
+    pub site_w_idx: std::sync::Arc<Vec<u32>>,
+    pub site_w_val: std::sync::Arc<Vec<f64>>,
 }
 
 impl SuffStats {
@@ -164,18 +190,7 @@ impl SuffStats {
         // One sparse row of W per observation: (index in u, value).
         let nnz = 1 + data.groups.len() + layout.p;
         let row = |i: usize, out: &mut Vec<(usize, f64)>| {
-            out.clear();
-            out.push((data.year[i] as usize, 1.0));
-            for (k, g) in data.groups.iter().enumerate() {
-                out.push((layout.group_offsets[k] + g[i] as usize, 1.0));
-            }
-            out.push((layout.fixed_offset, 1.0));
-            for (j, c) in data.covariates.iter().enumerate() {
-                out.push((
-                    layout.fixed_offset + 1 + j,
-                    (c[i] - cov_mean[j]) / cov_sd[j],
-                ));
-            }
+            design_row(data, &layout, (&cov_mean, &cov_sd), i, out)
         };
 
         // Kept sparse, W'W and the classes' C_k live on the plan's pattern instead.
@@ -279,7 +294,7 @@ impl SuffStats {
             }
         }
 
-        let normal = if sparse {
+        let normal = std::sync::Arc::new(if sparse {
             let plan = SparsePlan::new(
                 q,
                 layout.n_years,
@@ -302,7 +317,7 @@ impl SuffStats {
             ))
         } else {
             Normal::Dense { wtw, c: class_c }
-        };
+        });
         Ok(SuffStats {
             layout,
             n_obs: n,
@@ -317,9 +332,9 @@ impl SuffStats {
             classes,
             site_class,
             site_ysum,
-            site_w_ptr,
-            site_w_idx,
-            site_w_val,
+            site_w_ptr: site_w_ptr.into(),
+            site_w_idx: site_w_idx.into(),
+            site_w_val: site_w_val.into(),
         })
     }
 

@@ -6,9 +6,9 @@ use std::alloc::{GlobalAlloc, Layout, System};
 use std::sync::atomic::{AtomicUsize, Ordering};
 
 use tidemark_model::simulate::{
-    observer_data, simulate, NetworkSpec, ObserverAssignment, ObserverSpec,
+    censor_share, observer_data, simulate, NetworkSpec, ObserverAssignment, ObserverSpec,
 };
-use tidemark_model::{memory_estimate, sample, Controls, Priors, SamplerSettings};
+use tidemark_model::{memory_estimate, sample, Censoring, Controls, Priors, SamplerSettings};
 
 struct Counting;
 
@@ -52,10 +52,12 @@ fn measured_peak(data: &tidemark_model::Data, s: &SamplerSettings) -> u64 {
 #[test]
 fn the_estimate_covers_the_measured_peak_and_is_not_far_above_it() {
     let cases = [
-        (12usize, 4usize, 2usize, 40_000usize, 1usize, None),
-        (12, 4, 4, 20_000, 4, None),
-        (12, 4, 6, 10_000, 2, None),
-        (300, 12, 2, 2_000, 2, None),
+        (12usize, 4usize, 2usize, 40_000usize, 1usize, None, 0.0),
+        (12, 4, 4, 20_000, 4, None, 0.0),
+        (12, 4, 6, 10_000, 2, None, 0.0),
+        (300, 12, 2, 2_000, 2, None, 0.0),
+        // Half the values censored: every chain's own copy of the moving statistics.
+        (4000, 20, 4, 100, 2, None, 0.5),
         (
             2000,
             10,
@@ -63,9 +65,10 @@ fn the_estimate_covers_the_measured_peak_and_is_not_far_above_it() {
             300,
             2,
             Some((1500, ObserverAssignment::Blocks)),
+            0.0,
         ),
     ];
-    for (sites, years, chains, draws, threads, observers) in cases {
+    for (sites, years, chains, draws, threads, observers, censored) in cases {
         let spec = NetworkSpec {
             sites,
             years,
@@ -84,6 +87,11 @@ fn the_estimate_covers_the_measured_peak_and_is_not_far_above_it() {
                 observer_data(&spec, &o).unwrap()
             }
         };
+        let data = if censored > 0.0 {
+            censor_share(&data, Censoring::Below, censored).0
+        } else {
+            data
+        };
         let s = SamplerSettings {
             chains,
             draws,
@@ -94,7 +102,7 @@ fn the_estimate_covers_the_measured_peak_and_is_not_far_above_it() {
         let peak = measured_peak(&data, &s);
         let estimate = memory_estimate(&data, &s);
         let case = format!(
-            "{sites} sites x {years} years, observers {observers:?}, {chains} chains x {draws} draws, {threads} threads"
+            "{sites} sites x {years} years, observers {observers:?}, censored {censored}, {chains} chains x {draws} draws, {threads} threads"
         );
         assert!(
             estimate >= peak,
