@@ -96,7 +96,7 @@ fn every_defect_in_the_manifest_is_on_the_line_and_column_it_names() {
         assert_eq!(&row[col], &d[6], "{} line {line} column {}", &d[0], &d[5]);
         assert_eq!(&row[0], &d[2]);
         assert_eq!((&row[1], &row[2]), (&d[3], &d[4]));
-        if ["superseded", "correction"].contains(&&d[7]) || d[7].starts_with("rej") {
+        if ["superseded", "correction", "censored"].contains(&&d[7]) || d[7].starts_with("rej") {
             assert!(!d[8].is_empty(), "a true value for {:?}", d);
         }
         n += 1;

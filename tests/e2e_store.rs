@@ -398,7 +398,7 @@ fn only_the_store_writes_sql() {
 /// rows join the current values of each visit.
 #[test]
 fn series_rows_and_watermarks_follow_the_current_values() {
-    use tidemark_service::store::{SeriesRow, Store};
+    use tidemark_service::store::{SeriesRow, Store, StoredValue};
     let net = Network::initialised();
     let header = "lake,season,visit,chl_ug_l,tp_ug_l,surface_temp_c,crew";
     net.drop_file(
@@ -418,7 +418,12 @@ fn series_rows_and_watermarks_follow_the_current_values() {
             .await
             .expect("watermark");
         let rows = store
-            .load_series_rows("chl_ug_l", &cols(&["surface_temp_c"]), &cols(&["crew"]))
+            .load_series_rows(
+                "chl_ug_l",
+                &cols(&["surface_temp_c"]),
+                &cols(&["crew"]),
+                None,
+            )
             .await
             .expect("rows");
         store.close().await;
@@ -431,25 +436,28 @@ fn series_rows_and_watermarks_follow_the_current_values() {
                 site: "L1".into(),
                 year: 2020,
                 visit: "1".into(),
-                response: Some(3.2),
-                covariates: vec![Some(18.5)],
+                response: Some(StoredValue::Number(3.2)),
+                covariates: vec![Some(StoredValue::Number(18.5))],
                 groups: vec![Some("A".into())],
+                qualifier: None,
             },
             SeriesRow {
                 site: "L1".into(),
                 year: 2020,
                 visit: "2".into(),
                 response: None,
-                covariates: vec![Some(17.0)],
+                covariates: vec![Some(StoredValue::Number(17.0))],
                 groups: vec![Some("B".into())],
+                qualifier: None,
             },
             SeriesRow {
                 site: "L2".into(),
                 year: 2021,
                 visit: "1".into(),
-                response: Some(4.0),
+                response: Some(StoredValue::Number(4.0)),
                 covariates: vec![None],
                 groups: vec![None],
+                qualifier: None,
             },
         ]
     );
@@ -472,7 +480,7 @@ fn series_rows_and_watermarks_follow_the_current_values() {
             .expect("w");
         let w3 = store.series_watermark(&chl).await.expect("w");
         let rows = store
-            .load_series_rows("chl_ug_l", &[], &[])
+            .load_series_rows("chl_ug_l", &[], &[], None)
             .await
             .expect("rows");
         (w2, w3, rows)
@@ -480,7 +488,7 @@ fn series_rows_and_watermarks_follow_the_current_values() {
     assert!(w2 > w1);
     assert!(w3 > w2);
     assert_eq!(rows.len(), 2);
-    assert_eq!(rows[1].response, Some(4.5));
+    assert_eq!(rows[1].response, Some(StoredValue::Number(4.5)));
 }
 
 /// Values read back for a fit are the doubles that were ingested, to the last bit, also
@@ -488,7 +496,7 @@ fn series_rows_and_watermarks_follow_the_current_values() {
 /// survive the per-site aggregation.
 #[test]
 fn series_rows_round_trip_every_double_exactly() {
-    use tidemark_service::store::Store;
+    use tidemark_service::store::{Store, StoredValue};
     let net = Network::initialised();
     let values: [f64; 6] = [
         0.1 + 0.2,
@@ -512,13 +520,16 @@ fn series_rows_round_trip_every_double_exactly() {
     let rows = rt.block_on(async {
         let store = Store::open(&net.db_path()).await.expect("open");
         let rows = store
-            .load_series_rows("chl_ug_l", &[], &[])
+            .load_series_rows("chl_ug_l", &[], &[], None)
             .await
             .expect("rows");
         store.close().await;
         rows
     });
-    let got: Vec<f64> = rows.iter().map(|r| r.response.unwrap()).collect();
+    let got: Vec<f64> = rows
+        .iter()
+        .map(|r| r.response.as_ref().and_then(StoredValue::number).unwrap())
+        .collect();
     assert_eq!(
         got.iter().map(|v| v.to_bits()).collect::<Vec<_>>(),
         values.iter().map(|v| v.to_bits()).collect::<Vec<_>>()

@@ -5,11 +5,43 @@ use std::fmt;
 
 use crate::collect::YEARS;
 
-/// A value's content: a number, or an index into [`BatchValues::labels`].
+/// A value's content: a number, a censored number (its limit), or text (an index into
+/// [`BatchValues::labels`]: a group label, or a cell of a column no series reads as a
+/// number, kept verbatim).
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub enum Cell {
     Num(f64),
+    /// `<x` (below `x`) or `>x` (above `x`): known only to lie on one side of a limit.
+    Censored(Censor, f64),
     Label(u32),
+}
+
+/// Which side of its limit a censored value lies on.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum Censor {
+    /// `<x`: below a detection or reporting limit.
+    Below,
+    /// `>x`: beyond a measuring range.
+    Above,
+}
+
+impl Censor {
+    /// The word stored in `observations.censoring`.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Censor::Below => "below",
+            Censor::Above => "above",
+        }
+    }
+
+    /// The inverse of [`Censor::as_str`].
+    pub fn parse(word: &str) -> Option<Censor> {
+        match word {
+            "below" => Some(Censor::Below),
+            "above" => Some(Censor::Above),
+            _ => None,
+        }
+    }
 }
 
 /// One accepted value. Site, visit and column are indices into the tables of
@@ -44,6 +76,7 @@ pub enum RejectionKind {
     TooLarge,
     TooSmall,
     NotALabel,
+    CensoredLimit,
     NoSite,
     SiteNotTextOrInteger,
     NoYear,
@@ -63,6 +96,7 @@ impl fmt::Display for RejectionKind {
             RejectionKind::TooLarge => "too large for 64-bit floating point",
             RejectionKind::TooSmall => "too small for 64-bit floating point",
             RejectionKind::NotALabel => "not usable as a group label",
+            RejectionKind::CensoredLimit => "censoring limit not usable",
             RejectionKind::NoSite => "no site",
             RejectionKind::SiteNotTextOrInteger => "site not text or an integer",
             RejectionKind::NoYear => "no year",

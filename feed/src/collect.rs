@@ -3,7 +3,8 @@
 
 use std::collections::HashMap;
 
-use crate::batch::{BatchValues, Cell, NewRejection, NewValue, RejectionKind};
+use crate::batch::{BatchValues, Cell, Censor, NewRejection, NewValue, RejectionKind};
+use crate::layout::FileLayout;
 
 /// Visit label stored when a file has no visit column, or an empty visit cell.
 pub const DEFAULT_VISIT: &str = "1";
@@ -78,8 +79,11 @@ impl RawCell<'_> {
 /// What a measurement column holds.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum ColumnKind {
+    /// Numbers (or censored numbers): a series reads them.
     Numeric,
     Label,
+    /// No series reads it: numbers where the cell is one, its text verbatim otherwise.
+    Free,
 }
 
 /// A measurement column of the file being read.
@@ -87,6 +91,8 @@ pub enum ColumnKind {
 pub struct Measure {
     pub name: String,
     pub kind: ColumnKind,
+    /// Read on the log scale by some series: a `<x` needs `x > 0`.
+    pub positive: bool,
 }
 
 type Key = (u32, i32, u32, u32);
@@ -104,6 +110,7 @@ struct Seen {
 /// Accumulates one file's values.
 pub struct Collector {
     measures: Vec<Measure>,
+    missing: MissingCodes,
     site_col: String,
     year_col: String,
     values: BatchValues,
@@ -135,16 +142,53 @@ fn intern(map: &mut HashMap<String, u32>, table: &mut Vec<String>, s: &str) -> u
     i
 }
 
+/// The cells that mean "no value" besides the empty one.
+#[derive(Debug, Clone, Default)]
+struct MissingCodes {
+    text: Vec<String>,
+    /// The codes that are numbers: they match typed cells (and other spellings) of that
+    /// number, so `-999`, `-999.0` and an Arrow integer -999 are all missing.
+    numbers: Vec<f64>,
+}
+
+impl MissingCodes {
+    fn new(codes: &[String]) -> MissingCodes {
+        MissingCodes {
+            text: codes.iter().map(|c| c.trim().to_string()).collect(),
+            numbers: codes
+                .iter()
+                .filter_map(|c| c.trim().parse::<f64>().ok())
+                .filter(|x| x.is_finite())
+                .collect(),
+        }
+    }
+
+    fn matches(&self, cell: RawCell<'_>) -> bool {
+        let number = |x: f64| self.numbers.contains(&x);
+        match cell {
+            RawCell::Text(t) => {
+                let t = t.trim();
+                self.text.iter().any(|c| c == t)
+                    || (!self.numbers.is_empty() && t.parse::<f64>().is_ok_and(number))
+            }
+            RawCell::Int(i) => number(i as f64),
+            RawCell::Float(x) => number(x),
+            RawCell::Empty | RawCell::Unsupported(_) => false,
+        }
+    }
+}
+
 impl Collector {
-    pub fn new(site_col: &str, year_col: &str, measures: Vec<Measure>) -> Collector {
+    pub fn new(layout: &FileLayout, measures: Vec<Measure>) -> Collector {
         let values = BatchValues {
             columns: measures.iter().map(|m| m.name.clone()).collect(),
             ..BatchValues::default()
         };
         Collector {
             measures,
-            site_col: site_col.to_string(),
-            year_col: year_col.to_string(),
+            missing: MissingCodes::new(&layout.missing),
+            site_col: layout.keys.site.clone(),
+            year_col: layout.keys.year.clone(),
             values,
             site_ix: HashMap::new(),
             visit_ix: HashMap::new(),
@@ -260,11 +304,20 @@ impl Collector {
         let visit_i = intern(&mut self.visit_ix, &mut self.values.visits, &visit_label);
 
         for (col_i, (m, cell)) in measures.iter().zip(cells.iter()).enumerate() {
-            if cell.is_empty() {
+            if cell.is_empty() || self.missing.matches(*cell) {
                 continue;
             }
             let parsed = match m.kind {
-                ColumnKind::Numeric => parse_number(*cell).map(Cell::Num),
+                ColumnKind::Numeric => parse_value(*cell, m.positive),
+                ColumnKind::Free => match (parse_value(*cell, false), cell) {
+                    (Ok(v), _) => Ok(v),
+                    (Err(_), RawCell::Text(t)) => Ok(Cell::Label(intern(
+                        &mut self.label_ix,
+                        &mut self.values.labels,
+                        t,
+                    ))),
+                    (Err(e), _) => Err(e),
+                },
                 ColumnKind::Label => match cell {
                     RawCell::Text(t) => Ok(Cell::Label(intern(
                         &mut self.label_ix,
@@ -393,9 +446,48 @@ impl Collector {
 fn same_cell(a: Cell, b: Cell) -> bool {
     match (a, b) {
         (Cell::Num(x), Cell::Num(y)) => x.to_bits() == y.to_bits() || x == y,
+        (Cell::Censored(s, x), Cell::Censored(t, y)) => s == t && x == y,
         (Cell::Label(i), Cell::Label(j)) => i == j,
         _ => false,
     }
+}
+
+/// A measured value: a number, or `<x` / `>x` (spaces allowed around both parts) for a
+/// value censored at the finite number `x`. Under `positive` (a column read on the log
+/// scale) a `<x` needs `x > 0`.
+pub fn parse_value(cell: RawCell<'_>, positive: bool) -> Result<Cell, CellError> {
+    let RawCell::Text(text) = cell else {
+        return parse_number(cell).map(Cell::Num);
+    };
+    let t = text.trim();
+    let (side, rest) = if let Some(rest) = t.strip_prefix('<') {
+        (Censor::Below, rest)
+    } else if let Some(rest) = t.strip_prefix('>') {
+        (Censor::Above, rest)
+    } else {
+        return parse_number(cell).map(Cell::Num);
+    };
+    let limit = parse_number(RawCell::Text(rest)).map_err(|why| {
+        CellError::new(
+            RejectionKind::CensoredLimit,
+            format!(
+                "`{}` is censored at a limit that is not usable: {}",
+                excerpt(t),
+                why.reason
+            ),
+        )
+    })?;
+    if positive && side == Censor::Below && limit <= 0.0 {
+        return Err(CellError::new(
+            RejectionKind::CensoredLimit,
+            format!(
+                "`{}`: a series reads this column on the log scale, where no value lies \
+                 below a limit that is not positive",
+                excerpt(t)
+            ),
+        ));
+    }
+    Ok(Cell::Censored(side, limit))
 }
 
 /// A measurement value: finite, within f64.
@@ -526,8 +618,106 @@ mod tests {
             .map(|n| Measure {
                 name: n.to_string(),
                 kind: ColumnKind::Numeric,
+                positive: false,
             })
             .collect()
+    }
+
+    fn collector(measures: Vec<Measure>) -> Collector {
+        let keys = crate::KeyColumns {
+            site: "lake".into(),
+            year: "season".into(),
+            visit: None,
+        };
+        Collector::new(&FileLayout::numeric(keys, Default::default()), measures)
+    }
+
+    #[test]
+    fn censored_cells_parse_with_spaces_and_refuse_unusable_limits() {
+        let t = RawCell::Text;
+        assert_eq!(
+            parse_value(t("<0.5"), true),
+            Ok(Cell::Censored(Censor::Below, 0.5))
+        );
+        assert_eq!(
+            parse_value(t("  < 0.5 "), false),
+            Ok(Cell::Censored(Censor::Below, 0.5))
+        );
+        assert_eq!(
+            parse_value(t(">7.5"), true),
+            Ok(Cell::Censored(Censor::Above, 7.5))
+        );
+        assert_eq!(
+            parse_value(t("<-1"), false),
+            Ok(Cell::Censored(Censor::Below, -1.0))
+        );
+        assert_eq!(parse_value(t("3.25"), true), Ok(Cell::Num(3.25)));
+        assert_eq!(parse_value(RawCell::Float(2.0), true), Ok(Cell::Num(2.0)));
+        for bad in ["<", "<abc", "<NaN", ">inf", "<<1"] {
+            let (kind, reason) = refused(parse_value(t(bad), false));
+            assert_eq!(kind, RejectionKind::CensoredLimit, "{bad}");
+            assert!(reason.contains("not usable"), "{bad}: {reason}");
+        }
+        // Under a log series no value lies below a non-positive limit; above one is fine.
+        for bad in ["<0", "<-0.5", "< 0.0"] {
+            let (kind, reason) = refused(parse_value(t(bad), true));
+            assert_eq!(kind, RejectionKind::CensoredLimit);
+            assert!(reason.contains("log scale"), "{reason}");
+        }
+        assert_eq!(
+            parse_value(t(">0"), true),
+            Ok(Cell::Censored(Censor::Above, 0.0))
+        );
+    }
+
+    #[test]
+    fn missing_codes_are_neither_stored_nor_rejected_and_free_text_is_kept() {
+        let keys = crate::KeyColumns {
+            site: "lake".into(),
+            year: "season".into(),
+            visit: None,
+        };
+        let layout = FileLayout {
+            missing: vec!["NA".into(), " -999 ".into()],
+            ..FileLayout::numeric(keys, Default::default())
+        };
+        let measures = vec![
+            Measure {
+                name: "chl".into(),
+                kind: ColumnKind::Numeric,
+                positive: true,
+            },
+            Measure {
+                name: "remarks".into(),
+                kind: ColumnKind::Free,
+                positive: false,
+            },
+        ];
+        let mut c = Collector::new(&layout, measures);
+        let t = RawCell::Text;
+        c.row(2, t("A"), t("2020"), None, &[t("NA"), t("ice on, NA")]);
+        c.row(3, t("B"), t("2020"), None, &[t("-999.0"), t(" 12 ")]);
+        c.row(4, t("C"), t("2020"), None, &[RawCell::Int(-999), t("<0.2")]);
+        c.row(5, t("D"), t("2020"), None, &[t("<0.1"), t("NA")]);
+        c.row(6, t("E"), t("2020"), None, &[t("n.d."), RawCell::Empty]);
+        let (rows, values, rejections) = c.finish();
+        assert_eq!(rows, 5);
+        let cells: Vec<(u32, Cell)> = values.values.iter().map(|v| (v.site, v.cell)).collect();
+        assert_eq!(
+            cells,
+            [
+                (0, Cell::Label(0)),
+                (1, Cell::Num(12.0)),
+                (2, Cell::Censored(Censor::Below, 0.2)),
+                (3, Cell::Censored(Censor::Below, 0.1)),
+            ]
+        );
+        // Free text is kept verbatim, spaces and all.
+        assert_eq!(values.labels, ["ice on, NA"]);
+        // A column a series reads still rejects what is not a number.
+        assert_eq!(rejections.len(), 1);
+        assert_eq!(rejections[0].line, Some(6));
+        assert_eq!(rejections[0].kind, RejectionKind::NotANumber);
     }
 
     /// The error of a cell that must not parse: its kind and the start of its reason.
@@ -589,7 +779,7 @@ mod tests {
 
     #[test]
     fn conflicts_reject_every_occurrence_and_identical_repeats_stay_once() {
-        let mut c = Collector::new("lake", "season", numeric(&["chl", "tp"]));
+        let mut c = collector(numeric(&["chl", "tp"]));
         let t = RawCell::Text;
         c.row(2, t("A"), t("2020"), None, &[t("1.0"), t("5")]);
         c.row(3, t("A"), t("2020"), None, &[t("2.0"), t("5.0")]);
@@ -611,7 +801,7 @@ mod tests {
 
     #[test]
     fn identical_repeats_before_a_conflict_are_rejected_and_listed_too() {
-        let mut c = Collector::new("lake", "season", numeric(&["chl"]));
+        let mut c = collector(numeric(&["chl"]));
         let t = RawCell::Text;
         for (line, v) in [(2, "1.0"), (3, "1.0"), (4, "2.0"), (5, "1.00")] {
             c.row(line, t("A"), t("2020"), None, &[t(v)]);
@@ -638,7 +828,7 @@ mod tests {
 
     #[test]
     fn a_much_repeated_conflict_lists_a_few_lines() {
-        let mut c = Collector::new("lake", "season", numeric(&["chl"]));
+        let mut c = collector(numeric(&["chl"]));
         let t = RawCell::Text;
         let values: Vec<String> = (0..50).map(|i| i.to_string()).collect();
         for (i, v) in values.iter().enumerate() {
@@ -653,7 +843,7 @@ mod tests {
 
     #[test]
     fn a_row_without_site_is_rejected_value_by_value() {
-        let mut c = Collector::new("lake", "season", numeric(&["chl", "tp"]));
+        let mut c = collector(numeric(&["chl", "tp"]));
         let t = RawCell::Text;
         c.row(2, t(" "), t("2020"), None, &[t("1.0"), t("x")]);
         c.row(

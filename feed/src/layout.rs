@@ -13,11 +13,52 @@ pub struct KeyColumns {
     pub visit: Option<String>,
 }
 
-/// The key columns, and which other columns hold labels rather than numbers.
+/// The key columns, which other columns hold labels, which hold numbers, and the codes
+/// that mean "no value".
 #[derive(Debug, Clone)]
 pub struct FileLayout {
     pub keys: KeyColumns,
     pub labels: BTreeSet<String>,
+    /// Columns some series reads as numbers (a response or a covariate): a cell there that
+    /// is neither a number nor a censored number is rejected. A cell of any other column
+    /// that is not a number is kept verbatim as text, never rejected.
+    pub numbers: NumberColumns,
+    /// Columns some series reads on the log scale: a `<x` there needs `x > 0` (no positive
+    /// value lies below a non-positive limit).
+    pub positive: BTreeSet<String>,
+    /// Cells that mean "no value" (compared after trimming spaces; a code that is a
+    /// number also matches a typed cell of that number): neither stored nor rejected.
+    pub missing: Vec<String>,
+}
+
+/// Which columns are read as numbers.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum NumberColumns {
+    /// Every column that is not a key or a label.
+    All,
+    /// These; every other column keeps its non-number cells as text.
+    Only(BTreeSet<String>),
+}
+
+impl FileLayout {
+    /// A layout where every column that is not a label is read as numbers, with no
+    /// missing-value codes beyond the empty cell and no positive limits.
+    pub fn numeric(keys: KeyColumns, labels: BTreeSet<String>) -> FileLayout {
+        FileLayout {
+            keys,
+            labels,
+            numbers: NumberColumns::All,
+            positive: BTreeSet::new(),
+            missing: Vec::new(),
+        }
+    }
+
+    fn is_number_column(&self, name: &str) -> bool {
+        match &self.numbers {
+            NumberColumns::All => true,
+            NumberColumns::Only(set) => set.contains(name),
+        }
+    }
 }
 
 /// Why a file could not be read at all (it goes to quarantine with this reason).
@@ -77,9 +118,12 @@ impl FileLayout {
                 name: h.clone(),
                 kind: if self.labels.contains(h) {
                     ColumnKind::Label
-                } else {
+                } else if self.is_number_column(h) {
                     ColumnKind::Numeric
+                } else {
+                    ColumnKind::Free
                 },
+                positive: self.positive.contains(h),
             });
         }
         Ok(Plan {

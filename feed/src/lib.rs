@@ -17,10 +17,10 @@
 //! use std::collections::BTreeSet;
 //! use tidemark_feed::{parse_bytes, BatchContent, FileLayout, KeyColumns, RejectionKind};
 //!
-//! let layout = FileLayout {
-//!     keys: KeyColumns { site: "lake".into(), year: "season".into(), visit: None },
-//!     labels: BTreeSet::from(["crew".to_string()]),
-//! };
+//! let layout = FileLayout::numeric(
+//!     KeyColumns { site: "lake".into(), year: "season".into(), visit: None },
+//!     BTreeSet::from(["crew".to_string()]),
+//! );
 //! let csv = "lake,season,chl_ug_l,crew\nL1,2020,3.2,A\nL2,2020,abc,B\n";
 //! let (format, content) = parse_bytes(csv.as_bytes(), &layout);
 //! assert_eq!(format, Some("csv"));
@@ -44,10 +44,10 @@ mod layout;
 
 pub use arrow_feed::quiet_caught_panics;
 pub use batch::{
-    count_by_kind, BatchContent, BatchValues, Cell, NewRejection, NewValue, RejectionKind,
+    count_by_kind, BatchContent, BatchValues, Cell, Censor, NewRejection, NewValue, RejectionKind,
 };
 pub use collect::{DEFAULT_VISIT, YEARS};
-pub use layout::{FileLayout, KeyColumns};
+pub use layout::{FileLayout, KeyColumns, NumberColumns};
 
 use layout::Unreadable;
 

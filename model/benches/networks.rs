@@ -1,12 +1,13 @@
 //! Benchmarks of the model engine on generated networks B1–B3 (docs/architecture.md,
 //! "Contracts with outside readers"; figures in docs/benchmarks.md).
 //!
-//! `cargo bench -p tidemark-model --bench networks -- [b1] [b2] [b3] [reml]` (all when none
-//! is named). Figures are wall-clock on this machine; peak memory is the process's
+//! `cargo bench -p tidemark-model --bench networks -- [b1] [b2] [b3] [reml] [b1c] [b3c]`
+//! (the first four when none is named; `b1c` and `b3c` are B1 and B3 with 20% of the
+//! values left-censored). Figures are wall-clock on this machine; peak memory is the process's
 //! high-water mark (run one benchmark per process for a clean figure).
 
 use std::time::Instant;
-use tidemark_model::simulate::{simulate, simulate_rows, site_label, NetworkSpec};
+use tidemark_model::simulate::{self, simulate, simulate_rows, site_label, NetworkSpec};
 use tidemark_model::*;
 
 mod common;
@@ -63,6 +64,51 @@ fn b1() {
         last = Some(post);
     }
     describe("B1 cold fit (best of 5)", last.as_ref().unwrap(), best);
+}
+
+/// The share of values left-censored in `b1c` and `b3c`, below the empirical quantile.
+const CENSORED: f64 = 0.2;
+
+fn b1c() {
+    let (data, _) = simulate(&b1_spec());
+    let (data, limit) = simulate::censor_share(&data, Censoring::Below, CENSORED);
+    println!(
+        "B1 with {} of {} values left-censored at {limit:.3}, 4 chains x 1000 saved draws",
+        data.n_censored(),
+        data.n_obs()
+    );
+    let _ = fit(&data, None);
+    let mut best = f64::INFINITY;
+    let mut last = None;
+    for _ in 0..5 {
+        let (post, secs) = fit(&data, None);
+        best = best.min(secs);
+        last = Some(post);
+    }
+    describe(
+        "B1, 20% censored, cold fit (best of 5)",
+        last.as_ref().unwrap(),
+        best,
+    );
+}
+
+fn b3c() {
+    let spec = NetworkSpec {
+        sites: 20_000,
+        years: 25,
+        missing: 0.4,
+        ..Default::default()
+    };
+    let (data, _) = simulate(&spec);
+    let (data, limit) = simulate::censor_share(&data, Censoring::Below, CENSORED);
+    println!(
+        "B3 with {} of {} values left-censored at {limit:.3}",
+        data.n_censored(),
+        data.n_obs()
+    );
+    let (post, secs) = fit(&data, None);
+    describe("B3, 20% censored, cold fit", &post, secs);
+    println!("B3 censored peak memory: {:.0} MiB", peak_rss_mib());
 }
 
 fn reml() {
@@ -156,6 +202,13 @@ fn main() {
         .collect();
     let all = args.is_empty();
     let wants = |name: &str| all || args.iter().any(|a| a == name);
+    let named = |name: &str| args.iter().any(|a| a == name);
+    if named("b1c") {
+        b1c();
+    }
+    if named("b3c") {
+        b3c();
+    }
     if wants("reml") {
         reml();
     }

@@ -66,6 +66,41 @@ pub struct FeedDirs {
     pub inbox: PathBuf,
     pub archive: PathBuf,
     pub quarantine: PathBuf,
+    /// Cells that mean "no value" (`feed.missing`): neither stored nor rejected.
+    pub missing: Vec<String>,
+}
+
+/// `feed.missing` when the config does not set it: the empty cell, `NA` and `-999`, the
+/// codes agency deliveries use most.
+pub const DEFAULT_MISSING: [&str; 3] = ["", "NA", "-999"];
+
+/// A qualifier column that marks the series' response values as censored
+/// (`series.censoring`); the value column then holds the limit.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct CensoringColumn {
+    pub column: String,
+    /// Qualifiers meaning "below the limit" (e.g. `<`, `ND`).
+    #[serde(default)]
+    pub below: Vec<String>,
+    /// Qualifiers meaning "above the limit" (e.g. `>`).
+    #[serde(default)]
+    pub above: Vec<String>,
+}
+
+impl CensoringColumn {
+    /// The side a qualifier names (compared after trimming spaces); `None` for any other
+    /// qualifier, which leaves the value observed.
+    pub fn side(&self, qualifier: &str) -> Option<tidemark_feed::Censor> {
+        let q = qualifier.trim();
+        if self.below.iter().any(|b| b.trim() == q) {
+            Some(tidemark_feed::Censor::Below)
+        } else if self.above.iter().any(|a| a.trim() == q) {
+            Some(tidemark_feed::Censor::Above)
+        } else {
+            None
+        }
+    }
 }
 
 pub use tidemark_feed::KeyColumns;
@@ -78,6 +113,9 @@ pub struct SeriesConfig {
     pub transform: Transform,
     pub covariates: Vec<String>,
     pub groups: Vec<String>,
+    /// A qualifier column marking censored response values (cells written `<x` / `>x`
+    /// need none).
+    pub censoring: Option<CensoringColumn>,
     pub priors: Priors,
     pub sampler: SamplerConfig,
     /// Known-site forecasts are written only for sites observed within this many years
@@ -95,13 +133,18 @@ impl SeriesConfig {
     /// change no model.
     pub fn definition_sha256(&self) -> String {
         use sha2::{Digest, Sha256};
-        let definition = serde_json::json!({
+        let mut definition = serde_json::json!({
             "response": self.response,
             "transform": self.transform.as_str(),
             "covariates": self.covariates,
             "groups": self.groups,
             "priors": self.priors,
         });
+        // Only when set, so that a series without one keeps the digest it had before
+        // qualifier columns existed.
+        if let Some(c) = &self.censoring {
+            definition["censoring"] = serde_json::json!(c);
+        }
         hex::encode(Sha256::digest(definition.to_string().as_bytes()))
     }
 }
@@ -134,11 +177,13 @@ impl Config {
 pub const MAX_REPORT_SITES: usize = 48;
 
 impl SeriesConfig {
-    /// Every stored column this series reads: response, covariates, groups.
+    /// Every stored column this series reads: response, covariates, groups and the
+    /// censoring qualifier column.
     pub fn columns(&self) -> Vec<String> {
         let mut cols = vec![self.response.clone()];
         cols.extend(self.covariates.iter().cloned());
         cols.extend(self.groups.iter().cloned());
+        cols.extend(self.censoring.iter().map(|c| c.column.clone()));
         cols
     }
 }
@@ -259,6 +304,7 @@ struct RawFeed {
     inbox: String,
     archive: String,
     quarantine: String,
+    missing: Vec<String>,
 }
 impl Default for RawFeed {
     fn default() -> Self {
@@ -266,6 +312,7 @@ impl Default for RawFeed {
             inbox: "inbox".into(),
             archive: "archive".into(),
             quarantine: "quarantine".into(),
+            missing: DEFAULT_MISSING.iter().map(|c| c.to_string()).collect(),
         }
     }
 }
@@ -301,6 +348,7 @@ struct RawSeries {
     covariates: Vec<String>,
     #[serde(default)]
     groups: Vec<String>,
+    censoring: Option<CensoringColumn>,
     #[serde(default)]
     priors: Priors,
     #[serde(default)]
@@ -399,6 +447,7 @@ impl Config {
             inbox: resolve("feed.inbox", &raw.feed.inbox)?,
             archive: resolve("feed.archive", &raw.feed.archive)?,
             quarantine: resolve("feed.quarantine", &raw.feed.quarantine)?,
+            missing: raw.feed.missing,
         };
         let config_file = dir.join(Path::new(file).file_name().unwrap_or_default());
         check_folders(&config_file, &database, &feed).map_err(invalid)?;
@@ -434,19 +483,40 @@ impl Config {
     }
 
     /// Columns whose cells are labels (text) rather than numbers: the union of every
-    /// series' `groups`.
+    /// series' `groups` and censoring qualifier columns.
     pub fn label_columns(&self) -> BTreeSet<String> {
         self.series
             .iter()
-            .flat_map(|s| s.groups.iter().cloned())
+            .flat_map(|s| {
+                s.groups
+                    .iter()
+                    .cloned()
+                    .chain(s.censoring.iter().map(|c| c.column.clone()))
+            })
             .collect()
     }
 
-    /// How feed files are read under this config: its key columns and label columns.
+    /// How feed files are read under this config: its key columns, label columns, the
+    /// columns series read as numbers (responses, covariates), those read on the log
+    /// scale, and the missing-value codes.
     pub fn file_layout(&self) -> tidemark_feed::FileLayout {
+        let numbers = self
+            .series
+            .iter()
+            .flat_map(|s| std::iter::once(s.response.clone()).chain(s.covariates.clone()))
+            .collect();
+        let positive = self
+            .series
+            .iter()
+            .filter(|s| s.transform == Transform::Log)
+            .map(|s| s.response.clone())
+            .collect();
         tidemark_feed::FileLayout {
             keys: self.keys.clone(),
             labels: self.label_columns(),
+            numbers: tidemark_feed::NumberColumns::Only(numbers),
+            positive,
+            missing: self.feed.missing.clone(),
         }
     }
 
@@ -685,6 +755,9 @@ fn check_series(i: usize, rs: RawSeries, seen: &mut SeenSoFar) -> Result<SeriesC
     })?;
     check_key_columns(&rs, &at, seen)?;
     check_measured_columns(&rs, &at, seen)?;
+    if let Some(c) = &rs.censoring {
+        check_censoring(c, &at("censoring"))?;
+    }
     check_report_sites(&rs.report_sites, &at("report_sites"))?;
     check_priors(&rs.priors, &at("priors"))?;
     check_sampler(&rs.sampler, &at("sampler"))?;
@@ -694,6 +767,7 @@ fn check_series(i: usize, rs: RawSeries, seen: &mut SeenSoFar) -> Result<SeriesC
         transform,
         covariates: rs.covariates,
         groups: rs.groups,
+        censoring: rs.censoring,
         priors: rs.priors,
         sampler: rs.sampler,
         known_site_max_gap: rs.known_site_max_gap,
@@ -764,7 +838,12 @@ fn check_measured_columns(
     let mut in_series = BTreeSet::new();
     let roles = std::iter::once(("response", &rs.response, "numeric"))
         .chain(rs.covariates.iter().map(|c| ("covariates", c, "numeric")))
-        .chain(rs.groups.iter().map(|g| ("groups", g, "label")));
+        .chain(rs.groups.iter().map(|g| ("groups", g, "label")))
+        .chain(
+            rs.censoring
+                .iter()
+                .map(|c| ("censoring.column", &c.column, "label")),
+        );
     for (role, col, kind) in roles {
         let key = at(role);
         if col.trim().is_empty() {
@@ -794,6 +873,32 @@ fn check_measured_columns(
                 seen.column_kind.insert(col.clone(), (kind, key.clone()));
             }
         }
+    }
+    Ok(())
+}
+
+/// A qualifier column: at least one qualifier, none empty, none naming both sides.
+fn check_censoring(c: &CensoringColumn, key: &str) -> Result<(), Problem> {
+    if c.below.is_empty() && c.above.is_empty() {
+        return Err((
+            key.into(),
+            "name at least one qualifier in `below` or `above`".into(),
+        ));
+    }
+    for q in c.below.iter().chain(&c.above) {
+        if q.trim().is_empty() {
+            return Err((key.into(), "qualifiers must not be empty".into()));
+        }
+    }
+    if let Some(q) = c
+        .below
+        .iter()
+        .find(|b| c.above.iter().any(|a| a.trim() == b.trim()))
+    {
+        return Err((
+            key.into(),
+            format!("qualifier {q:?} is in both `below` and `above`"),
+        ));
     }
     Ok(())
 }

@@ -430,7 +430,9 @@ fn plant(p: &mut Planter) -> Vec<String> {
         "missing reading",
         "missing value, not a rejection; the rest of the row is kept",
     );
-    // A censored lab result goes on the clearest-water visit of the season.
+    // A censored lab result goes on the clearest-water visit of the season, with a
+    // reporting limit above its true value (an older method's limit), so that the
+    // censoring is true of the generated value.
     let rows = &p.files[&2017];
     let low = (0..rows.len())
         .filter(|&i| rows[i].season == 2017)
@@ -440,20 +442,29 @@ fn plant(p: &mut Planter) -> Vec<String> {
         })
         .expect("2017 has rows");
     let true_low = rows[low].cells[CHL].clone();
+    let value: f64 = true_low.parse().expect("a generated number");
+    let mut limit = (value * 2.0).ceil() / 2.0;
+    if limit <= value {
+        limit += 0.5;
+    }
     p.spoil(
         2017,
         low,
         CHL,
-        "<0.5",
-        "rejected",
-        "rejected: value does not parse as a number (a below-detection marker)",
-        "below-detection marker",
-        "rejected: does not parse as a number",
+        &format!("<{limit:.1}"),
+        "censored",
+        &format!(
+            "accepted as censored below {limit:.1}: the fit uses the probability of a value below \
+             the limit; no value is substituted"
+        ),
+        "below a reporting limit",
+        "accepted, censored; the fit treats it exactly",
     );
     notes.push(format!(
-        "`<0.5` is placed on the season's lowest chlorophyll reading; it is a censoring marker, \
-         not a number, and is rejected (the generated true value, {true_low}, is in \
-         `truth/defects.csv`)."
+        "`<{limit:.1}` is placed on the season's lowest chlorophyll reading (its generated value, \
+         {true_low}, is in `truth/defects.csv`): a result below an older method's reporting \
+         limit. It is stored as censored (`current_observations.censoring` is `below`) and the \
+         fit uses the probability that the value lies below the limit."
     ));
     let i = p.pick(2020, "Juniper Pond", 1);
     p.spoil(

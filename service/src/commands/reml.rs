@@ -45,7 +45,12 @@ async fn estimate(
     as_json: bool,
 ) -> anyhow::Result<Option<serde_json::Value>> {
     let rows = store
-        .load_series_rows(&s.response, &s.covariates, &s.groups)
+        .load_series_rows(
+            &s.response,
+            &s.covariates,
+            &s.groups,
+            s.censoring.as_ref().map(|c| c.column.as_str()),
+        )
         .await?;
     let built = input::build(s, &rows)?;
     let data = built.data;

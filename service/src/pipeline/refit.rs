@@ -208,7 +208,12 @@ async fn refit_series(
         },
     };
     let rows = store
-        .load_series_rows(&series.response, &series.covariates, &series.groups)
+        .load_series_rows(
+            &series.response,
+            &series.covariates,
+            &series.groups,
+            series.censoring.as_ref().map(|c| c.column.as_str()),
+        )
         .await?;
     let built = match input::build(series, &rows) {
         Ok(b) => b,
@@ -221,6 +226,7 @@ async fn refit_series(
     let data = Arc::new(built.data);
     report.load_seconds = started.elapsed().as_secs_f64();
     fit.n_obs = Some(data.n_obs() as i64);
+    fit.n_censored = Some(data.n_censored() as i64);
     fit.n_sites = Some(data.n_sites() as i64);
     fit.n_years = Some(data.n_years() as i64);
     fit.data_through_year = data.year_labels().last().map(|&y| y as i64);

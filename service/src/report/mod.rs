@@ -266,12 +266,12 @@ impl Report {
                 let bands = store
                     .forecast_bands(fit.fit_id, "known_site_new_year")
                     .await?;
-                let rows = store.load_series_rows(response, &[], &[]).await?;
+                let rows = store.load_series_rows(response, &[], &[], None).await?;
                 for site in chosen {
                     let observed: Vec<(i64, f64)> = rows
                         .iter()
                         .filter(|r| r.site == site)
-                        .filter_map(|r| Some((r.year, r.response?)))
+                        .filter_map(|r| Some((r.year, r.response.as_ref()?.number()?)))
                         .collect();
                     let band = bands
                         .iter()

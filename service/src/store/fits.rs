@@ -21,6 +21,8 @@ pub struct NewFit {
     pub data_through_year: Option<i64>,
     pub watermark: i64,
     pub n_obs: Option<i64>,
+    /// Observations of `n_obs` known only to lie below or above a limit.
+    pub n_censored: Option<i64>,
     pub n_sites: Option<i64>,
     pub n_years: Option<i64>,
     pub warm_start_from: Option<i64>,
@@ -235,9 +237,9 @@ impl Store {
                 "INSERT INTO fits (series, version, status, created_at, data_through_year, watermark, n_obs, n_sites, n_years,
                                    warm_start_from, chains, draws, warmup, wall_seconds, max_rhat, min_ess_bulk, min_ess_tail,
                                    seed, message, run_id, response, transform, priors_json, diagnostics_json, acceptance_rate,
-                                   lease_generation, definition_sha256)
+                                   lease_generation, definition_sha256, n_censored)
                  VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20, ?21, ?22, ?23, ?24, ?25,
-                         ?26, ?27)
+                         ?26, ?27, ?28)
                  RETURNING fit_id",
             )
             .bind(&fit.series)
@@ -267,6 +269,7 @@ impl Store {
             .bind(fit.acceptance_rate.and_then(finite))
             .bind(guard.fence.map(|f| f.generation))
             .bind(&fit.definition_sha256)
+            .bind(fit.n_censored)
             .fetch_one(&mut *tx)
             .await?;
             insert_summaries(&mut tx, fit_id, summaries).await?;

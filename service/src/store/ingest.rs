@@ -20,8 +20,8 @@ use tracing::debug;
 
 use super::{now_utc, Store, StoreError};
 
-/// Rows per multi-row INSERT of values (9 parameters each, under SQLite's 32766-parameter
-/// limit).
+/// Rows per multi-row INSERT of values (10 parameters each, under SQLite's
+/// 32766-parameter limit).
 const INSERT_CHUNK: usize = 1000;
 const REJECT_CHUNK: usize = 500;
 const SITE_CHUNK: usize = 500;
@@ -355,8 +355,8 @@ async fn insert_new_keys<'a>(
         .fetch_one(&mut *conn)
         .await?;
 
-    const DIRECT: &str = "INSERT INTO observations (value_id, batch_id, site_id, year, visit, column_name, num_value, text_value, line) VALUES ";
-    let direct_sql = |rows: usize| multi_row_insert(DIRECT, 9, rows) + " ON CONFLICT DO NOTHING";
+    const DIRECT: &str = "INSERT INTO observations (value_id, batch_id, site_id, year, visit, column_name, num_value, text_value, line, censoring) VALUES ";
+    let direct_sql = |rows: usize| multi_row_insert(DIRECT, 10, rows) + " ON CONFLICT DO NOTHING";
     let full_chunk = direct_sql(INSERT_CHUNK);
     let mut existing: Vec<(i64, &NewValue)> = Vec::new();
     let mut max_id = vec![0i64; values.columns.len()];
@@ -371,7 +371,7 @@ async fn insert_new_keys<'a>(
         };
         let mut q = sqlx::query(sql);
         for (i, v) in chunk.iter().enumerate() {
-            let (num, text) = cell_columns(values, v);
+            let (num, text, censoring) = cell_columns(values, v);
             q = q
                 .bind(first_id + i as i64)
                 .bind(batch_id)
@@ -381,7 +381,8 @@ async fn insert_new_keys<'a>(
                 .bind(values.columns[v.column as usize].as_str())
                 .bind(num)
                 .bind(text)
-                .bind(count(v.line));
+                .bind(count(v.line))
+                .bind(censoring);
         }
         let inserted = q.execute(&mut *conn).await?.rows_affected();
         if inserted < chunk.len() as u64 {
@@ -432,19 +433,19 @@ async fn supersede_resent(
         "CREATE TEMP TABLE IF NOT EXISTS ingest_stage (
              new_id INTEGER PRIMARY KEY, site_id INTEGER NOT NULL, year INTEGER NOT NULL,
              visit TEXT NOT NULL, column_name TEXT NOT NULL, num_value REAL, text_value TEXT,
-             line INTEGER NOT NULL)",
+             line INTEGER NOT NULL, censoring TEXT)",
     )
     .execute(&mut *conn)
     .await?;
     sqlx::query("DELETE FROM temp.ingest_stage")
         .execute(&mut *conn)
         .await?;
-    const STAGE: &str = "INSERT INTO temp.ingest_stage (new_id, site_id, year, visit, column_name, num_value, text_value, line) VALUES ";
+    const STAGE: &str = "INSERT INTO temp.ingest_stage (new_id, site_id, year, visit, column_name, num_value, text_value, line, censoring) VALUES ";
     for chunk in existing.chunks(INSERT_CHUNK) {
-        let sql = multi_row_insert(STAGE, 8, chunk.len());
+        let sql = multi_row_insert(STAGE, 9, chunk.len());
         let mut q = sqlx::query(&sql);
         for (id, v) in chunk {
-            let (num, text) = cell_columns(values, v);
+            let (num, text, censoring) = cell_columns(values, v);
             q = q
                 .bind(*id)
                 .bind(site_ids[v.site as usize])
@@ -453,7 +454,8 @@ async fn supersede_resent(
                 .bind(values.columns[v.column as usize].as_str())
                 .bind(num)
                 .bind(text)
-                .bind(count(v.line));
+                .bind(count(v.line))
+                .bind(censoring);
         }
         q.execute(&mut *conn).await?;
     }
@@ -466,7 +468,8 @@ async fn supersede_resent(
              WHERE o.superseded_by IS NULL AND o.site_id = ingest_stage.site_id
                AND o.year = ingest_stage.year AND o.visit = ingest_stage.visit
                AND o.column_name = ingest_stage.column_name
-               AND o.num_value IS ingest_stage.num_value AND o.text_value IS ingest_stage.text_value)",
+               AND o.num_value IS ingest_stage.num_value AND o.text_value IS ingest_stage.text_value
+               AND o.censoring IS ingest_stage.censoring)",
     )
     .execute(&mut *conn)
     .await?
@@ -486,8 +489,8 @@ async fn supersede_resent(
     phases.done("supersede");
 
     sqlx::query(
-        "INSERT INTO observations (value_id, batch_id, site_id, year, visit, column_name, num_value, text_value, line)
-         SELECT new_id, ?1, site_id, year, visit, column_name, num_value, text_value, line
+        "INSERT INTO observations (value_id, batch_id, site_id, year, visit, column_name, num_value, text_value, line, censoring)
+         SELECT new_id, ?1, site_id, year, visit, column_name, num_value, text_value, line, censoring
          FROM temp.ingest_stage ORDER BY new_id",
     )
     .bind(batch_id)
@@ -586,10 +589,15 @@ async fn close_batch_row(
     Ok(())
 }
 
-fn cell_columns<'a>(values: &'a BatchValues, v: &NewValue) -> (Option<f64>, Option<&'a str>) {
+/// `num_value`, `text_value` and `censoring` of a value.
+fn cell_columns<'a>(
+    values: &'a BatchValues,
+    v: &NewValue,
+) -> (Option<f64>, Option<&'a str>, Option<&'static str>) {
     match v.cell {
-        Cell::Num(x) => (Some(x), None),
-        Cell::Label(i) => (None, Some(values.labels[i as usize].as_str())),
+        Cell::Num(x) => (Some(x), None, None),
+        Cell::Censored(side, limit) => (Some(limit), None, Some(side.as_str())),
+        Cell::Label(i) => (None, Some(values.labels[i as usize].as_str()), None),
     }
 }
 

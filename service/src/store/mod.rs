@@ -39,7 +39,7 @@ pub use lease::{Fence, LeaseAttempt, LeaseClaim, LeaseHolder};
 pub use report::{ForecastBand, ForecastInterval, RunHistoryEntry, RunSeriesOutcome, SiteEffect};
 pub use retention::{PruneRecord, PrunedDraws};
 pub use runs::RunOrigin;
-pub use series::SeriesRow;
+pub use series::{SeriesRow, StoredValue};
 pub use status::{BatchSummary, FitSummary, RunSummary};
 
 /// Migrations compiled into the binary, read from the repository's `migrations/` folder.

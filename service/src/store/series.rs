@@ -4,7 +4,38 @@
 use serde::Serialize;
 use sqlx::Row;
 
+use tidemark_feed::Censor;
+
 use super::{Store, StoreError};
+
+/// A stored value of a column a series reads as numbers.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum StoredValue {
+    Number(f64),
+    /// Known only to lie on one side of the limit.
+    Censored {
+        #[serde(serialize_with = "censor_word")]
+        side: Censor,
+        limit: f64,
+    },
+    /// Text kept verbatim: the column was read by no series when it arrived.
+    Text(String),
+}
+
+fn censor_word<S: serde::Serializer>(side: &Censor, s: S) -> Result<S::Ok, S::Error> {
+    s.serialize_str(side.as_str())
+}
+
+impl StoredValue {
+    /// The number of a measured value.
+    pub fn number(&self) -> Option<f64> {
+        match self {
+            StoredValue::Number(x) => Some(*x),
+            _ => None,
+        }
+    }
+}
 
 /// The current values of one visit (site, year, visit) for the columns a series reads.
 /// A `None` is a value never sent for that visit.
@@ -13,11 +44,13 @@ pub struct SeriesRow {
     pub site: String,
     pub year: i64,
     pub visit: String,
-    pub response: Option<f64>,
+    pub response: Option<StoredValue>,
     /// In the order of the `covariates` argument.
-    pub covariates: Vec<Option<f64>>,
+    pub covariates: Vec<Option<StoredValue>>,
     /// In the order of the `groups` argument.
     pub groups: Vec<Option<String>>,
+    /// The censoring qualifier (`series.censoring.column`), when one is read.
+    pub qualifier: Option<String>,
 }
 
 fn placeholders(from: usize, n: usize) -> String {
@@ -46,8 +79,9 @@ impl Store {
         q.fetch_one(&self.pool).await.map_err(|e| self.sql(e))
     }
 
-    /// Current values of `response`, `covariates` and `groups`, one row per visit that has
-    /// at least one of them, ordered by site code, year and visit.
+    /// Current values of `response`, `covariates`, `groups` and the censoring `qualifier`
+    /// column, one row per visit that has at least one of them, ordered by site code, year
+    /// and visit.
     ///
     /// Group columns are read as labels; a numeric cell stored under a group column (the
     /// column was configured differently when it arrived) is read as its decimal text.
@@ -62,15 +96,18 @@ impl Store {
         response: &str,
         covariates: &[String],
         groups: &[String],
+        qualifier: Option<&str>,
     ) -> Result<Vec<SeriesRow>, StoreError> {
         let columns: Vec<&str> = std::iter::once(response)
             .chain(covariates.iter().map(String::as_str))
             .chain(groups.iter().map(String::as_str))
+            .chain(qualifier)
             .collect();
         let sql = format!(
             "SELECT s.code AS site,
                     json_group_array(json_array(o.year, o.visit, o.column_name,
-                        CASE WHEN o.num_value IS NOT NULL THEN printf('%!.17g', o.num_value) END, o.text_value)) AS cells
+                        CASE WHEN o.num_value IS NOT NULL THEN printf('%!.17g', o.num_value) END, o.text_value,
+                        o.censoring)) AS cells
              FROM observations o INDEXED BY observations_current
              JOIN sites s ON s.site_id = o.site_id
              WHERE o.superseded_by IS NULL AND o.column_name IN ({})
@@ -82,7 +119,15 @@ impl Store {
             q = q.bind(*c);
         }
         let rows = q.fetch_all(&self.pool).await.map_err(|e| self.sql(e))?;
-        type Cell = (i64, String, String, Option<String>, Option<String>);
+        type Cell = (
+            i64,
+            String,
+            String,
+            Option<String>,
+            Option<String>,
+            Option<String>,
+        );
+        let groups_end = 1 + covariates.len() + groups.len();
         let role = |name: &str| columns.iter().position(|c| *c == name);
         let mut out = Vec::new();
         for r in rows {
@@ -104,9 +149,10 @@ impl Store {
                     response: None,
                     covariates: vec![None; covariates.len()],
                     groups: vec![None; groups.len()],
+                    qualifier: None,
                 };
                 while i < cells.len() && cells[i].0 == row.year && cells[i].1 == row.visit {
-                    let (_, _, column, num_text, label) = &cells[i];
+                    let (_, _, column, num_text, label, censoring) = &cells[i];
                     let num = match num_text {
                         Some(t) => Some(t.parse::<f64>().map_err(|e| {
                             self.sql(sqlx::Error::Decode(
@@ -115,13 +161,19 @@ impl Store {
                         })?),
                         None => None,
                     };
+                    let value = || match (num, censoring.as_deref().and_then(Censor::parse)) {
+                        (Some(limit), Some(side)) => Some(StoredValue::Censored { side, limit }),
+                        (Some(x), None) => Some(StoredValue::Number(x)),
+                        (None, _) => label.clone().map(StoredValue::Text),
+                    };
+                    // A numeric cell under a label column (configured differently when
+                    // it arrived) is read as its decimal text.
+                    let text = || label.clone().or_else(|| num.map(|v| v.to_string()));
                     match role(column) {
-                        Some(0) => row.response = num,
-                        Some(k) if k <= covariates.len() => row.covariates[k - 1] = num,
-                        Some(k) => {
-                            row.groups[k - 1 - covariates.len()] =
-                                label.clone().or_else(|| num.map(|v| v.to_string()))
-                        }
+                        Some(0) => row.response = value(),
+                        Some(k) if k <= covariates.len() => row.covariates[k - 1] = value(),
+                        Some(k) if k < groups_end => row.groups[k - 1 - covariates.len()] = text(),
+                        Some(_) => row.qualifier = text(),
                         None => {}
                     }
                     i += 1;
