@@ -126,25 +126,116 @@ pub struct SeriesConfig {
     pub report_sites: Vec<String>,
 }
 
-impl SeriesConfig {
-    /// SHA-256 (hex) of what defines the series' model: response, transform, covariates,
-    /// groups and priors. Fits made under equal digests fit the same model to growing
-    /// data, so an older snapshot of it is stale; sampler settings and report options
-    /// change no model.
-    pub fn definition_sha256(&self) -> String {
+/// What defines a series' model: the fields a version is made under. Its canonical
+/// text (pretty JSON in this field order) is stored with every fit, and its SHA-256 is the
+/// fit's `definition_sha256`. Sampler sizes, the seed and report options are not part of
+/// it: they change how a posterior is computed or shown, not which posterior.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ModelDefinition {
+    pub response: String,
+    pub transform: String,
+    pub covariates: Vec<String>,
+    pub groups: Vec<String>,
+    pub censoring: Option<CensoringColumn>,
+    pub priors: Priors,
+    pub gate: Gate,
+}
+
+/// The convergence gate a version had to pass.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct Gate {
+    pub max_rhat: f64,
+    pub min_ess: f64,
+}
+
+impl ModelDefinition {
+    /// The canonical text stored with a fit.
+    pub fn text(&self) -> String {
+        serde_json::to_string_pretty(self).unwrap_or_default()
+    }
+
+    /// SHA-256 (hex) of [`ModelDefinition::text`].
+    pub fn sha256(&self) -> String {
         use sha2::{Digest, Sha256};
-        let mut definition = serde_json::json!({
+        hex::encode(Sha256::digest(self.text().as_bytes()))
+    }
+
+    /// The fields in which `self` differs from `earlier`, in field order.
+    pub fn changes_from(&self, earlier: &ModelDefinition) -> Vec<&'static str> {
+        let mut out = Vec::new();
+        let mut check = |name, differs: bool| {
+            if differs {
+                out.push(name);
+            }
+        };
+        check("response", self.response != earlier.response);
+        check("transform", self.transform != earlier.transform);
+        check("covariates", self.covariates != earlier.covariates);
+        check("groups", self.groups != earlier.groups);
+        check("censoring", self.censoring != earlier.censoring);
+        check("priors", self.priors != earlier.priors);
+        check("gate", self.gate != earlier.gate);
+        out
+    }
+
+    /// Whether a version made under `earlier` may warm-start a fit under `self`: the same
+    /// response on the same scale with the same parameters (covariates, factors,
+    /// censoring). Priors and the gate may differ: a warm start only proposes and starts
+    /// the chains, and the new fit targets its own posterior and passes its own gate.
+    pub fn warm_compatible(&self, earlier: &ModelDefinition) -> Result<(), String> {
+        let blocking: Vec<&str> = self
+            .changes_from(earlier)
+            .into_iter()
+            .filter(|c| !matches!(*c, "priors" | "gate"))
+            .collect();
+        if blocking.is_empty() {
+            Ok(())
+        } else {
+            Err(format!(
+                "the previous version was made under another model definition ({} changed)",
+                blocking.join(", ")
+            ))
+        }
+    }
+}
+
+impl SeriesConfig {
+    /// The series' model definition under this config.
+    pub fn definition(&self) -> ModelDefinition {
+        ModelDefinition {
+            response: self.response.clone(),
+            transform: self.transform.as_str().to_string(),
+            covariates: self.covariates.clone(),
+            groups: self.groups.clone(),
+            censoring: self.censoring.clone(),
+            priors: self.priors.clone(),
+            gate: Gate {
+                max_rhat: self.sampler.max_rhat,
+                min_ess: self.sampler.min_ess,
+            },
+        }
+    }
+
+    /// SHA-256 (hex) of the canonical text of the series' model definition. Fits made
+    /// under equal digests fit the same model to growing data, so an older snapshot of it
+    /// is stale.
+    pub fn definition_sha256(&self) -> String {
+        self.definition().sha256()
+    }
+
+    /// The digest fits recorded before schema version 9, when no definition text was
+    /// stored (response, transform, covariates, groups and priors as compact JSON): a fit
+    /// that carries it and no text was made under this definition unless one of those
+    /// changed.
+    pub fn legacy_definition_sha256(&self) -> String {
+        use sha2::{Digest, Sha256};
+        let definition = serde_json::json!({
             "response": self.response,
             "transform": self.transform.as_str(),
             "covariates": self.covariates,
             "groups": self.groups,
             "priors": self.priors,
         });
-        // Only when set, so that a series without one keeps the digest it had before
-        // qualifier columns existed.
-        if let Some(c) = &self.censoring {
-            definition["censoring"] = serde_json::json!(c);
-        }
         hex::encode(Sha256::digest(definition.to_string().as_bytes()))
     }
 }

@@ -80,6 +80,9 @@ pub struct SeriesStatus {
     pub latest_published: Option<FitSummary>,
     /// True when values arrived after the latest attempt (or there is none).
     pub data_changed: bool,
+    /// How the config's model definition differs from the one the served version was
+    /// made under (null when it is the same, or nothing is served).
+    pub definition_changed: Option<String>,
 }
 
 pub async fn run(ctx: &Context, json: bool) -> anyhow::Result<()> {
@@ -93,12 +96,20 @@ pub async fn run(ctx: &Context, json: bool) -> anyhow::Result<()> {
         let data_changed = latest_fit
             .as_ref()
             .is_none_or(|f| data_watermark > f.watermark);
+        let definition_changed = latest_published.as_ref().and_then(|p| {
+            crate::pipeline::refit::definition_change(
+                s,
+                p.definition_sha256.as_deref(),
+                p.definition_text.as_deref(),
+            )
+        });
         series.push(SeriesStatus {
             name: s.name.clone(),
             data_watermark,
             latest_fit,
             latest_published,
             data_changed,
+            definition_changed,
         });
     }
     let runs = store.recent_runs(RECENT).await?;
@@ -353,6 +364,13 @@ fn render_text(r: &StatusReport) -> String {
         }
         if s.data_changed && s.latest_fit.is_some() {
             let _ = writeln!(out, "  {}: new data since the latest attempt", s.name);
+        }
+        if let (Some(why), Some(p)) = (&s.definition_changed, &s.latest_published) {
+            let _ = writeln!(
+                out,
+                "  {}: the served version {} was made under another model definition: {why} since",
+                s.name, p.version
+            );
         }
     }
     let _ = writeln!(out, "\nrecent runs");

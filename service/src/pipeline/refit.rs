@@ -195,10 +195,11 @@ async fn refit_series(
 ) -> anyhow::Result<SeriesReport> {
     let started = Instant::now();
     let mut report = SeriesReport::unchanged(&series.name);
-    let Some(watermark) = detect_change(store, series, opts).await? else {
+    let Some((watermark, why)) = detect_change(store, series, opts).await? else {
         report.message = "no new data since the last fit".into();
         return Ok(report);
     };
+    let why = why.map(|w| format!("refitted because {w}"));
     let mut fit = new_fit(series, watermark, opts.run_id);
     let to = Destination {
         store,
@@ -215,11 +216,15 @@ async fn refit_series(
             series.censoring.as_ref().map(|c| c.column.as_str()),
         )
         .await?;
+    let with_why = |message: String| match &why {
+        Some(w) => format!("{w}; {message}"),
+        None => message,
+    };
     let built = match input::build(series, &rows) {
         Ok(b) => b,
         Err(e) => {
             warn!(series = %series.name, "{e}");
-            return record_failure(to, fit, report, e.to_string(), &[], started).await;
+            return record_failure(to, fit, report, with_why(e.to_string()), &[], started).await;
         }
     };
     let exclusions: Vec<NewExclusion> = built.excluded;
@@ -231,22 +236,33 @@ async fn refit_series(
     fit.n_years = Some(data.n_years() as i64);
     fit.data_through_year = data.year_labels().last().map(|&y| y as i64);
 
+    let mut notes: Vec<String> = why.iter().cloned().collect();
     let warm = if opts.cold {
         None
     } else {
-        warm_start(store, &series.name).await?
+        match warm_start(store, series).await? {
+            Ok(w) => w,
+            Err(reason) => {
+                notes.push(format!("warm start not used: {reason}"));
+                None
+            }
+        }
     };
     let (plan, skipped) = match within_memory(series, &data, attempt_plan(series, warm)) {
         Ok(planned) => planned,
         Err(message) => {
             warn!(series = %series.name, "{message}");
+            let message = with_why(message);
             return record_failure(to, fit, report, message, &exclusions, started).await;
         }
     };
+    notes.extend(skipped);
+    let skipped = notes;
     let sampling = Instant::now();
     let fitted = match attempt_fits(series, opts, data, plan, skipped).await? {
         Attempts::Fitted(f) => f,
         Attempts::Failed(message) => {
+            let message = with_why(message);
             return record_failure(to, fit, report, message, &exclusions, started).await;
         }
     };
@@ -276,26 +292,72 @@ impl SeriesReport {
 }
 
 /// The series' current watermark when it needs a refit (new values since the latest
-/// attempt, no attempt yet, or `--force`); `None` when nothing changed.
+/// attempt, no attempt yet, a changed model definition, or `--force`), with the reason
+/// when it is the definition; `None` when nothing changed.
 async fn detect_change(
     store: &Store,
     series: &SeriesConfig,
     opts: &RefitOptions,
-) -> anyhow::Result<Option<i64>> {
+) -> anyhow::Result<Option<(i64, Option<String>)>> {
     let watermark = store.series_watermark(&series.columns()).await?;
     // No value of the series' columns has arrived yet: nothing to fit, and nothing to
     // record as a failure at every start (a forced refit still says why it cannot fit).
     if watermark == 0 && !opts.force {
         return Ok(None);
     }
-    if !opts.force {
-        if let Some(last) = store.fitted_watermark(&series.name).await? {
-            if last >= watermark {
-                return Ok(None);
-            }
-        }
+    if opts.force {
+        return Ok(Some((watermark, None)));
     }
-    Ok(Some(watermark))
+    let Some(last) = store.latest_attempt(&series.name).await? else {
+        return Ok(Some((watermark, None)));
+    };
+    let changed = definition_change(
+        series,
+        last.definition_sha256.as_deref(),
+        last.definition_text.as_deref(),
+    );
+    if last.watermark >= watermark && changed.is_none() {
+        return Ok(None);
+    }
+    Ok(Some((watermark, changed)))
+}
+
+/// How the series' definition differs from the one a stored fit was made under, said
+/// for the analyst; `None` when it is the same. A fit made before definitions were stored
+/// (no text) counts as the same when its digest is the legacy digest of this definition
+/// and the series names no censoring (which that digest could not cover), or when it has
+/// no digest at all (nothing to compare: an upgrade must not refit every series).
+pub fn definition_change(
+    series: &SeriesConfig,
+    sha256: Option<&str>,
+    text: Option<&str>,
+) -> Option<String> {
+    let now = series.definition();
+    if sha256 == Some(now.sha256().as_str()) {
+        return None;
+    }
+    match (text, sha256) {
+        (Some(text), _) => {
+            let changes = serde_json::from_str::<crate::config::ModelDefinition>(text)
+                .map(|earlier| now.changes_from(&earlier))
+                .unwrap_or_default();
+            Some(if changes.is_empty() {
+                "the model definition changed".to_string()
+            } else {
+                format!("the model definition changed ({})", changes.join(", "))
+            })
+        }
+        (None, None) => None,
+        (None, Some(old))
+            if old == series.legacy_definition_sha256() && series.censoring.is_none() =>
+        {
+            None
+        }
+        (None, Some(_)) => Some(
+            "the model definition changed (the last fit was made before definitions were stored)"
+                .to_string(),
+        ),
+    }
 }
 
 fn new_fit(series: &SeriesConfig, watermark: i64, run_id: Option<i64>) -> NewFit {
@@ -309,6 +371,7 @@ fn new_fit(series: &SeriesConfig, watermark: i64, run_id: Option<i64>) -> NewFit
         chains: Some(series.sampler.chains as i64),
         draws: Some(series.sampler.draws as i64),
         definition_sha256: Some(series.definition_sha256()),
+        definition_text: Some(series.definition().text()),
         ..NewFit::default()
     }
 }
@@ -350,21 +413,33 @@ async fn record_failure(
 }
 
 /// The latest published version's fit id and warm start, when its draws decode.
-async fn warm_start(store: &Store, series: &str) -> anyhow::Result<Option<(i64, WarmStart)>> {
-    let Some(published) = store.serving_fit(series).await? else {
-        return Ok(None);
+/// The latest published version's warm start, when its model definition is compatible
+/// with the series' (`ModelDefinition::warm_compatible`); the reason when it is not.
+async fn warm_start(
+    store: &Store,
+    series: &SeriesConfig,
+) -> anyhow::Result<Result<Option<(i64, WarmStart)>, String>> {
+    let Some(published) = store.serving_fit(&series.name).await? else {
+        return Ok(Ok(None));
     };
+    if let Some(text) = &published.definition_text {
+        if let Ok(earlier) = serde_json::from_str::<crate::config::ModelDefinition>(text) {
+            if let Err(reason) = series.definition().warm_compatible(&earlier) {
+                return Ok(Err(reason));
+            }
+        }
+    }
     let Some((_, blob)) = store.fit_draws(published.fit_id).await? else {
-        return Ok(None);
+        return Ok(Ok(None));
     };
     match draws::decode(&blob) {
-        Ok(decoded) => Ok(Some((published.fit_id, decoded.warm_start))),
+        Ok(decoded) => Ok(Ok(Some((published.fit_id, decoded.warm_start)))),
         Err(e) => {
             warn!(
                 fit_id = published.fit_id,
                 "cannot read the draws of the last version, starting cold: {e}"
             );
-            Ok(None)
+            Ok(Ok(None))
         }
     }
 }

@@ -43,6 +43,8 @@ pub struct NewFit {
     pub acceptance_rate: Option<f64>,
     /// Digest of the series' model definition the fit was made under.
     pub definition_sha256: Option<String>,
+    /// Canonical text of that definition.
+    pub definition_text: Option<String>,
 }
 
 /// What writing a fit is checked against, inside its transaction.
@@ -85,6 +87,16 @@ pub struct PublishedFit {
     pub version: i64,
     pub watermark: i64,
     pub transform: Option<String>,
+    pub definition_sha256: Option<String>,
+    pub definition_text: Option<String>,
+}
+
+/// The latest fit attempt of a series (any status): what the next refit compares with.
+#[derive(Debug, Clone, PartialEq, sqlx::FromRow)]
+pub struct LatestAttempt {
+    pub watermark: i64,
+    pub definition_sha256: Option<String>,
+    pub definition_text: Option<String>,
 }
 
 /// Rows per multi-row INSERT: well under SQLite's limit of 32766 bound parameters.
@@ -237,9 +249,9 @@ impl Store {
                 "INSERT INTO fits (series, version, status, created_at, data_through_year, watermark, n_obs, n_sites, n_years,
                                    warm_start_from, chains, draws, warmup, wall_seconds, max_rhat, min_ess_bulk, min_ess_tail,
                                    seed, message, run_id, response, transform, priors_json, diagnostics_json, acceptance_rate,
-                                   lease_generation, definition_sha256, n_censored)
+                                   lease_generation, definition_sha256, n_censored, definition_text)
                  VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20, ?21, ?22, ?23, ?24, ?25,
-                         ?26, ?27, ?28)
+                         ?26, ?27, ?28, ?29)
                  RETURNING fit_id",
             )
             .bind(&fit.series)
@@ -270,6 +282,7 @@ impl Store {
             .bind(guard.fence.map(|f| f.generation))
             .bind(&fit.definition_sha256)
             .bind(fit.n_censored)
+            .bind(&fit.definition_text)
             .fetch_one(&mut *tx)
             .await?;
             insert_summaries(&mut tx, fit_id, summaries).await?;
@@ -339,7 +352,7 @@ impl Store {
     /// The latest published version of `series`, if any.
     pub async fn serving_fit(&self, series: &str) -> Result<Option<PublishedFit>, StoreError> {
         sqlx::query_as(
-            "SELECT fit_id, version, watermark, transform FROM fits
+            "SELECT fit_id, version, watermark, transform, definition_sha256, definition_text FROM fits
              WHERE series = ?1 AND status = 'published' ORDER BY version DESC LIMIT 1",
         )
         .bind(series)
@@ -348,10 +361,11 @@ impl Store {
         .map_err(|e| self.sql(e))
     }
 
-    /// The watermark of the latest fit attempt of `series` (published or not).
-    pub async fn fitted_watermark(&self, series: &str) -> Result<Option<i64>, StoreError> {
-        sqlx::query_scalar(
-            "SELECT watermark FROM fits WHERE series = ?1 ORDER BY fit_id DESC LIMIT 1",
+    /// The latest fit attempt of `series` (published or not).
+    pub async fn latest_attempt(&self, series: &str) -> Result<Option<LatestAttempt>, StoreError> {
+        sqlx::query_as(
+            "SELECT watermark, definition_sha256, definition_text FROM fits
+             WHERE series = ?1 ORDER BY fit_id DESC LIMIT 1",
         )
         .bind(series)
         .fetch_optional(&self.pool)

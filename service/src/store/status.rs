@@ -53,12 +53,17 @@ pub struct FitSummary {
     pub min_ess_bulk: Option<f64>,
     pub min_ess_tail: Option<f64>,
     pub message: Option<String>,
+    pub n_censored: Option<i64>,
+    pub definition_sha256: Option<String>,
+    /// The canonical text itself stays in the database (`fits.definition_text`).
+    #[serde(skip)]
+    pub definition_text: Option<String>,
 }
 
 const FIT_COLUMNS: &str =
     "fit_id, series, version, status, created_at, data_through_year, watermark,
     n_obs, n_sites, n_years, warm_start_from, chains, draws, warmup, wall_seconds, max_rhat,
-    min_ess_bulk, min_ess_tail, message";
+    min_ess_bulk, min_ess_tail, message, n_censored, definition_sha256, definition_text";
 
 impl Store {
     /// The `limit` most recent runs, newest first.
