@@ -795,3 +795,70 @@ fn entries_that_are_not_regular_files_are_named_on_the_ingest_line_and_in_status
     assert!(real.is_file());
     assert_eq!(net.files_in("archive"), ["good.csv"]);
 }
+
+/// Series may name their own site, year and visit columns: each file is read with the
+/// key set its header has, the batch records it, and each series fits its own rows.
+#[test]
+fn series_with_their_own_key_columns_read_their_own_files() {
+    let lakes = common::CHLOROPHYLL;
+    let streams = r#"name = "streamflow"
+response = "flow_m3s"
+transform = "log"
+site = "station"
+year = "water_year"
+"#;
+    let config = common::ConfigBuilder::new()
+        .series(lakes)
+        .sampler(common::Sampler::default())
+        .series(streams)
+        .sampler(common::Sampler::default())
+        .build();
+    let net = Network::with_config(&config);
+    net.ok(&["init"]);
+    net.drop_file("lakes.csv", common::csv(&common::network_rows(15, 6)));
+    let mut flows = String::from("station,water_year,flow_m3s,notes\n");
+    for s in 0..12 {
+        for y in 0..6 {
+            let flow =
+                (1.0 + 0.2 * s as f64 + 0.3 * ((s * 7 + y * 3) % 5) as f64 - 0.1 * y as f64).exp();
+            flows.push_str(&format!("ST-{s:02},{},{flow:.4},gauge ok\n", 2001 + y));
+        }
+    }
+    net.drop_file("streams.csv", flows);
+    let out = net.ok(&["ingest"]);
+    assert!(
+        line_for(&out, "streams.csv").ends_with(", 0 rejected"),
+        "{out}"
+    );
+    assert_eq!(
+        net.sqlite3(
+            "SELECT source, site_column, year_column, COALESCE(visit_column, '-') FROM ingest_batches ORDER BY source"
+        ),
+        "lakes.csv|lake|season|visit\nstreams.csv|station|water_year|-\n"
+    );
+    // Stream rows are visit 1, and the station codes sit beside the lakes in `sites`.
+    assert_eq!(
+        net.sqlite3(
+            "SELECT COUNT(*), MIN(visit), MAX(visit) FROM current_observations WHERE column_name = 'flow_m3s'"
+        ),
+        "72|1|1\n"
+    );
+    let out = net.ok(&["refit"]);
+    assert!(
+        out.contains("streamflow") && out.matches("published version 1").count() == 2,
+        "{out}"
+    );
+    assert_eq!(
+        net.sqlite3("SELECT series, n_sites, n_years FROM fits ORDER BY series"),
+        "chlorophyll|15|6\nstreamflow|12|6\n"
+    );
+    // A file with neither key set is unreadable and says what it misses.
+    net.drop_file("odd.csv", "gauge,season,flow_m3s\nX,2001,1.0\n");
+    let out = net.ok(&["ingest"]);
+    assert!(line_for(&out, "odd.csv").contains("quarantined"), "{out}");
+    let why = net
+        .scalar("SELECT message FROM ingest_batches WHERE source = 'odd.csv'")
+        .text()
+        .to_string();
+    assert!(why.contains("no site column `lake`"), "{why}");
+}

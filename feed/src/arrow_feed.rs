@@ -85,7 +85,7 @@ fn decode(bytes: &[u8], layout: &FileLayout) -> Result<Collector, Unreadable> {
         .map(|f| f.name().trim().to_string())
         .collect();
     let plan = layout.plan(&header)?;
-    let mut collector = Collector::new(layout, plan.measures.clone());
+    let mut collector = Collector::new(layout, &plan.keys, plan.measures.clone());
     let mut row_number: u64 = 0;
     for batch in batches {
         let batch = batch.map_err(unreadable)?;

@@ -59,6 +59,8 @@ pub struct NewValue {
 /// The accepted values of one file, at most one per (site, year, visit, column).
 #[derive(Debug, Default, Clone)]
 pub struct BatchValues {
+    /// The key columns the file was read with.
+    pub keys: crate::KeyColumns,
     pub sites: Vec<String>,
     pub visits: Vec<String>,
     pub columns: Vec<String>,

@@ -179,16 +179,18 @@ impl MissingCodes {
 }
 
 impl Collector {
-    pub fn new(layout: &FileLayout, measures: Vec<Measure>) -> Collector {
+    /// A collector for a file read with `keys` (one of `layout.keys`).
+    pub fn new(layout: &FileLayout, keys: &crate::KeyColumns, measures: Vec<Measure>) -> Collector {
         let values = BatchValues {
             columns: measures.iter().map(|m| m.name.clone()).collect(),
+            keys: keys.clone(),
             ..BatchValues::default()
         };
         Collector {
             measures,
             missing: MissingCodes::new(&layout.missing),
-            site_col: layout.keys.site.clone(),
-            year_col: layout.keys.year.clone(),
+            site_col: keys.site.clone(),
+            year_col: keys.year.clone(),
             values,
             site_ix: HashMap::new(),
             visit_ix: HashMap::new(),
@@ -629,7 +631,11 @@ mod tests {
             year: "season".into(),
             visit: None,
         };
-        Collector::new(&FileLayout::numeric(keys, Default::default()), measures)
+        Collector::new(
+            &FileLayout::numeric(keys.clone(), Default::default()),
+            &keys,
+            measures,
+        )
     }
 
     #[test]
@@ -679,7 +685,7 @@ mod tests {
         };
         let layout = FileLayout {
             missing: vec!["NA".into(), " -999 ".into()],
-            ..FileLayout::numeric(keys, Default::default())
+            ..FileLayout::numeric(keys.clone(), Default::default())
         };
         let measures = vec![
             Measure {
@@ -693,7 +699,7 @@ mod tests {
                 positive: false,
             },
         ];
-        let mut c = Collector::new(&layout, measures);
+        let mut c = Collector::new(&layout, &keys, measures);
         let t = RawCell::Text;
         c.row(2, t("A"), t("2020"), None, &[t("NA"), t("ice on, NA")]);
         c.row(3, t("B"), t("2020"), None, &[t("-999.0"), t(" 12 ")]);

@@ -36,7 +36,7 @@ pub fn read(bytes: &[u8], layout: &FileLayout) -> Result<Collector, Unreadable> 
         return Err(Unreadable("the file is empty or has no header row".into()));
     }
     let plan = layout.plan(&header)?;
-    let mut collector = Collector::new(layout, plan.measures.clone());
+    let mut collector = Collector::new(layout, &plan.keys, plan.measures.clone());
 
     // Each record is handled one step late, so that the last one can be checked for a
     // file cut inside a quoted field before any of its values is taken.

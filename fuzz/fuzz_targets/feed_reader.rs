@@ -12,11 +12,18 @@ fuzz_target!(|bytes: &[u8]| {
     // `chl` is read as numbers on the log scale, `remarks` is free text, and `NA` and
     // `-999` are missing codes.
     let layout = FileLayout {
-        keys: KeyColumns {
-            site: "lake".into(),
-            year: "season".into(),
-            visit: Some("visit".into()),
-        },
+        keys: vec![
+            KeyColumns {
+                site: "lake".into(),
+                year: "season".into(),
+                visit: Some("visit".into()),
+            },
+            KeyColumns {
+                site: "station".into(),
+                year: "year".into(),
+                visit: None,
+            },
+        ],
         labels: BTreeSet::from(["crew".to_string()]),
         numbers: NumberColumns::Only(BTreeSet::from(["chl".to_string(), "depth".to_string()])),
         positive: BTreeSet::from(["chl".to_string()]),

@@ -56,8 +56,9 @@ pub struct Config {
     pub keep_draws: u32,
     pub feed: FeedDirs,
     pub schedule: Schedule,
-    /// The key columns of the feed, shared by every series (a current limit).
-    pub keys: KeyColumns,
+    /// The key columns of every series, each set once, in config order (series may name
+    /// their own; site codes are one namespace across all of them).
+    pub key_sets: Vec<KeyColumns>,
     pub series: Vec<SeriesConfig>,
 }
 
@@ -109,6 +110,9 @@ pub use tidemark_feed::KeyColumns;
 #[derive(Debug, Clone, Serialize)]
 pub struct SeriesConfig {
     pub name: String,
+    /// The columns naming this series' site, year and visit in feed files.
+    #[serde(skip)]
+    pub keys: KeyColumns,
     pub response: String,
     pub transform: Transform,
     pub covariates: Vec<String>,
@@ -554,13 +558,15 @@ impl Config {
             .map(|(i, rs)| check_series(i, rs, &mut seen))
             .collect::<Result<Vec<_>, _>>()
             .map_err(invalid)?;
-        let keys = seen.keys.ok_or_else(|| {
-            invalid((
+        if seen.keys.is_empty() {
+            return Err(invalid((
                 "series".into(),
                 "at least one [[series]] is required (it also names the site and year columns of the feed)"
                     .into(),
-            ))
-        })?;
+            )));
+        }
+        check_keys_are_not_measured(&series).map_err(invalid)?;
+        let key_sets = seen.keys;
         Ok(Config {
             path: PathBuf::from(file),
             database,
@@ -568,7 +574,7 @@ impl Config {
             keep_draws,
             feed,
             schedule,
-            keys,
+            key_sets,
             series,
         })
     }
@@ -603,7 +609,7 @@ impl Config {
             .map(|s| s.response.clone())
             .collect();
         tidemark_feed::FileLayout {
-            keys: self.keys.clone(),
+            keys: self.key_sets.clone(),
             labels: self.label_columns(),
             numbers: tidemark_feed::NumberColumns::Only(numbers),
             positive,
@@ -613,13 +619,6 @@ impl Config {
 
     pub fn series(&self, name: &str) -> Option<&SeriesConfig> {
         self.series.iter().find(|s| s.name == name)
-    }
-}
-
-fn describe_keys(k: &KeyColumns) -> String {
-    match &k.visit {
-        Some(v) => format!("site={:?} year={:?} visit={:?}", k.site, k.year, v),
-        None => format!("site={:?} year={:?} (no visit)", k.site, k.year),
     }
 }
 
@@ -809,8 +808,8 @@ fn resolve_path(dir: &Path, key: &str, p: &str) -> Result<PathBuf, Problem> {
 /// What the series checked so far fix for the ones that follow.
 #[derive(Default)]
 struct SeenSoFar {
-    /// The key columns of the first series (every series must use the same).
-    keys: Option<KeyColumns>,
+    /// The distinct key sets, in the order series name them.
+    keys: Vec<KeyColumns>,
     names: BTreeSet<String>,
     /// Column -> (kind, first key that used it), so a column is typed the same everywhere.
     column_kind: BTreeMap<String, (&'static str, String)>,
@@ -854,6 +853,11 @@ fn check_series(i: usize, rs: RawSeries, seen: &mut SeenSoFar) -> Result<SeriesC
     check_sampler(&rs.sampler, &at("sampler"))?;
     Ok(SeriesConfig {
         name: rs.name,
+        keys: KeyColumns {
+            site: rs.site,
+            year: rs.year,
+            visit: rs.visit,
+        },
         response: rs.response,
         transform,
         covariates: rs.covariates,
@@ -866,7 +870,7 @@ fn check_series(i: usize, rs: RawSeries, seen: &mut SeenSoFar) -> Result<SeriesC
     })
 }
 
-/// Site, year and visit: three different columns, the same for every series.
+/// Site, year and visit: three different columns.
 fn check_key_columns(
     rs: &RawSeries,
     at: &dyn Fn(&str) -> String,
@@ -894,19 +898,34 @@ fn check_key_columns(
             "site, year and visit must be three different columns".into(),
         ));
     }
-    match &seen.keys {
-        None => seen.keys = Some(these),
-        Some(k) if *k != these => {
-            return Err((
-                at("site"),
-                format!(
-                    "every series must use the same site/year/visit columns (a current limit): series[0] uses {}, this one uses {}",
-                    describe_keys(k),
-                    describe_keys(&these)
-                ),
-            ))
+    if !seen.keys.contains(&these) {
+        seen.keys.push(these);
+    }
+    Ok(())
+}
+
+/// A column that is a site, year or visit column of any series is a key everywhere: no
+/// series may read it as a response, covariate, group or qualifier (feed files never
+/// store key columns as values).
+fn check_keys_are_not_measured(series: &[SeriesConfig]) -> Result<(), Problem> {
+    for (i, s) in series.iter().enumerate() {
+        let measured = s
+            .columns()
+            .into_iter()
+            .chain(s.censoring.iter().map(|c| c.column.clone()));
+        for col in measured {
+            if let Some(other) = series.iter().find(|o| {
+                o.keys.site == col || o.keys.year == col || o.keys.visit.as_deref() == Some(&col)
+            }) {
+                return Err((
+                    format!("series[{i}]"),
+                    format!(
+                        "column {col:?} is a site/year/visit column of series {:?} and cannot also be read as a value",
+                        other.name
+                    ),
+                ));
+            }
         }
-        Some(_) => {}
     }
     Ok(())
 }
@@ -1153,7 +1172,7 @@ draws = 500
         assert_eq!(s.priors.year_sd, Some(SdPrior::Exponential(2.0)));
         assert_eq!(s.sampler.chains, 2);
         assert_eq!(s.sampler.seed, 1);
-        assert_eq!(c.keys.visit.as_deref(), Some("visit"));
+        assert_eq!(c.key_sets[0].visit.as_deref(), Some("visit"));
         assert!(c.label_columns().contains("crew"));
     }
 
@@ -1229,12 +1248,14 @@ draws = 500
         assert!(m.contains("series[0].groups"), "{m}");
         let two = format!("{GOOD}\n[[series]]\nname = \"chlorophyll\"\nresponse = \"tp\"\nsite = \"lake\"\nyear = \"season\"\nvisit = \"visit\"\n");
         assert!(message(&two).contains("series[1].name"));
+        // Series may name their own key columns; a key of one is no value of another.
         let other_keys = format!("{GOOD}\n[[series]]\nname = \"tp\"\nresponse = \"tp\"\nsite = \"station\"\nyear = \"season\"\nvisit = \"visit\"\n");
-        let m = message(&other_keys);
-        assert!(
-            m.contains("series[1].site") && m.contains("current limit"),
-            "{m}"
-        );
+        let c = Config::parse(&other_keys, "t.toml", Path::new("/tmp")).unwrap();
+        assert_eq!(c.key_sets.len(), 2);
+        assert_eq!(c.series[1].keys.site, "station");
+        let key_as_value = format!("{GOOD}\n[[series]]\nname = \"tp\"\nresponse = \"lake\"\nsite = \"station\"\nyear = \"season\"\n");
+        let m = message(&key_as_value);
+        assert!(m.contains("site/year/visit column of series"), "{m}");
         let retyped = format!("{GOOD}\n[[series]]\nname = \"tp\"\nresponse = \"crew\"\nsite = \"lake\"\nyear = \"season\"\nvisit = \"visit\"\n");
         assert!(message(&retyped).contains("either numeric or a group label"));
     }

@@ -249,7 +249,7 @@ async fn write_batch(
         superseding,
         unchanged,
     };
-    close_batch_row(conn, batch_id, &counts).await?;
+    close_batch_row(conn, batch_id, &counts, &values.keys).await?;
     Ok(BatchOutcome::Ingested {
         batch_id,
         rows_read: counts.rows_read,
@@ -572,10 +572,12 @@ async fn close_batch_row(
     conn: &mut SqliteConnection,
     batch_id: i64,
     c: &BatchCounts,
+    keys: &tidemark_feed::KeyColumns,
 ) -> Result<(), sqlx::Error> {
     sqlx::query(
         "UPDATE ingest_batches SET rows_read = ?2, values_accepted = ?3, values_rejected = ?4,
-             values_superseding = ?5, values_unchanged = ?6
+             values_superseding = ?5, values_unchanged = ?6,
+             site_column = ?7, year_column = ?8, visit_column = ?9
          WHERE batch_id = ?1",
     )
     .bind(batch_id)
@@ -584,6 +586,9 @@ async fn close_batch_row(
     .bind(count(c.rejected))
     .bind(count(c.superseding))
     .bind(count(c.unchanged))
+    .bind(keys.site.as_str())
+    .bind(keys.year.as_str())
+    .bind(keys.visit.as_deref())
     .execute(&mut *conn)
     .await?;
     Ok(())
