@@ -246,3 +246,40 @@ visit = "visit"
         rows.len() - texts
     );
 }
+
+/// A censored value keeps the history rules of any value: re-sent identical it is
+/// unchanged; re-sent measured, or with another side or limit, it is superseded and stays
+/// in history with its side.
+#[test]
+fn censored_values_supersede_and_keep_history_like_any_value() {
+    let net = Network::with_config(&config());
+    net.ok(&["init"]);
+    let header = "lake,season,visit,chl_ug_l\n";
+    net.drop_file(
+        "a.csv",
+        format!("{header}L1,2020,1,<0.5\nL2,2020,1,<0.5\nL3,2020,1,>40\n"),
+    );
+    net.ok(&["ingest"]);
+    // L1 identical; L2 measured after all; L3 the other side of the same number.
+    net.drop_file(
+        "b.csv",
+        format!("{header}L1,2020,1,< 0.5\nL2,2020,1,0.7\nL3,2020,1,<40\n"),
+    );
+    let out = net.ok(&["ingest"]);
+    assert!(
+        line_for(&out, "b.csv").contains("3 values accepted (2 superseding, 1 unchanged)"),
+        "{out}"
+    );
+    assert_eq!(
+        net.sqlite3(
+            "SELECT s.code, o.num_value, COALESCE(o.censoring, '-'), o.superseded_by IS NULL
+             FROM observations o JOIN sites s USING (site_id) ORDER BY s.code, o.value_id"
+        ),
+        "L1|0.5|below|1\nL2|0.5|below|0\nL2|0.7|-|1\nL3|40.0|above|0\nL3|40.0|below|1\n"
+    );
+    // History cannot be rewritten, the side included.
+    let refused =
+        net.sqlite3_result("UPDATE observations SET censoring = NULL WHERE censoring = 'above'");
+    assert!(!refused.status.success());
+    assert!(String::from_utf8_lossy(&refused.stderr).contains("history"));
+}

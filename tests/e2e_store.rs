@@ -32,15 +32,14 @@ fn init_is_idempotent_and_sets_up_wal() {
         common::assert_exists(&net.path(dir));
     }
     assert_eq!(net.sqlite3("PRAGMA journal_mode").trim(), "wal");
-    let files = std::fs::read_dir(
-        std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../migrations"),
-    )
-    .expect("migrations folder")
-    .filter(|e| {
-        e.as_ref()
-            .is_ok_and(|e| e.file_name().to_string_lossy().ends_with(".sql"))
-    })
-    .count();
+    let files =
+        std::fs::read_dir(std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../migrations"))
+            .expect("migrations folder")
+            .filter(|e| {
+                e.as_ref()
+                    .is_ok_and(|e| e.file_name().to_string_lossy().ends_with(".sql"))
+            })
+            .count();
     assert_eq!(
         net.scalar("SELECT COUNT(*) FROM _sqlx_migrations WHERE success")
             .int(),
