@@ -21,7 +21,13 @@ pub struct DataBuilder {
     covariates: Vec<Vec<f64>>,
     response: Vec<f64>,
     censored: Vec<(u32, Censoring)>,
+    /// `Some(origin)`: a fixed linear term in `year - origin`, the last covariate, named
+    /// [`TREND`].
+    trend_origin: Option<i32>,
 }
+
+/// Name of the network trend's coefficient (per year of the year column).
+pub const TREND: &str = "trend";
 
 /// Which side of its limit a censored value lies on.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, serde::Serialize, serde::Deserialize)]
@@ -52,6 +58,8 @@ pub struct Data {
     /// Censored observations, by row: their `response` holds the limit, a provisional
     /// value for start points and data-scaled priors only (`censored.rs`).
     pub(crate) censored: Vec<(u32, Censoring)>,
+    /// See [`DataBuilder::with_trend`].
+    pub(crate) trend_origin: Option<i32>,
 }
 
 /// Largest magnitude of a response or covariate value on the model scale. Sums of squares
@@ -74,7 +82,21 @@ impl DataBuilder {
             years: Vec::new(),
             response: Vec::new(),
             censored: Vec::new(),
+            trend_origin: None,
         }
+    }
+
+    /// Add a network trend: a fixed linear term in `year - origin`, appended as the last
+    /// covariate and named [`TREND`] (its coefficient is the change per year on the model
+    /// scale; the random year effects are deviations around it). `push` then takes the
+    /// other covariates only.
+    pub fn with_trend(mut self, origin: i32) -> Self {
+        if self.trend_origin.is_none() {
+            self.covariate_names.push(TREND.to_string());
+            self.covariates.push(Vec::new());
+        }
+        self.trend_origin = Some(origin);
+        self
     }
 
     /// Add one censored observation: its value lies on the `side` of `limit` (model
@@ -113,11 +135,12 @@ impl DataBuilder {
                 found: groups.len(),
             });
         }
-        if covariates.len() != self.covariate_names.len() {
+        let given = self.covariate_names.len() - usize::from(self.trend_origin.is_some());
+        if covariates.len() != given {
             return Err(ModelError::RowShape {
                 row,
                 what: "covariate values",
-                expected: self.covariate_names.len(),
+                expected: given,
                 found: covariates.len(),
             });
         }
@@ -159,6 +182,9 @@ impl DataBuilder {
         for (column, &x) in self.covariates.iter_mut().zip(covariates) {
             column.push(x);
         }
+        if let (Some(origin), Some(column)) = (self.trend_origin, self.covariates.last_mut()) {
+            column.push(f64::from(year) - f64::from(origin));
+        }
         self.response.push(response);
         Ok(())
     }
@@ -192,6 +218,9 @@ impl DataBuilder {
         let first = self.response[0];
         if self.response.iter().all(|&y| y == first) {
             return Err(ModelError::ConstantResponse { value: first });
+        }
+        if self.trend_origin.is_some() && self.years.iter().all(|&y| y == self.years[0]) {
+            return Err(ModelError::TrendNeedsYears);
         }
         check_covariates(&self.covariate_names, &self.covariates)?;
 
@@ -236,6 +265,7 @@ impl DataBuilder {
             group_names: self.group_names,
             warnings,
             censored: self.censored,
+            trend_origin: self.trend_origin,
         })
     }
 }
@@ -244,6 +274,11 @@ impl Data {
     /// Number of censored observations.
     pub fn n_censored(&self) -> usize {
         self.censored.len()
+    }
+
+    /// The network trend's origin year, when the data carry a trend.
+    pub fn trend_origin(&self) -> Option<i32> {
+        self.trend_origin
     }
 
     pub fn n_obs(&self) -> usize {
@@ -311,11 +346,19 @@ impl Data {
     /// `None`. Known-site forecasts hold such a covariate at the site's value: the
     /// site's effect was estimated beside it, so the network mean would shift that site by
     /// the coefficient times its distance from the mean.
+    /// The trend column, which varies with the year, is never one.
     pub fn site_level_covariates(&self) -> Vec<Option<Vec<f64>>> {
         let n_sites = self.n_sites();
+        let trend_at = self
+            .trend_origin
+            .map(|_| self.covariates.len().saturating_sub(1));
         self.covariates
             .iter()
-            .map(|column| {
+            .enumerate()
+            .map(|(j, column)| {
+                if Some(j) == trend_at {
+                    return None;
+                }
                 let mut value: Vec<Option<f64>> = vec![None; n_sites];
                 for (&s, &x) in self.site.iter().zip(column) {
                     match value[s as usize] {

@@ -63,6 +63,10 @@ pub enum ModelError {
         censored: usize,
         observations: usize,
     },
+    #[error(
+        "a trend needs data from at least two years; leave `trend` off until a second year arrives"
+    )]
+    TrendNeedsYears,
     #[error("the fit was cancelled")]
     Cancelled,
     /// The previous version's posterior conflicts with the new data

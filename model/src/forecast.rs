@@ -41,6 +41,10 @@ pub struct ForecastBasis {
     #[serde(default)]
     pub site_covariates: Vec<Option<Vec<f64>>>,
     pub site_last_year: Vec<i32>,
+    /// The network trend's origin year: the last covariate is then `year - origin`, set
+    /// from each row's own year (a new year's trend is extrapolated).
+    #[serde(default)]
+    pub trend_origin: Option<i32>,
     /// Number of joint draws.
     pub n: usize,
     /// Index of each joint draw in the posterior's full draws (chain-major).
@@ -482,15 +486,44 @@ pub fn forecast_baseline(basis: &ForecastBasis, transform: Transform) -> Vec<For
     forecast(basis, transform, &Scenario::baseline())
 }
 
-/// The forecast set for one covariate scenario.
+/// The forecast set for one covariate scenario, one year ahead.
 pub fn forecast(
     basis: &ForecastBasis,
     transform: Transform,
     scenario: &Scenario,
 ) -> Vec<ForecastRow> {
+    forecast_to(basis, transform, scenario, 1)
+}
+
+/// `covariates` with the trend column (when the basis has a trend) at `year`.
+fn at_year(basis: &ForecastBasis, covariates: &[Option<f64>], year: i32) -> Vec<Option<f64>> {
+    let mut out = covariates.to_vec();
+    if let Some(origin) = basis.trend_origin {
+        let j = basis.covariate_means.len().saturating_sub(1);
+        if out.len() <= j {
+            out.resize(j + 1, None);
+        }
+        out[j] = Some(f64::from(year) - f64::from(origin));
+    }
+    out
+}
+
+/// The forecast set for one covariate scenario with new-year targets for each of the
+/// `horizon` years after the data (at least one): each such year has a new year effect
+/// of its own, and under a trend its own point on the trend line.
+pub fn forecast_to(
+    basis: &ForecastBasis,
+    transform: Transform,
+    scenario: &Scenario,
+    horizon: u32,
+) -> Vec<ForecastRow> {
     let m = basis.sd_names.len();
     let n_sites = basis.site_labels.len();
-    let next_year = basis.data_through_year() + 1;
+    let new_years: Vec<i32> = (1..=horizon.max(1) as i32)
+        .map(|h| basis.data_through_year() + h)
+        .collect();
+    let trend = basis.trend_origin.is_some();
+    let fixed_at = |year: i32| fixed_part(basis, &at_year(basis, &scenario.covariates, year));
     let fixed = fixed_part(basis, &scenario.covariates);
     // Whether a known site's row needs its own fixed part (a site-level covariate the
     // scenario leaves at its baseline).
@@ -540,25 +573,35 @@ pub fn forecast(
     let year_index = |y: i32| basis.year_labels.binary_search(&y).ok();
 
     let mut rows: Vec<ForecastRow> = Vec::new();
-    // Monitored sites: next year, and their latest observed year.
-    for target in [
-        ForecastTarget::KnownSiteNewYear,
-        ForecastTarget::KnownSiteKnownYear,
-    ] {
+    // Monitored sites: each new year, and their latest observed year.
+    let site_targets = new_years
+        .iter()
+        .map(|&y| (ForecastTarget::KnownSiteNewYear, Some(y)))
+        .chain(std::iter::once((ForecastTarget::KnownSiteKnownYear, None)));
+    for (target, new_year) in site_targets {
+        let fixed_new = new_year.map(&fixed_at);
         let site_rows: Vec<ForecastRow> = (0..n_sites)
             .into_par_iter()
             .map(|s| {
-                let (year, t) = if target.new_year() {
-                    (next_year, None)
-                } else {
-                    let year = basis.site_last_year[s];
-                    (year, year_index(year))
+                let (year, t) = match new_year {
+                    Some(y) => (y, None),
+                    None => {
+                        let year = basis.site_last_year[s];
+                        (year, year_index(year))
+                    }
                 };
-                let comp = if site_level {
-                    let at = covariates_at(basis, Some(s), &scenario.covariates);
+                let comp = if site_level || (trend && new_year.is_none()) {
+                    let given = at_year(basis, &scenario.covariates, year);
+                    let given = if trend {
+                        given
+                    } else {
+                        scenario.covariates.clone()
+                    };
+                    let at = covariates_at(basis, Some(s), &given);
                     predictive_from(basis, &fixed_part(basis, &at), Some(s), t)
                 } else {
-                    predictive_from(basis, &fixed, Some(s), t)
+                    let f = fixed_new.as_ref().unwrap_or(&fixed);
+                    predictive_from(basis, f, Some(s), t)
                 };
                 let mut row = row_from(
                     spec(target, Some(basis.site_labels[s].clone()), year),
@@ -570,19 +613,23 @@ pub fn forecast(
             .collect();
         rows.extend(site_rows);
     }
-    // A new site in every observed year, then next year.
+    // A new site in every observed year, then in each new year.
     for (t, &year) in basis.year_labels.iter().enumerate() {
-        let comp = predictive_from(basis, &fixed, None, Some(t));
+        let f = if trend { fixed_at(year) } else { fixed.clone() };
+        let comp = predictive_from(basis, &f, None, Some(t));
         rows.push(row_from(
             spec(ForecastTarget::NewSiteKnownYear, None, year),
             &comp,
         ));
     }
-    let comp = predictive_from(basis, &fixed, None, None);
-    rows.push(row_from(
-        spec(ForecastTarget::NewSiteNewYear, None, next_year),
-        &comp,
-    ));
+    for &year in &new_years {
+        let f = if trend { fixed_at(year) } else { fixed.clone() };
+        let comp = predictive_from(basis, &f, None, None);
+        rows.push(row_from(
+            spec(ForecastTarget::NewSiteNewYear, None, year),
+            &comp,
+        ));
+    }
     rows
 }
 

@@ -31,7 +31,7 @@ mod sparse;
 mod stats;
 pub use stats::{NormalEquations, SPARSE_FROM_LEVELS};
 
-pub use data::{Censoring, Data, DataBuilder, MAX_MAGNITUDE};
+pub use data::{Censoring, Data, DataBuilder, MAX_MAGNITUDE, TREND};
 pub use error::ModelError;
 pub use priors::{NormalPrior, Priors, ResolvedPriors, SdPrior};
 pub use reml::{fit_point, fit_point_using, CoefEstimate, Method, PointFit};
@@ -54,8 +54,8 @@ pub use warm::{conflict_threshold, WarmPlan, CONFLICT_TAIL, REFIT_ESS_PER_COMPON
 mod forecast;
 pub mod simulate;
 pub use forecast::{
-    forecast, forecast_baseline, predictive, ForecastBasis, ForecastRow, ForecastTarget,
-    Predictive, Scenario, Transform,
+    forecast, forecast_baseline, forecast_to, predictive, ForecastBasis, ForecastRow,
+    ForecastTarget, Predictive, Scenario, Transform,
 };
 pub mod calibration;
 pub mod refits;

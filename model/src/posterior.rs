@@ -28,6 +28,8 @@ pub enum SummaryKind {
     Share,
     Coef,
     Effect,
+    /// The network trend per year, per decade and (log scale) percent per year.
+    Trend,
 }
 
 impl SummaryKind {
@@ -37,6 +39,7 @@ impl SummaryKind {
             SummaryKind::Share => "share",
             SummaryKind::Coef => "coef",
             SummaryKind::Effect => "effect",
+            SummaryKind::Trend => "trend",
         }
     }
 }
@@ -113,6 +116,10 @@ pub struct Posterior {
     pub site_covariates: Vec<Option<Vec<f64>>>,
     /// Latest observed year of each site.
     pub site_last_year: Vec<i32>,
+    /// The network trend's origin year ([`crate::DataBuilder::with_trend`]); its
+    /// coefficient is the last one.
+    #[serde(default)]
+    pub trend_origin: Option<i32>,
     pub n_obs: usize,
     pub chains: usize,
     /// Saved draws per chain.
@@ -154,6 +161,24 @@ impl Posterior {
             .collect()
     }
 
+    /// A summary of `f` of coefficient `j`'s draws (a monotone or any other function:
+    /// the quantiles, mean, sd and diagnostics are those of the transformed draws), filed
+    /// under `kind`, `term` and `level`.
+    pub fn coef_summary_by(
+        &self,
+        j: usize,
+        (kind, term, level): (SummaryKind, &str, Option<String>),
+        f: impl Fn(f64) -> f64,
+    ) -> Summary {
+        let chains: Vec<Vec<f64>> = self
+            .coef_chains(j)
+            .into_iter()
+            .map(|c| c.into_iter().map(&f).collect())
+            .collect();
+        let table = ZTable::new(2 * (self.draws / 2) * self.chains);
+        summarise(kind, term, level, &chains, &table)
+    }
+
     /// The summary row of a kind and term (level `None` for non-effects).
     pub fn summary(&self, kind: SummaryKind, term: &str, level: Option<&str>) -> Option<&Summary> {
         self.summaries
@@ -186,6 +211,7 @@ impl Posterior {
             covariate_means: self.covariate_means.clone(),
             site_covariates: self.site_covariates.clone(),
             site_last_year: self.site_last_year.clone(),
+            trend_origin: self.trend_origin,
             n: cols.len(),
             draw_index: cols.iter().map(|&c| eff.draw_index[c]).collect(),
             site: pick(&eff.site, self.site_labels.len()),
@@ -506,6 +532,7 @@ fn assemble(
         covariate_means: data.covariate_means(),
         site_covariates: data.site_level_covariates(),
         site_last_year: data.site_last_year(),
+        trend_origin: data.trend_origin,
         n_obs: data.n_obs(),
         chains,
         draws,

@@ -67,6 +67,7 @@ fn basis() -> ForecastBasis {
         covariate_means: vec![10.0],
         site_covariates: vec![None],
         site_last_year: vec![2004, 2003, 2002],
+        trend_origin: None,
         n,
         draw_index: (0..n).collect(),
         site,

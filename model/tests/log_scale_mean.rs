@@ -29,6 +29,7 @@ fn basis(c: f64, residual: f64, site: f64, year_sd: &[f64]) -> ForecastBasis {
         covariate_means: vec![],
         site_covariates: vec![],
         site_last_year: vec![2020],
+        trend_origin: None,
         n,
         draw_index: (0..n).collect(),
         site: vec![0.0; n],

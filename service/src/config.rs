@@ -120,6 +120,12 @@ pub struct SeriesConfig {
     /// A qualifier column marking censored response values (cells written `<x` / `>x`
     /// need none).
     pub censoring: Option<CensoringColumn>,
+    /// A fixed linear network trend in year (`trend = true`).
+    pub trend: bool,
+    /// The trend's reference year (`trend_origin`); `None`: the series' first year of data.
+    pub trend_origin: Option<i32>,
+    /// New-year forecast targets for this many years after the data (`horizon`, 1–50).
+    pub horizon: u32,
     pub priors: Priors,
     pub sampler: SamplerConfig,
     /// Known-site forecasts are written only for sites observed within this many years
@@ -141,8 +147,17 @@ pub struct ModelDefinition {
     pub covariates: Vec<String>,
     pub groups: Vec<String>,
     pub censoring: Option<CensoringColumn>,
+    /// `None` without a trend; the origin (`None` inside: the first year of data).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub trend: Option<TrendDefinition>,
     pub priors: Priors,
     pub gate: Gate,
+}
+
+/// The trend part of a model definition.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct TrendDefinition {
+    pub origin: Option<i32>,
 }
 
 /// The convergence gate a version had to pass.
@@ -177,6 +192,7 @@ impl ModelDefinition {
         check("covariates", self.covariates != earlier.covariates);
         check("groups", self.groups != earlier.groups);
         check("censoring", self.censoring != earlier.censoring);
+        check("trend", self.trend != earlier.trend);
         check("priors", self.priors != earlier.priors);
         check("gate", self.gate != earlier.gate);
         out
@@ -212,6 +228,9 @@ impl SeriesConfig {
             covariates: self.covariates.clone(),
             groups: self.groups.clone(),
             censoring: self.censoring.clone(),
+            trend: self.trend.then_some(TrendDefinition {
+                origin: self.trend_origin,
+            }),
             priors: self.priors.clone(),
             gate: Gate {
                 max_rhat: self.sampler.max_rhat,
@@ -445,6 +464,11 @@ struct RawSeries {
     groups: Vec<String>,
     censoring: Option<CensoringColumn>,
     #[serde(default)]
+    trend: bool,
+    trend_origin: Option<i32>,
+    #[serde(default = "default_horizon")]
+    horizon: u32,
+    #[serde(default)]
     priors: Priors,
     #[serde(default)]
     sampler: SamplerConfig,
@@ -456,6 +480,14 @@ struct RawSeries {
 fn default_transform() -> String {
     "none".into()
 }
+
+fn default_horizon() -> u32 {
+    1
+}
+
+/// Bounds of `series.horizon`: a forecast is at least one year ahead; beyond fifty years a
+/// trend's extrapolation says more about the line than about the network.
+const HORIZONS: std::ops::RangeInclusive<u32> = 1..=50;
 
 // ---- loading ----------------------------------------------------------------------------
 
@@ -848,6 +880,31 @@ fn check_series(i: usize, rs: RawSeries, seen: &mut SeenSoFar) -> Result<SeriesC
     if let Some(c) = &rs.censoring {
         check_censoring(c, &at("censoring"))?;
     }
+    if !HORIZONS.contains(&rs.horizon) {
+        return Err((
+            at("horizon"),
+            format!(
+                "must be {} to {} years, found {}",
+                HORIZONS.start(),
+                HORIZONS.end(),
+                rs.horizon
+            ),
+        ));
+    }
+    if rs.trend_origin.is_some() && !rs.trend {
+        return Err((
+            at("trend_origin"),
+            "is the reference year of a trend: set `trend = true` too".into(),
+        ));
+    }
+    if let Some(origin) = rs.trend_origin {
+        if !(1800..=2200).contains(&origin) {
+            return Err((
+                at("trend_origin"),
+                format!("must be a year from 1800 to 2200, found {origin}"),
+            ));
+        }
+    }
     check_report_sites(&rs.report_sites, &at("report_sites"))?;
     check_priors(&rs.priors, &at("priors"))?;
     check_sampler(&rs.sampler, &at("sampler"))?;
@@ -863,6 +920,9 @@ fn check_series(i: usize, rs: RawSeries, seen: &mut SeenSoFar) -> Result<SeriesC
         covariates: rs.covariates,
         groups: rs.groups,
         censoring: rs.censoring,
+        trend: rs.trend,
+        trend_origin: rs.trend_origin,
+        horizon: rs.horizon,
         priors: rs.priors,
         sampler: rs.sampler,
         known_site_max_gap: rs.known_site_max_gap,

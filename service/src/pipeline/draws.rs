@@ -10,7 +10,8 @@
 //! rows hold the covariate means (`covariate_mean`, level = covariate), each site's
 //! latest observed year (`site_last_year`, level = site) and, for a covariate that is an
 //! attribute of the site, every site's value in the order of the `effect/site` rows
-//! (`site_covariate`, level = covariate).
+//! (`site_covariate`, level = covariate); a series with a trend has a `data/trend_origin`
+//! row (its one value the origin year; the last coefficient is the trend).
 
 use std::sync::Arc;
 
@@ -217,6 +218,16 @@ pub fn encode(post: &Posterior, basis: &ForecastBasis) -> Result<Vec<u8>, ArrowE
             std::iter::once(*mean),
         );
     }
+    if let Some(origin) = basis.trend_origin {
+        rows.push(
+            "data",
+            "trend_origin",
+            None,
+            1,
+            1,
+            std::iter::once(f64::from(origin)),
+        );
+    }
     for (label, year) in basis.site_labels.iter().zip(&basis.site_last_year) {
         rows.push(
             "data",
@@ -343,6 +354,7 @@ pub fn decode(blob: &[u8]) -> Result<Decoded, ArrowError> {
     let mut draw_index: Vec<f64> = Vec::new();
     let mut covariate_means = Vec::new();
     let mut site_last_year: Vec<(String, i32)> = Vec::new();
+    let mut trend_origin: Option<i32> = None;
     let mut site_covariates: std::collections::HashMap<String, Vec<f64>> = Default::default();
     let (mut chains, mut draws) = (0usize, 0usize);
     for row in stored_rows(blob)? {
@@ -366,6 +378,7 @@ pub fn decode(blob: &[u8]) -> Result<Decoded, ArrowError> {
             "data" if term == "site_last_year" => {
                 site_last_year.push((level.unwrap_or_default(), v[0] as i32))
             }
+            "data" if term == "trend_origin" => trend_origin = v.first().map(|&y| y as i32),
             "data" if term == "site_covariate" => {
                 site_covariates.insert(level.unwrap_or_default(), v);
             }
@@ -448,6 +461,7 @@ pub fn decode(blob: &[u8]) -> Result<Decoded, ArrowError> {
         group_names,
         group_labels,
         covariate_means,
+        trend_origin,
         n,
         draw_index: idx.clone(),
         site,

@@ -2,7 +2,7 @@
 //! the config still counts as monitored, and the covariate values behind the scenario.
 //! Shared by a refit and by `tidemark forecast`, so both write the same thing.
 
-use tidemark_model::{forecast_baseline, ForecastBasis, ForecastRow, Transform};
+use tidemark_model::{forecast_to, ForecastBasis, ForecastRow, Scenario, Transform};
 
 use crate::config::SeriesConfig;
 use crate::store::ScenarioValue;
@@ -22,7 +22,8 @@ impl BaselineForecasts {
     }
 }
 
-/// Forecast every target at the network means of the covariates. Known-site rows of a
+/// Forecast every target at the network means of the covariates, new-year targets for
+/// each of the `series.horizon` years after the data. Known-site rows of a
 /// site last observed more than `series.known_site_max_gap` years before the
 /// data-through year are left out: such a site is no longer monitored in any useful sense.
 pub fn baseline(
@@ -31,7 +32,7 @@ pub fn baseline(
     series: &SeriesConfig,
 ) -> BaselineForecasts {
     let through = basis.data_through_year();
-    let mut rows = forecast_baseline(basis, transform);
+    let mut rows = forecast_to(basis, transform, &Scenario::baseline(), series.horizon);
     if let Some(gap) = series.known_site_max_gap {
         rows.retain(|r| match r.last_observed_year {
             Some(last) => i64::from(through) - i64::from(last) <= i64::from(gap),
@@ -39,11 +40,13 @@ pub fn baseline(
         });
     }
     // coef_names[0] is the intercept; the covariates follow in the order of their means.
+    // The trend has no single value: each row is at its own year.
     let scenarios = basis
         .coef_names
         .iter()
         .skip(1)
         .zip(&basis.covariate_means)
+        .filter(|(name, _)| basis.trend_origin.is_none() || name.as_str() != tidemark_model::TREND)
         .map(|(name, mean)| ScenarioValue {
             scenario: "baseline".into(),
             covariate: name.clone(),

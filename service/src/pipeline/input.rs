@@ -131,6 +131,17 @@ fn measured(series: &SeriesConfig, value: f64) -> Result<Response, String> {
 /// censored at its limit; no value is substituted for it.
 pub fn build(series: &SeriesConfig, rows: &[SeriesRow]) -> Result<ModelInput, InputError> {
     let mut builder = DataBuilder::new(series.covariates.clone(), series.groups.clone());
+    if series.trend {
+        // The documented default origin: the series' first year of data.
+        let first = rows
+            .iter()
+            .filter(|r| r.response.is_some())
+            .filter_map(|r| i32::try_from(r.year).ok())
+            .min();
+        if let Some(origin) = series.trend_origin.or(first) {
+            builder = builder.with_trend(origin);
+        }
+    }
     let mut excluded = Vec::new();
     let model_err = |source| InputError::Model {
         series: series.name.clone(),

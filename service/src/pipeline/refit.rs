@@ -633,6 +633,30 @@ async fn attempt_fits(
     })))
 }
 
+/// The network trend as `posterior_summary` rows of kind `trend`: per year and per decade
+/// of the year column on the model scale, and under `log` as percent change per year,
+/// `100 (exp(beta) - 1)`. None without a trend.
+fn trend_summaries(
+    post: &Posterior,
+    transform: tidemark_model::Transform,
+) -> Vec<tidemark_model::Summary> {
+    if post.trend_origin.is_none() {
+        return Vec::new();
+    }
+    let j = post.coef_names.len() - 1;
+    let trend = SummaryKind::Trend;
+    let mut out = vec![
+        post.coef_summary_by(j, (trend, "per_year", None), |b| b),
+        post.coef_summary_by(j, (trend, "per_decade", None), |b| 10.0 * b),
+    ];
+    if transform == tidemark_model::Transform::Log {
+        out.push(
+            post.coef_summary_by(j, (trend, "percent_per_year", None), |b| 100.0 * b.exp_m1()),
+        );
+    }
+    out
+}
+
 /// Record the attempt that ended the sequence: a published version with its summaries,
 /// draws and forecasts, or a rejected attempt with its diagnostics.
 async fn publish(
@@ -698,7 +722,9 @@ async fn publish(
         })
         .await?;
         let blob = blob?;
-        (post.summaries.clone(), Some(blob), forecasts)
+        let mut summaries = post.summaries.clone();
+        summaries.extend(trend_summaries(&post, transform));
+        (summaries, Some(blob), forecasts)
     } else {
         // A rejected fit keeps its diagnostics, not its effects or draws.
         let kept = post
