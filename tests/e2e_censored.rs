@@ -212,7 +212,10 @@ fn text_kept_from_an_unread_column_becomes_exclusions_once_a_series_reads_it() {
     let texts = (0..rows.len()).filter(|i| i % 9 == 0).count();
     net.drop_file("depths.csv", &text);
     let out = net.ok(&["ingest"]);
-    assert!(line_for(&out, "depths.csv").ends_with(", 0 rejected"), "{out}");
+    assert!(
+        line_for(&out, "depths.csv").ends_with(", 0 rejected"),
+        "{out}"
+    );
 
     let depth = r#"name = "depth"
 response = "depth_m"
