@@ -309,6 +309,7 @@ fn new_fit(series: &SeriesConfig, watermark: i64, run_id: Option<i64>) -> NewFit
         chains: Some(series.sampler.chains as i64),
         draws: Some(series.sampler.draws as i64),
         definition_sha256: Some(series.definition_sha256()),
+        unit: series.unit.clone(),
         ..NewFit::default()
     }
 }
@@ -623,6 +624,7 @@ async fn publish(
         })
         .await?;
         let blob = blob?;
+        let forecasts = forecasts?;
         (post.summaries.clone(), Some(blob), forecasts)
     } else {
         // A rejected fit keeps its diagnostics, not its effects or draws.
@@ -632,14 +634,7 @@ async fn publish(
             .filter(|s| s.kind != SummaryKind::Effect)
             .cloned()
             .collect();
-        (
-            kept,
-            None,
-            super::forecasts::BaselineForecasts {
-                rows: Vec::new(),
-                scenarios: Vec::new(),
-            },
-        )
+        (kept, None, super::forecasts::BaselineForecasts::default())
     };
     fit.wall_seconds = Some(started.elapsed().as_secs_f64());
     crate::test_hold::at("publishing", &series.name).await;

@@ -53,12 +53,14 @@ pub struct FitSummary {
     pub min_ess_bulk: Option<f64>,
     pub min_ess_tail: Option<f64>,
     pub message: Option<String>,
+    /// The response's unit the fit was made with (`fits.unit`).
+    pub unit: Option<String>,
 }
 
 const FIT_COLUMNS: &str =
     "fit_id, series, version, status, created_at, data_through_year, watermark,
     n_obs, n_sites, n_years, warm_start_from, chains, draws, warmup, wall_seconds, max_rhat,
-    min_ess_bulk, min_ess_tail, message";
+    min_ess_bulk, min_ess_tail, message, unit";
 
 impl Store {
     /// The `limit` most recent runs, newest first.
