@@ -145,6 +145,9 @@ fn expected_sql(what: &str, series: Option<&str>) -> (Vec<&'static str>, String)
                 "share_residual",
                 "share_estimation",
                 "prior_only",
+                "forecast_id",
+                "unit",
+                "scale",
             ];
             let sql = format!(
                 "SELECT {} FROM latest_forecasts {} ORDER BY series, target, site, year, scenario",
@@ -194,6 +197,8 @@ fn expected_sql(what: &str, series: Option<&str>) -> (Vec<&'static str>, String)
                 "previous_q50",
                 "change",
                 "flagged",
+                "unit",
+                "scale",
             ];
             let sql = format!(
                 "SELECT {} FROM variance_drift {} ORDER BY series, version, kind, term",

@@ -26,6 +26,7 @@ response = "tp_ug_l"
 site = "lake"
 year = "season"
 visit = "visit"
+thresholds = [19.5, 21.0]
 
 [series.sampler]
 chains = 4
@@ -298,6 +299,19 @@ fn the_report_is_one_self_contained_page_with_escaped_codes() {
     ] {
         assert!(!html.contains(needle), "the page contains {needle:?}");
     }
+    // Next year's exceedance probabilities: the 20 of 45 lakes most likely to exceed the
+    // lower threshold, one column per threshold, with the caution beside the table.
+    assert!(
+        html.contains("the 20 of 45 monitored sites most likely to exceed 19.5 tp_ug_l units"),
+        "exceedance table heading missing"
+    );
+    assert!(html.contains("<th>P(&gt; 19.5)</th><th>P(&gt; 21)</th>"));
+    let table = &html[html
+        .find("Probability of exceeding the thresholds")
+        .unwrap()..];
+    let table = &table[..table.find("</section>").unwrap()];
+    assert_eq!(table.matches("<tr><td>").count(), 20);
+    assert!(table.contains("qualified staff") && table.contains("notification rules"));
     // The cautions, in substance.
     for phrase in [
         "statistical estimates",
@@ -582,13 +596,17 @@ fn named_report_sites_get_their_own_charts() {
     let config = CONFIG.replace(
         "visit = \"visit\"\n",
         &format!(
-            "visit = \"visit\"\nreport_sites = [\"Lake 01\", {:?}, \"Nowhere <x>\"]\n",
+            "visit = \"visit\"\nunit = \"µg/L\"\nreport_sites = [\"Lake 01\", {:?}, \"Nowhere <x>\"]\n",
             MARKUP_CODE
         ),
     );
     std::fs::write(net.config_path(), config).unwrap();
     let (_, html) = write_report(&net);
     assert!(html.contains("the sites named in <code>report_sites</code>"));
+    // The versions predate the unit: the axes take the config's.
+    assert!(html.contains("width of the 80% interval (response scale, µg/L)"));
+    // (Text in the page is escaped with `/` as `&#x2F;`.)
+    assert!(html.contains("(transform none, unit µg&#x2F;L)"));
     assert_eq!(
         html.matches("<svg").count(),
         3 + 2,

@@ -5,8 +5,8 @@ mod common;
 
 use common::{Network, Value};
 
-/// The newest schema version: the number of the last file in `migrations/`.
-fn newest_migration() -> i64 {
+/// The version numbers of the files in `migrations/`.
+fn migrations() -> Vec<i64> {
     let dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../migrations");
     std::fs::read_dir(dir)
         .expect("migrations folder")
@@ -15,6 +15,13 @@ fn newest_migration() -> i64 {
             let name = e.file_name().to_string_lossy().into_owned();
             name.split('_').next()?.parse::<i64>().ok()
         })
+        .collect()
+}
+
+/// The newest schema version: the number of the last file in `migrations/`.
+fn newest_migration() -> i64 {
+    migrations()
+        .into_iter()
         .max()
         .expect("at least one migration")
 }
@@ -32,19 +39,10 @@ fn init_is_idempotent_and_sets_up_wal() {
         common::assert_exists(&net.path(dir));
     }
     assert_eq!(net.sqlite3("PRAGMA journal_mode").trim(), "wal");
-    let files =
-        std::fs::read_dir(std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../migrations"))
-            .expect("migrations folder")
-            .filter(|e| {
-                e.as_ref()
-                    .is_ok_and(|e| e.file_name().to_string_lossy().ends_with(".sql"))
-            })
-            .count();
     assert_eq!(
         net.scalar("SELECT COUNT(*) FROM _sqlx_migrations WHERE success")
             .int(),
-        files as i64,
-        "every migration file is applied"
+        migrations().len() as i64
     );
 }
 
@@ -92,6 +90,7 @@ fn contract_tables_and_columns_exist() {
                 "min_ess_tail",
                 "seed",
                 "message",
+                "unit",
             ],
         ),
         (
@@ -125,6 +124,27 @@ fn contract_tables_and_columns_exist() {
                 "share_residual",
                 "share_estimation",
                 "prior_only",
+                "forecast_id",
+                "scale",
+            ],
+        ),
+        (
+            "forecast_exceedance",
+            &["forecast_id", "threshold", "probability"],
+        ),
+        (
+            "latest_exceedance",
+            &[
+                "series",
+                "fit_id",
+                "forecast_id",
+                "target",
+                "site",
+                "year",
+                "scenario",
+                "unit",
+                "threshold",
+                "probability",
             ],
         ),
         (
@@ -165,6 +185,9 @@ fn contract_tables_and_columns_exist() {
                 "share_residual",
                 "share_estimation",
                 "prior_only",
+                "forecast_id",
+                "unit",
+                "scale",
             ],
         ),
         (
@@ -182,6 +205,8 @@ fn contract_tables_and_columns_exist() {
                 "previous_q50",
                 "change",
                 "flagged",
+                "unit",
+                "scale",
             ],
         ),
         (
@@ -218,6 +243,8 @@ INSERT INTO forecasts (fit_id, target, site, year, mean) VALUES
   (1, 'known_site_new_year', 'L1', 2021, 1.0),
   (2, 'known_site_new_year', 'L1', 2022, 2.0),
   (2, 'new_site_new_year', NULL, 2022, 3.0);
+INSERT INTO forecast_exceedance (forecast_id, threshold, probability)
+SELECT forecast_id, 10.0, 0.25 FROM forecasts;
 ";
 
 #[test]
@@ -231,6 +258,10 @@ fn views_serve_the_latest_published_version_and_the_drift() {
     assert_eq!(
         net.sqlite3("SELECT series, fit_id, target, site, year, mean FROM latest_forecasts ORDER BY target"),
         "chlorophyll|2|known_site_new_year|L1|2022|2.0\nchlorophyll|2|new_site_new_year||2022|3.0\n"
+    );
+    assert_eq!(
+        net.sqlite3("SELECT series, fit_id, target, year, threshold, probability FROM latest_exceedance ORDER BY target"),
+        "chlorophyll|2|known_site_new_year|2022|10.0|0.25\nchlorophyll|2|new_site_new_year|2022|10.0|0.25\n"
     );
     assert_eq!(
         net.sqlite3("SELECT series, version, fit_id, data_through_year, term, q05, q50, q95 FROM variance_drift"),
@@ -256,6 +287,12 @@ fn published_versions_are_immutable() {
         "DELETE FROM fits WHERE fit_id = 1",
         "UPDATE posterior_summary SET q50 = 0 WHERE fit_id = 2",
         "DELETE FROM posterior_summary WHERE fit_id = 1",
+        // Forecasts: never edited; deleted only while their version is the latest (to
+        // be replaced by `tidemark forecast`).
+        "UPDATE forecasts SET mean = 0 WHERE fit_id = 2",
+        "DELETE FROM forecasts WHERE fit_id = 1",
+        "UPDATE forecast_exceedance SET probability = 0.5",
+        "DELETE FROM forecast_exceedance WHERE forecast_id IN (SELECT forecast_id FROM forecasts WHERE fit_id = 1)",
     ] {
         let out = std::process::Command::new("sqlite3")
             .arg(net.db_path())
@@ -272,6 +309,15 @@ fn published_versions_are_immutable() {
     // A rejected attempt is not a version: it may be annotated.
     net.sqlite3("UPDATE fits SET message = 'gate failed' WHERE fit_id = 3");
     assert_eq!(net.scalar("SELECT COUNT(*) FROM fits").int(), 3);
+    // The latest version's forecast rows may be replaced: exceedance rows first.
+    net.sqlite3(
+        "DELETE FROM forecast_exceedance WHERE forecast_id IN (SELECT forecast_id FROM forecasts WHERE fit_id = 2);
+         DELETE FROM forecasts WHERE fit_id = 2;",
+    );
+    assert_eq!(
+        net.scalar("SELECT COUNT(*) FROM forecast_exceedance").int(),
+        1
+    );
 }
 
 #[test]
@@ -645,6 +691,13 @@ fn a_database_of_the_previous_release_upgrades_and_keeps_every_version() {
          FROM forecasts ORDER BY fit_id, target, site, year",
     );
     assert_eq!(new_forecasts, old_forecasts, "forecasts keep their numbers");
+    // Schema version 10 gave every row a key and its scale (all on the response scale).
+    assert_eq!(
+        net.sqlite3(
+            "SELECT COUNT(*), COUNT(DISTINCT forecast_id), SUM(scale = 'response') FROM forecasts"
+        ),
+        format!("{0}|{0}|{0}\n", old_forecasts.len())
+    );
     assert_eq!(
         net.scalar("SELECT COUNT(*) FROM forecasts WHERE last_observed_year IS NOT NULL")
             .int(),

@@ -17,6 +17,12 @@
 //!
 //! The predictive variance `E[v_d] + Var(m_d)` is split into shares by source: each
 //! unknown effect's variance, residual noise, and `Var(m_d)` as the estimation share.
+//!
+//! Threshold exceedance ([`exceedance`]): the probability that the value a row forecasts
+//! exceeds a threshold `t` (response scale) is the mixture's survival function at `g(t)`,
+//! `mean_d Phi((m_d - g(t)) / sqrt(v_d))` with `g` the transform — exact for the stored
+//! draws, no sampling. It is the probability of the true value, whatever detection limit
+//! a laboratory would report it against.
 
 use crate::normal::{inverse_normal, norm_cdf};
 use rayon::prelude::*;
@@ -148,6 +154,35 @@ impl std::fmt::Display for Transform {
     }
 }
 
+impl Transform {
+    /// `y` on the model scale: as given, or its natural log (`-inf` at 0, NaN below).
+    pub fn to_model(&self, y: f64) -> f64 {
+        match self {
+            Transform::None => y,
+            Transform::Log => y.ln(),
+        }
+    }
+}
+
+/// Which scale a published number is on: the response's own (in the series' unit), or the
+/// model's (after the transform; for `log`, natural-log units of the response).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Scale {
+    Response,
+    Model,
+}
+
+impl Scale {
+    /// The name used in the database (`scale` columns).
+    pub fn as_str(&self) -> &'static str {
+        match self {
+            Scale::Response => "response",
+            Scale::Model => "model",
+        }
+    }
+}
+
 /// Covariate values of a forecast (original units); `baseline` uses the network means.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Scenario {
@@ -198,6 +233,13 @@ pub struct ForecastRow {
     /// every such component was estimated from the data.
     #[serde(default)]
     pub prior_only: Vec<String>,
+}
+
+impl ForecastRow {
+    /// The scale of `mean`, `sd` and the quantiles of every row: the response's own (a
+    /// log series' quantiles are back-transformed). The shares are fractions of the
+    /// model-scale variance and have no unit.
+    pub const SCALE: Scale = Scale::Response;
 }
 
 const PROBS: [f64; 7] = [0.5, 0.25, 0.75, 0.1, 0.9, 0.025, 0.975];
@@ -303,6 +345,19 @@ impl Predictive {
     pub fn quantile(&self, p: f64) -> f64 {
         let sds: Vec<f64> = self.vars.iter().map(|v| v.sqrt()).collect();
         mixture_quantile(&self.means, &sds, p)
+    }
+
+    /// The mixture's survival function `P(Y > y)` at `y` (model scale): one minus
+    /// [`Predictive::cdf`], summed as upper tails so a small probability keeps its
+    /// relative accuracy.
+    pub fn survival(&self, y: f64) -> f64 {
+        let total: f64 = self
+            .means
+            .iter()
+            .zip(&self.vars)
+            .map(|(m, v)| norm_cdf((m - y) / v.sqrt()))
+            .sum();
+        total / self.means.len() as f64
     }
 }
 
@@ -633,9 +688,105 @@ pub fn forecast_to(
     rows
 }
 
+/// Whether a threshold can be asked of a series with `transform`: finite, and positive
+/// under `log` (no value of a log series lies at or below 0). The reason when it cannot.
+pub fn threshold_problem(transform: Transform, threshold: f64) -> Option<String> {
+    if !threshold.is_finite() {
+        return Some(format!("threshold {threshold} is not a finite number"));
+    }
+    if transform == Transform::Log && threshold <= 0.0 {
+        return Some(format!(
+            "threshold {threshold} is not positive; every value of a log-scale series is, \
+             so it would be exceeded with probability 1"
+        ));
+    }
+    None
+}
+
+/// The posterior predictive probability that the value each row forecasts exceeds each
+/// threshold (response scale): `out[i][k] = P(Y_i > thresholds[k])` for `rows[i]`, a
+/// row of [`forecast`]`(basis, transform, scenario)` (or a subset of them). Each row's
+/// predictive is rebuilt by [`predictive`] from its target, site and year, so the
+/// probability belongs to exactly the mixture the row's quantiles were solved from; it is
+/// that mixture's survival function at `g(threshold)`, computed exactly.
+pub fn exceedance(
+    basis: &ForecastBasis,
+    transform: Transform,
+    scenario: &Scenario,
+    rows: &[ForecastRow],
+    thresholds: &[f64],
+) -> Result<Vec<Vec<f64>>, crate::ModelError> {
+    let bad = |m: String| crate::ModelError::InvalidSettings(m);
+    if let Some(problem) = thresholds
+        .iter()
+        .find_map(|&t| threshold_problem(transform, t))
+    {
+        return Err(bad(problem));
+    }
+    let at: Vec<f64> = thresholds.iter().map(|&t| transform.to_model(t)).collect();
+    let sites: std::collections::HashMap<&str, usize> = basis
+        .site_labels
+        .iter()
+        .enumerate()
+        .map(|(i, s)| (s.as_str(), i))
+        .collect();
+    rows.par_iter()
+        .map(|row| {
+            let site = match (&row.site, row.target.new_site()) {
+                (None, true) => None,
+                (Some(label), false) => Some(*sites.get(label.as_str()).ok_or_else(|| {
+                    bad(format!(
+                        "forecast row site {label:?} is not a monitored site"
+                    ))
+                })?),
+                _ => {
+                    return Err(bad(format!(
+                        "forecast row of target {} with site {:?}",
+                        row.target.as_str(),
+                        row.site
+                    )))
+                }
+            };
+            let year = if row.target.new_year() {
+                None
+            } else {
+                Some(basis.year_labels.binary_search(&row.year).map_err(|_| {
+                    bad(format!(
+                        "forecast row year {} is not an observed year",
+                        row.year
+                    ))
+                })?)
+            };
+            // Under a trend the row sits at its own year on the line, as in `forecast_to`.
+            let covariates = if basis.trend_origin.is_some() {
+                at_year(basis, &scenario.covariates, row.year)
+            } else {
+                scenario.covariates.clone()
+            };
+            let comp = predictive(basis, site, year, &covariates)?;
+            Ok(at.iter().map(|&y| comp.survival(y)).collect())
+        })
+        .collect()
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// One component: the survival function is the normal upper tail, far into it; it
+    /// and the CDF sum to 1.
+    #[test]
+    fn survival_of_one_component_is_the_normal_upper_tail() {
+        let p = Predictive {
+            means: vec![1.0],
+            vars: vec![4.0],
+        };
+        // 1 - Phi(1) and 1 - Phi(10), from mpmath's `ncdf(-z)` at 30 digits (run offline:
+        // 0.158655253931457051414767454368, 7.6198530241605260659733432516e-24).
+        assert!((p.survival(3.0) - 0.158_655_253_931_457_05).abs() < 1e-15);
+        assert!((p.survival(21.0) / 7.619_853_024_160_526e-24 - 1.0).abs() < 1e-12);
+        assert!((p.survival(0.3) + p.cdf(0.3) - 1.0).abs() < 1e-15);
+    }
 
     /// A one-component mixture is a normal: its quantiles are the normal quantiles.
     #[test]

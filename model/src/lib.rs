@@ -54,8 +54,8 @@ pub use warm::{conflict_threshold, WarmPlan, CONFLICT_TAIL, REFIT_ESS_PER_COMPON
 mod forecast;
 pub mod simulate;
 pub use forecast::{
-    forecast, forecast_baseline, forecast_to, predictive, ForecastBasis, ForecastRow,
-    ForecastTarget, Predictive, Scenario, Transform,
+    exceedance, forecast, forecast_baseline, forecast_to, predictive, threshold_problem,
+    ForecastBasis, ForecastRow, ForecastTarget, Predictive, Scale, Scenario, Transform,
 };
 pub mod calibration;
 pub mod refits;

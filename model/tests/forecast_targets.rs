@@ -12,6 +12,11 @@
 //! fourth central moment); a quantile `q_p` through its CDF, the share of values at or
 //! below `q_p` within `5 sqrt(p (1 - p) / N)` of `p`; the shares within the relative
 //! error of the Monte Carlo variance. `N = n K = 200,000` values per row.
+//!
+//! Threshold exceedance (`exceedance`) against the same Monte Carlo values: the share of
+//! values above each threshold within `5 sqrt(p (1 - p) / N) + 5 / N` of the exact
+//! probability `p` (binomial error; the `5 / N` keeps a probability near 0 or 1 from
+//! asking for an exact zero).
 
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
@@ -258,6 +263,121 @@ fn check_rows_of(
             );
         }
     }
+}
+
+/// Thresholds for one row, response scale: at its own 10%, 50% and 90% quantiles (so
+/// each probability is away from 0 and 1 and well measured), and far in either tail.
+fn thresholds_for(row: &ForecastRow) -> Vec<f64> {
+    vec![
+        row.q025 - (row.q975 - row.q025).abs(),
+        row.q10,
+        row.q50,
+        row.q90,
+        row.q975 + (row.q975 - row.q025),
+    ]
+}
+
+/// Every row's exceedance probabilities against the share of its Monte Carlo values above
+/// each threshold; under `log` the thresholds of the lowest tail are kept positive.
+fn check_exceedance_of(
+    b: &ForecastBasis,
+    transform: Transform,
+    scenario: &Scenario,
+    x_of: impl Fn(&ForecastRow) -> f64,
+) {
+    let rows = forecast(b, transform, scenario);
+    let thresholds: Vec<Vec<f64>> = rows
+        .iter()
+        .map(|r| {
+            let mut t = thresholds_for(r);
+            if transform == Transform::Log {
+                t[0] = r.q025 / 4.0;
+            }
+            t
+        })
+        .collect();
+    let mut rng = ChaCha8Rng::seed_from_u64(11);
+    let n_vals = (N_DRAWS * K) as f64;
+    let mut checked = 0;
+    for (row, ts) in rows.iter().zip(&thresholds) {
+        let got = exceedance(b, transform, scenario, std::slice::from_ref(row), ts).unwrap();
+        assert_eq!(got.len(), 1);
+        let (model_scale, _, _) = monte_carlo(b, row, x_of(row), &mut rng);
+        for (&t, &p) in ts.iter().zip(&got[0]) {
+            let above = match transform {
+                Transform::None => model_scale.iter().filter(|&&v| v > t).count(),
+                Transform::Log => model_scale.iter().filter(|&&v| v.exp() > t).count(),
+            } as f64
+                / n_vals;
+            let tol = 5.0 * (p * (1.0 - p) / n_vals).sqrt() + 5.0 / n_vals;
+            assert!(
+                (above - p).abs() < tol,
+                "{} {:?} {} ({transform}): P(Y > {t}) = {p}, Monte Carlo {above} +- {tol}",
+                row.target.as_str(),
+                row.site,
+                row.year
+            );
+            checked += 1;
+        }
+        // Higher thresholds are exceeded less often.
+        assert!(got[0].windows(2).all(|w| w[0] >= w[1]), "{:?}", got[0]);
+        // The middle thresholds sit at the row's own quantiles: 0.9, 0.5, 0.1 exactly.
+        for (p, want) in got[0][1..4].iter().zip([0.9, 0.5, 0.1]) {
+            assert!((p - want).abs() < 1e-7, "{p} vs {want}");
+        }
+    }
+    assert_eq!(checked, rows.len() * 5);
+    // All rows at once give the same numbers as one by one.
+    let shared = [rows[0].q50, rows[rows.len() - 1].q90];
+    let all = exceedance(b, transform, scenario, &rows, &shared).unwrap();
+    for (row, probs) in rows.iter().zip(&all) {
+        let one = exceedance(b, transform, scenario, std::slice::from_ref(row), &shared).unwrap();
+        assert_eq!(&one[0], probs);
+    }
+}
+
+/// The exceedance probability of every target, on both scales and with a site-level
+/// covariate, equals a plain Monte Carlo over the same joint draws.
+#[test]
+fn exceedance_probabilities_equal_a_plain_monte_carlo_over_the_same_draws() {
+    let b = basis();
+    check_exceedance_of(&b, Transform::None, &Scenario::baseline(), |_| 10.0);
+    check_exceedance_of(&b, Transform::Log, &Scenario::baseline(), |_| 10.0);
+    let scenario = Scenario {
+        name: "x14".into(),
+        covariates: vec![Some(14.0)],
+    };
+    check_exceedance_of(&b, Transform::None, &scenario, |_| 14.0);
+    let sited = site_level_basis();
+    check_exceedance_of(&sited, Transform::Log, &Scenario::baseline(), |r| {
+        depth_of(&sited, r)
+    });
+}
+
+/// Thresholds a series cannot ask are refused; under `log`, no threshold at or below 0
+/// is accepted (it would be exceeded with probability 1).
+#[test]
+fn exceedance_refuses_thresholds_it_cannot_answer() {
+    let b = basis();
+    let rows = forecast_baseline(&b, Transform::Log);
+    for bad in [f64::NAN, f64::INFINITY, 0.0, -1.0] {
+        assert!(
+            exceedance(&b, Transform::Log, &Scenario::baseline(), &rows, &[bad]).is_err(),
+            "{bad}"
+        );
+    }
+    assert!(exceedance(&b, Transform::None, &Scenario::baseline(), &rows, &[-1.0]).is_ok());
+    // A row whose site the basis does not know is an error, not a guess.
+    let mut stranger = rows[0].clone();
+    stranger.site = Some("elsewhere".into());
+    assert!(exceedance(
+        &b,
+        Transform::Log,
+        &Scenario::baseline(),
+        &[stranger],
+        &[1.0]
+    )
+    .is_err());
 }
 
 #[test]

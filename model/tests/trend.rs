@@ -141,3 +141,27 @@ fn a_trend_needs_two_years() {
     }
     assert_eq!(b.build().unwrap_err(), ModelError::TrendNeedsYears);
 }
+
+/// Exceedance of a trend series' rows puts each row at its own year: the probability of
+/// exceeding a row's own median is one half for every year of the horizon.
+#[test]
+fn exceedance_follows_the_trend_line() {
+    let (data, _) = trending();
+    let post = fit(&data);
+    let basis = post.forecast_basis(usize::MAX);
+    let rows = forecast_to(&basis, Transform::None, &Scenario::baseline(), 4);
+    for row in rows
+        .iter()
+        .filter(|r| r.target == ForecastTarget::NewSiteNewYear)
+    {
+        let p = exceedance(
+            &basis,
+            Transform::None,
+            &Scenario::baseline(),
+            std::slice::from_ref(row),
+            &[row.q50],
+        )
+        .unwrap();
+        assert!((p[0][0] - 0.5).abs() < 1e-6, "{}: {}", row.year, p[0][0]);
+    }
+}

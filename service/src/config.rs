@@ -134,6 +134,11 @@ pub struct SeriesConfig {
     /// Sites the report draws one small chart each for (observed values and next year's
     /// forecast band); empty: the report picks the most extreme sites by site effect.
     pub report_sites: Vec<String>,
+    /// The response's unit (`series.unit`), as written: labels, never converts.
+    pub unit: Option<String>,
+    /// Response-scale thresholds (`series.thresholds`, in `unit`), ascending: every
+    /// forecast row gets the probability of exceeding each.
+    pub thresholds: Vec<f64>,
 }
 
 /// What defines a series' model: the fields a version is made under. Its canonical
@@ -150,6 +155,10 @@ pub struct ModelDefinition {
     /// `None` without a trend; the origin (`None` inside: the first year of data).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub trend: Option<TrendDefinition>,
+    /// The response's unit label: published with every number, so a new label makes a
+    /// new version (it converts nothing).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub unit: Option<String>,
     pub priors: Priors,
     pub gate: Gate,
 }
@@ -193,6 +202,7 @@ impl ModelDefinition {
         check("groups", self.groups != earlier.groups);
         check("censoring", self.censoring != earlier.censoring);
         check("trend", self.trend != earlier.trend);
+        check("unit", self.unit != earlier.unit);
         check("priors", self.priors != earlier.priors);
         check("gate", self.gate != earlier.gate);
         out
@@ -206,7 +216,7 @@ impl ModelDefinition {
         let blocking: Vec<&str> = self
             .changes_from(earlier)
             .into_iter()
-            .filter(|c| !matches!(*c, "priors" | "gate"))
+            .filter(|c| !matches!(*c, "priors" | "gate" | "unit"))
             .collect();
         if blocking.is_empty() {
             Ok(())
@@ -231,6 +241,7 @@ impl SeriesConfig {
             trend: self.trend.then_some(TrendDefinition {
                 origin: self.trend_origin,
             }),
+            unit: self.unit.clone(),
             priors: self.priors.clone(),
             gate: Gate {
                 max_rhat: self.sampler.max_rhat,
@@ -475,6 +486,9 @@ struct RawSeries {
     known_site_max_gap: Option<u32>,
     #[serde(default)]
     report_sites: Vec<String>,
+    unit: Option<String>,
+    #[serde(default)]
+    thresholds: Vec<f64>,
 }
 
 fn default_transform() -> String {
@@ -906,6 +920,10 @@ fn check_series(i: usize, rs: RawSeries, seen: &mut SeenSoFar) -> Result<SeriesC
         }
     }
     check_report_sites(&rs.report_sites, &at("report_sites"))?;
+    if let Some(unit) = &rs.unit {
+        check_unit(unit, &at("unit"))?;
+    }
+    let thresholds = check_thresholds(&rs.thresholds, transform, &at("thresholds"))?;
     check_priors(&rs.priors, &at("priors"))?;
     check_sampler(&rs.sampler, &at("sampler"))?;
     Ok(SeriesConfig {
@@ -927,6 +945,8 @@ fn check_series(i: usize, rs: RawSeries, seen: &mut SeenSoFar) -> Result<SeriesC
         sampler: rs.sampler,
         known_site_max_gap: rs.known_site_max_gap,
         report_sites: rs.report_sites,
+        unit: rs.unit,
+        thresholds,
     })
 }
 
@@ -1094,6 +1114,64 @@ fn check_report_sites(sites: &[String], key: &str) -> Result<(), Problem> {
         ));
     }
     Ok(())
+}
+
+/// At most this many thresholds per series (each adds a probability to every forecast row).
+pub const MAX_THRESHOLDS: usize = 16;
+/// At most this many characters in a unit (`µg/L`, `mg/m³`, `NTU`, `m`).
+pub const MAX_UNIT_CHARS: usize = 32;
+
+/// A unit: a short label shown as written, so no empty text and no control characters.
+fn check_unit(unit: &str, key: &str) -> Result<(), Problem> {
+    if unit.trim().is_empty() {
+        return Err((
+            key.into(),
+            "must not be empty (leave the key out when the unit is not known)".into(),
+        ));
+    }
+    if unit.chars().any(char::is_control) {
+        return Err((key.into(), "must not hold control characters".into()));
+    }
+    if unit.chars().count() > MAX_UNIT_CHARS {
+        return Err((
+            key.into(),
+            format!(
+                "is {} characters long; at most {MAX_UNIT_CHARS} (it labels axes and columns)",
+                unit.chars().count()
+            ),
+        ));
+    }
+    Ok(())
+}
+
+/// Thresholds: finite, positive under `log`, distinct, at most [`MAX_THRESHOLDS`];
+/// returned ascending.
+fn check_thresholds(
+    thresholds: &[f64],
+    transform: Transform,
+    key: &str,
+) -> Result<Vec<f64>, Problem> {
+    if thresholds.len() > MAX_THRESHOLDS {
+        return Err((
+            key.into(),
+            format!(
+                "names {} thresholds; at most {MAX_THRESHOLDS}",
+                thresholds.len()
+            ),
+        ));
+    }
+    if let Some(problem) = thresholds
+        .iter()
+        .find_map(|&t| tidemark_model::threshold_problem(transform, t))
+    {
+        return Err((key.into(), problem));
+    }
+    let mut sorted = thresholds.to_vec();
+    sorted.sort_by(f64::total_cmp);
+    if let Some(w) = sorted.windows(2).find(|w| w[0] == w[1]) {
+        return Err((key.into(), format!("threshold {} is named twice", w[0])));
+    }
+    Ok(sorted)
 }
 
 /// Folders the inbox must never be: ingest moves every file it finds there.
@@ -1323,6 +1401,62 @@ draws = 500
     #[test]
     fn at_least_one_series() {
         assert!(message("[store]\ndatabase = \"x.db\"\n").contains("series"));
+    }
+
+    #[test]
+    fn units_and_thresholds_are_optional_and_checked() {
+        let s = &parse(GOOD).unwrap().series[0];
+        assert_eq!((s.unit.as_deref(), s.thresholds.len()), (None, 0));
+        let with = |keys: &str| {
+            GOOD.replace(
+                "groups = [\"crew\"]",
+                &format!("groups = [\"crew\"]\n{keys}"),
+            )
+        };
+        let c = parse(&with("unit = \"µg/L\"\nthresholds = [25.0, 10, 2.5]")).unwrap();
+        assert_eq!(c.series[0].unit.as_deref(), Some("µg/L"));
+        assert_eq!(c.series[0].thresholds, [2.5, 10.0, 25.0]);
+        for (keys, key, words) in [
+            ("unit = \" \"", "series[0].unit", "must not be empty"),
+            (
+                "unit = \"mg\\u0007L\"",
+                "series[0].unit",
+                "control characters",
+            ),
+            (
+                "thresholds = [10.0, 10]",
+                "series[0].thresholds",
+                "named twice",
+            ),
+            ("thresholds = [0.0]", "series[0].thresholds", "not positive"),
+            (
+                "thresholds = [-1.0]",
+                "series[0].thresholds",
+                "not positive",
+            ),
+            (
+                "thresholds = [nan]",
+                "series[0].thresholds",
+                "not a finite number",
+            ),
+            (
+                "thresholds = [inf]",
+                "series[0].thresholds",
+                "not a finite number",
+            ),
+            ("thresholds = \"10\"", "series[0].thresholds", "sequence"),
+        ] {
+            let m = message(&with(keys));
+            assert!(m.contains(key) && m.contains(words), "{keys}: {m}");
+        }
+        let long = "x".repeat(MAX_UNIT_CHARS + 1);
+        assert!(message(&with(&format!("unit = \"{long}\""))).contains("at most 32"));
+        let many: Vec<String> = (1..=MAX_THRESHOLDS + 1).map(|i| i.to_string()).collect();
+        let m = message(&with(&format!("thresholds = [{}]", many.join(", "))));
+        assert!(m.contains("at most 16"), "{m}");
+        // Under `none`, zero and negative thresholds are values like any other.
+        let none = with("thresholds = [-1.0, 0.0]").replace("transform = \"log\"", "");
+        assert_eq!(parse(&none).unwrap().series[0].thresholds, [-1.0, 0.0]);
     }
 
     #[test]

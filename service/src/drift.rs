@@ -41,6 +41,8 @@ pub struct VersionDrift {
     pub version: i64,
     pub fit_id: i64,
     pub data_through_year: Option<i64>,
+    /// The response's unit the version was fitted with (`fits.unit`).
+    pub unit: Option<String>,
     pub components: Vec<ComponentDrift>,
 }
 
@@ -50,6 +52,9 @@ pub struct VersionDrift {
 pub struct ComponentDrift {
     pub kind: String,
     pub term: String,
+    /// `model` for a standard deviation (after the transform); `None` for a share, a
+    /// fraction without a scale.
+    pub scale: Option<&'static str>,
     pub q05: Option<f64>,
     pub q50: Option<f64>,
     pub q95: Option<f64>,
@@ -133,6 +138,7 @@ pub fn build(rows: &[ComponentRow]) -> DriftReport {
                 version: row.version,
                 fit_id: row.fit_id,
                 data_through_year: row.data_through_year,
+                unit: row.unit.clone(),
                 components: Vec::new(),
             });
         }
@@ -156,6 +162,7 @@ pub fn build(rows: &[ComponentRow]) -> DriftReport {
         s.versions[n - 1].components.push(ComponentDrift {
             kind: row.kind.clone(),
             term: row.term.clone(),
+            scale: (row.kind == "sd").then(|| tidemark_model::Scale::Model.as_str()),
             q05: row.q05,
             q50: row.q50,
             q95: row.q95,
@@ -228,11 +235,19 @@ pub fn render_text(report: &DriftReport) -> String {
             }
         }
         quantities.sort_by_key(|(k, t)| (kind_rank(k), term_rank(t)));
+        // The unit of the newest version shown that recorded one.
+        let unit = s
+            .versions
+            .iter()
+            .rev()
+            .find_map(|v| v.unit.as_deref())
+            .map(|u| format!("; response in {}", crate::visible::visible(u)))
+            .unwrap_or_default();
         for (kind, term) in quantities {
             let scale = if kind == "sd" {
-                "standard deviation, model scale"
+                format!("standard deviation, model scale{unit}")
             } else {
-                "share of the variance, 0 to 1"
+                "share of the variance, 0 to 1".to_string()
             };
             let _ = writeln!(out, "  {kind} {term} ({scale})");
             let _ = writeln!(
@@ -284,6 +299,7 @@ mod tests {
             q05: Some(q.0),
             q50: Some(q.1),
             q95: Some(q.2),
+            unit: None,
         }
     }
 

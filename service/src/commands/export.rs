@@ -236,6 +236,9 @@ async fn build_from(store: &crate::store::Store, args: &ExportArgs) -> anyhow::R
                 ("share_residual", OptReal(col(&r, |x| x.share_residual))),
                 ("share_estimation", OptReal(col(&r, |x| x.share_estimation))),
                 ("prior_only", OptText(col(&r, |x| x.prior_only.clone()))),
+                ("forecast_id", Int(col(&r, |x| x.forecast_id))),
+                ("unit", OptText(col(&r, |x| x.unit.clone()))),
+                ("scale", Text(col(&r, |x| x.scale.clone()))),
             ]
         }
         ExportWhat::Posterior => {
@@ -276,6 +279,8 @@ async fn build_from(store: &crate::store::Store, args: &ExportArgs) -> anyhow::R
                 ("previous_q50", OptReal(col(&r, |x| x.previous_q50))),
                 ("change", OptReal(col(&r, |x| x.change))),
                 ("flagged", Bool(col(&r, |x| x.flagged))),
+                ("unit", OptText(col(&r, |x| x.unit.clone()))),
+                ("scale", OptText(col(&r, |x| x.scale.clone()))),
             ]
         }
         ExportWhat::Draws => {

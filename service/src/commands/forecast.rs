@@ -73,12 +73,33 @@ async fn rewrite(
             .as_deref()
             .and_then(Transform::parse)
             .unwrap_or(s.transform);
-        let forecasts = crate::pipeline::forecasts::baseline(&decoded.basis, transform, s);
+        // Thresholds are in the config's unit: they can be asked of a version fitted to
+        // values in that unit (or in one it did not record), not to values in another.
+        if let (Some(fitted), Some(now)) = (&latest.unit, &s.unit) {
+            if fitted != now && !s.thresholds.is_empty() {
+                anyhow::bail!(
+                    "series {}: version {} (fit {}) was fitted to values in {fitted:?}, but the \
+                     config's thresholds are in {now:?}; refit the series after changing its unit",
+                    s.name,
+                    latest.version,
+                    latest.fit_id
+                );
+            }
+        }
+        let forecasts = crate::pipeline::forecasts::baseline(&decoded.basis, transform, s)
+            .with_context(|| format!("series {}: fit {}", s.name, latest.fit_id))?;
         store
             .replace_forecasts(latest.fit_id, forecasts.set(), Some(fence))
             .await?;
+        let exceedance = match forecasts.thresholds.len() {
+            0 => String::new(),
+            n => format!(
+                " with {} exceedance probabilities ({n} threshold(s))",
+                forecasts.rows.len() * n
+            ),
+        };
         crate::say!(
-            "{}: wrote {} forecasts for version {} (fit {})",
+            "{}: wrote {} forecasts{exceedance} for version {} (fit {})",
             s.name,
             forecasts.rows.len(),
             latest.version,

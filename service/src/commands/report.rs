@@ -19,6 +19,7 @@ pub async fn run(ctx: &Context, out: &Path, series: Option<String>) -> anyhow::R
             name: s.name.clone(),
             response: s.response.clone(),
             transform: s.transform.to_string(),
+            unit: s.unit.clone(),
             sites: s.report_sites.clone(),
         })
         .collect();

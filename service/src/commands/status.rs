@@ -239,6 +239,9 @@ fn fit_line(f: &FitSummary) -> String {
     if let Some(n) = f.n_obs {
         known.push(format!("{n} obs"));
     }
+    if let Some(u) = &f.unit {
+        known.push(format!("unit {}", visible(u)));
+    }
     let mut diag = Vec::new();
     if let Some(r) = f.max_rhat {
         diag.push(format!("max R-hat {r:.3}"));

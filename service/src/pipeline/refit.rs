@@ -372,6 +372,7 @@ fn new_fit(series: &SeriesConfig, watermark: i64, run_id: Option<i64>) -> NewFit
         draws: Some(series.sampler.draws as i64),
         definition_sha256: Some(series.definition_sha256()),
         definition_text: Some(series.definition().text()),
+        unit: series.unit.clone(),
         ..NewFit::default()
     }
 }
@@ -722,6 +723,7 @@ async fn publish(
         })
         .await?;
         let blob = blob?;
+        let forecasts = forecasts?;
         let mut summaries = post.summaries.clone();
         summaries.extend(trend_summaries(&post, transform));
         (summaries, Some(blob), forecasts)
@@ -733,14 +735,7 @@ async fn publish(
             .filter(|s| s.kind != SummaryKind::Effect)
             .cloned()
             .collect();
-        (
-            kept,
-            None,
-            super::forecasts::BaselineForecasts {
-                rows: Vec::new(),
-                scenarios: Vec::new(),
-            },
-        )
+        (kept, None, super::forecasts::BaselineForecasts::default())
     };
     fit.wall_seconds = Some(started.elapsed().as_secs_f64());
     crate::test_hold::at("publishing", &series.name).await;

@@ -25,6 +25,10 @@ pub const MAX_SITES_SHOWN: usize = 60;
 /// median of their site effect.
 pub const EXTREME_SITES_SHOWN: usize = 12;
 
+/// At most this many sites are listed in the exceedance table: those most likely to
+/// exceed the lowest threshold.
+pub const EXCEEDANCE_SITES_SHOWN: usize = 20;
+
 /// How many recent runs the history table lists.
 pub const RUNS_SHOWN: u32 = 50;
 
@@ -73,6 +77,8 @@ pub struct SeriesSection {
     /// `none` or `log`: the scale of forecast widths is the response's own.
     pub transform: String,
     pub response: String,
+    /// The response's unit: the served version's, else the config's.
+    pub unit: Option<String>,
     pub latest: Option<FitSummary>,
     /// The newest attempt when it is not the version served (rejected or failed).
     pub unserved_attempt: Option<FitSummary>,
@@ -89,6 +95,58 @@ pub struct SeriesSection {
     pub panels_named: bool,
     /// Sites named in the config with neither observations nor a forecast.
     pub unknown_sites: Vec<String>,
+    /// Next year's exceedance probabilities at monitored sites, when the latest version
+    /// has thresholds.
+    pub exceedance: Option<ExceedanceTable>,
+}
+
+/// The probabilities that next year's value at a monitored site exceeds each threshold
+/// (target `known_site_new_year`), for the sites most likely to exceed the lowest one.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ExceedanceTable {
+    /// Ascending, response scale.
+    pub thresholds: Vec<f64>,
+    /// `(site, year, probability per threshold)`, most likely to exceed the lowest
+    /// threshold first; at most [`EXCEEDANCE_SITES_SHOWN`].
+    pub rows: Vec<(String, i64, Vec<Option<f64>>)>,
+    /// How many monitored sites have such a row.
+    pub sites: usize,
+}
+
+/// The exceedance table from one target's rows (any order): one row per site, the sites
+/// most likely to exceed the lowest threshold first (ties by code); `None` without rows.
+pub fn exceedance_table(rows: &[crate::store::SiteExceedance]) -> Option<ExceedanceTable> {
+    let mut thresholds: Vec<f64> = rows.iter().map(|r| r.threshold).collect();
+    thresholds.sort_by(f64::total_cmp);
+    thresholds.dedup();
+    let mut cells: std::collections::BTreeMap<(&str, i64), Vec<Option<f64>>> =
+        std::collections::BTreeMap::new();
+    for r in rows {
+        let k = thresholds.iter().position(|&t| t == r.threshold)?;
+        cells
+            .entry((r.site.as_str(), r.year))
+            .or_insert_with(|| vec![None; thresholds.len()])[k] = r.probability;
+    }
+    let mut by_site: Vec<(String, i64, Vec<Option<f64>>)> = cells
+        .into_iter()
+        .map(|((site, year), p)| (site.to_string(), year, p))
+        .collect();
+    if by_site.is_empty() {
+        return None;
+    }
+    let first = |p: &[Option<f64>]| p.first().copied().flatten().unwrap_or(f64::NEG_INFINITY);
+    by_site.sort_by(|a, b| {
+        first(&b.2)
+            .total_cmp(&first(&a.2))
+            .then_with(|| a.0.cmp(&b.0))
+    });
+    let sites = by_site.len();
+    by_site.truncate(EXCEEDANCE_SITES_SHOWN);
+    Some(ExceedanceTable {
+        thresholds,
+        rows: by_site,
+        sites,
+    })
 }
 
 /// One site's observed values and next year's 80% forecast band.
@@ -107,6 +165,8 @@ pub struct ReportSeries {
     pub name: String,
     pub response: String,
     pub transform: String,
+    /// `series.unit` from the config (the served version's own unit comes first).
+    pub unit: Option<String>,
     /// `report_sites` from the config; empty: pick the most extreme sites.
     pub sites: Vec<String>,
 }
@@ -227,6 +287,7 @@ impl Report {
             name,
             response,
             transform,
+            unit,
             sites,
         } in series
         {
@@ -258,6 +319,14 @@ impl Report {
                     )
                 }
                 None => (Vec::new(), Vec::new(), Vec::new()),
+            };
+            let exceedance = match &latest {
+                Some(fit) => exceedance_table(
+                    &store
+                        .site_exceedance(fit.fit_id, "known_site_new_year")
+                        .await?,
+                ),
+                None => None,
             };
             let mut panels = Vec::new();
             let mut unknown_sites = Vec::new();
@@ -292,6 +361,10 @@ impl Report {
                 name: name.clone(),
                 transform: transform.clone(),
                 response: response.clone(),
+                unit: latest
+                    .as_ref()
+                    .and_then(|l| l.unit.clone())
+                    .or_else(|| unit.clone()),
                 latest,
                 unserved_attempt,
                 drift,
@@ -301,6 +374,7 @@ impl Report {
                 panels,
                 panels_named: !sites.is_empty(),
                 unknown_sites,
+                exceedance,
             });
         }
         Ok(Report {
@@ -450,6 +524,40 @@ mod tests {
             vec![(0, 2, 3), (3, 3, 1), (4, 4, 1), (5, 5, 1)]
         );
         assert!(collapse_runs(&[]).is_empty());
+    }
+
+    #[test]
+    fn the_exceedance_table_lists_the_sites_most_likely_to_exceed_first() {
+        use crate::store::SiteExceedance;
+        let row = |site: &str, t: f64, p: f64| SiteExceedance {
+            site: site.into(),
+            year: 2027,
+            threshold: t,
+            probability: Some(p),
+        };
+        let mut rows = vec![
+            row("B", 25.0, 0.1),
+            row("A", 10.0, 0.4),
+            row("B", 10.0, 0.7),
+            row("A", 25.0, 0.05),
+            row("C", 10.0, 0.4),
+            row("C", 25.0, 0.2),
+        ];
+        for i in 0..30 {
+            rows.push(row(&format!("Z{i:02}"), 10.0, 0.01));
+            rows.push(row(&format!("Z{i:02}"), 25.0, 0.001));
+        }
+        let t = exceedance_table(&rows).unwrap();
+        assert_eq!(t.thresholds, [10.0, 25.0]);
+        assert_eq!((t.sites, t.rows.len()), (33, EXCEEDANCE_SITES_SHOWN));
+        let head: Vec<&str> = t.rows.iter().take(3).map(|r| r.0.as_str()).collect();
+        assert_eq!(
+            head,
+            ["B", "A", "C"],
+            "by the lowest threshold, ties by code"
+        );
+        assert_eq!(t.rows[0].2, [Some(0.7), Some(0.1)]);
+        assert_eq!(exceedance_table(&[]), None);
     }
 
     #[test]

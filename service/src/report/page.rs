@@ -94,16 +94,28 @@ fn section(out: &mut String, s: &SeriesSection) -> Result<(), ReportError> {
     };
     let _ = writeln!(
         out,
-        "<p class=\"meta\">Response <code>{}</code> (transform {}). Serving {}.</p>",
+        "<p class=\"meta\">Response <code>{}</code> (transform {}{}). Serving {}.</p>",
         esc(&s.response),
         esc(&s.transform),
+        s.unit
+            .as_deref()
+            .map(|u| format!(", unit {}", esc(u)))
+            .unwrap_or_default(),
         esc(&fit_line(latest))
     );
 
     let log = s.transform == "log";
-    let units = format!("{} units", s.response);
+    // Axes name the unit when the series has one, else the response column.
+    let units = match &s.unit {
+        Some(u) => u.clone(),
+        None => format!("{} units", s.response),
+    };
     let sd_axis = if log {
-        format!("sd (model scale: natural log of {}; log axis)", s.response)
+        let of = match &s.unit {
+            Some(u) => format!("{} in {u}", s.response),
+            None => s.response.clone(),
+        };
+        format!("sd (model scale: natural log of {of}; log axis)")
     } else {
         format!("sd (model scale = response scale, {units}; log axis)")
     };
@@ -283,8 +295,68 @@ fn section(out: &mut String, s: &SeriesSection) -> Result<(), ReportError> {
             );
         }
     }
+    if let Some(table) = &s.exceedance {
+        exceedance_section(out, table, &units);
+    }
     let _ = writeln!(out, "</section>");
     Ok(())
+}
+
+/// A probability for the table: three decimals, the extremes as bounds (a model's 0 or 1
+/// is never a certainty).
+fn probability(p: Option<f64>) -> String {
+    match p {
+        None => "–".to_string(),
+        Some(p) if p < 0.0005 => "&lt;0.001".to_string(),
+        Some(p) if p > 0.9995 => "&gt;0.999".to_string(),
+        Some(p) => format!("{p:.3}"),
+    }
+}
+
+/// (e) Next year's exceedance probabilities at monitored sites, with the caution.
+fn exceedance_section(out: &mut String, t: &super::ExceedanceTable, units: &str) {
+    let shown = if t.rows.len() < t.sites {
+        format!(
+            "the {} of {} monitored sites most likely to exceed {} (all of them are in the \
+             <code>latest_exceedance</code> view)",
+            t.rows.len(),
+            t.sites,
+            esc(&format!("{} {units}", t.thresholds[0]))
+        )
+    } else {
+        format!("every monitored site ({})", t.sites)
+    };
+    let _ = writeln!(
+        out,
+        "<h3>Probability of exceeding the thresholds next year</h3>\n<p>For {shown}: the \
+         posterior predictive probability that next year's value at the site (target \
+         <code>known_site_new_year</code>) exceeds each of the series' thresholds ({}, \
+         response scale). It is the probability of the true value, computed from the \
+         model whatever detection limit a laboratory would report it against.</p>\n\
+         <div class=\"scroll\"><table>\n<tr><th>site</th><th>year</th>{}</tr>",
+        esc(units),
+        t.thresholds
+            .iter()
+            .map(|th| format!("<th>P(&gt; {})</th>", esc(&th.to_string())))
+            .collect::<String>()
+    );
+    for (site, year, probs) in &t.rows {
+        let _ = writeln!(
+            out,
+            "<tr><td>{}</td><td class=\"num\">{year}</td>{}</tr>",
+            esc(site),
+            probs
+                .iter()
+                .map(|&p| format!("<td class=\"num\">{}</td>", probability(p)))
+                .collect::<String>()
+        );
+    }
+    let _ = writeln!(
+        out,
+        "</table></div>\n<p class=\"caution\"><b>Caution.</b> {} A probability here is \
+         an estimate for one future value at the site, not a measurement.</p>",
+        esc(CAUTION)
+    );
 }
 
 fn run_history(out: &mut String, r: &Report) {

@@ -18,6 +18,8 @@ pub struct ComponentRow {
     pub q05: Option<f64>,
     pub q50: Option<f64>,
     pub q95: Option<f64>,
+    /// The version's response unit (`fits.unit`).
+    pub unit: Option<String>,
 }
 
 impl Store {
@@ -31,7 +33,7 @@ impl Store {
         // flags itself, and a test checks the two computations agree.
         sqlx::query_as(
             "SELECT f.series, f.version, f.fit_id, f.data_through_year, p.kind, p.term,
-                    p.q05, p.q50, p.q95
+                    p.q05, p.q50, p.q95, f.unit
              FROM fits f
              JOIN posterior_summary p ON p.fit_id = f.fit_id AND p.kind IN ('sd', 'share')
              WHERE f.status = 'published' AND (?1 IS NULL OR f.series = ?1)

@@ -31,6 +31,9 @@ pub struct ForecastExportRow {
     pub share_residual: Option<f64>,
     pub share_estimation: Option<f64>,
     pub prior_only: Option<String>,
+    pub forecast_id: i64,
+    pub unit: Option<String>,
+    pub scale: String,
 }
 
 /// One `posterior_summary` row of a series' latest published version.
@@ -68,6 +71,8 @@ pub struct DriftExportRow {
     pub previous_q50: Option<f64>,
     pub change: Option<f64>,
     pub flagged: bool,
+    pub unit: Option<String>,
+    pub scale: Option<String>,
 }
 
 /// The stored draws file of one published version.
@@ -90,7 +95,7 @@ impl Store {
             "SELECT series, fit_id, target, site, year, scenario, scenario_covariates,
                     last_observed_year, mean, sd, q025, q10, q25, q50, q75, q90, q975,
                     share_site, share_year, share_groups, share_residual, share_estimation,
-                    prior_only
+                    prior_only, forecast_id, unit, scale
              FROM latest_forecasts
              WHERE (?1 IS NULL OR series = ?1) AND (?2 IS NULL OR target = ?2)
              ORDER BY series, target, site, year, scenario",
@@ -129,7 +134,7 @@ impl Store {
     ) -> Result<Vec<DriftExportRow>, StoreError> {
         sqlx::query_as(
             "SELECT series, version, kind, term, q05, q50, q95, previous_q50, change,
-                    flagged
+                    flagged, unit, scale
              FROM variance_drift
              WHERE ?1 IS NULL OR series = ?1
              ORDER BY series, version, kind, term",

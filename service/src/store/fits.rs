@@ -1,5 +1,5 @@
-//! Writing fits: a version (fit row, summaries, draws, forecasts) in one transaction;
-//! rewriting the forecasts of the latest version.
+//! Writing fits: a version (fit row, summaries, draws, forecasts with their exceedance
+//! probabilities) in one transaction; rewriting the forecasts of the latest version.
 //!
 //! Invariant: everything a version consists of becomes visible in one transaction, or not
 //! at all (`tests/e2e_pipeline.rs`). That transaction is fenced: it writes only while the
@@ -45,6 +45,8 @@ pub struct NewFit {
     pub definition_sha256: Option<String>,
     /// Canonical text of that definition.
     pub definition_text: Option<String>,
+    /// The response's unit (`series.unit`).
+    pub unit: Option<String>,
 }
 
 /// What writing a fit is checked against, inside its transaction.
@@ -89,6 +91,7 @@ pub struct PublishedFit {
     pub transform: Option<String>,
     pub definition_sha256: Option<String>,
     pub definition_text: Option<String>,
+    pub unit: Option<String>,
 }
 
 /// The latest fit attempt of a series (any status): what the next refit compares with.
@@ -140,11 +143,15 @@ pub struct ScenarioValue {
     pub value: f64,
 }
 
-/// The forecasts of one version: its rows and the covariate values of their scenarios.
+/// The forecasts of one version: its rows, the covariate values of their scenarios, and
+/// each row's probability of exceeding each threshold (`exceedance[i][k]` for `rows[i]`
+/// and `thresholds[k]`; empty without thresholds).
 #[derive(Debug, Clone, Copy, Default)]
 pub struct ForecastSet<'a> {
     pub rows: &'a [ForecastRow],
     pub scenarios: &'a [ScenarioValue],
+    pub thresholds: &'a [f64],
+    pub exceedance: &'a [Vec<f64>],
 }
 
 async fn insert_forecasts(
@@ -163,14 +170,25 @@ async fn insert_forecasts(
         .execute(&mut **tx)
         .await?;
     }
-    for chunk in set.rows.chunks(CHUNK) {
+    // The rows' keys are chosen here, inside the writing transaction, so each exceedance
+    // row can name its forecast row (a multi-row RETURNING has no guaranteed order). Past
+    // the largest id ever handed out: `forecasts` is AUTOINCREMENT, ids are never reused.
+    let first_id: i64 = sqlx::query_scalar(
+        "SELECT MAX(COALESCE((SELECT seq FROM sqlite_sequence WHERE name = 'forecasts'), 0),
+                    COALESCE((SELECT MAX(forecast_id) FROM forecasts), 0)) + 1",
+    )
+    .fetch_one(&mut **tx)
+    .await?;
+    let ids: Vec<i64> = (first_id..).take(set.rows.len()).collect();
+    for (chunk, chunk_ids) in set.rows.chunks(CHUNK).zip(ids.chunks(CHUNK)) {
         let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
-            "INSERT INTO forecasts (fit_id, target, site, year, scenario, last_observed_year, mean, sd, \
+            "INSERT INTO forecasts (forecast_id, fit_id, target, site, year, scenario, last_observed_year, mean, sd, \
              q025, q10, q25, q50, q75, q90, q975, \
-             share_site, share_year, share_groups, share_residual, share_estimation, prior_only) ",
+             share_site, share_year, share_groups, share_residual, share_estimation, prior_only, scale) ",
         );
-        q.push_values(chunk, |mut b, f| {
-            b.push_bind(fit_id)
+        q.push_values(chunk.iter().zip(chunk_ids), |mut b, (f, id)| {
+            b.push_bind(id)
+                .push_bind(fit_id)
                 .push_bind(f.target.as_str())
                 .push_bind(&f.site)
                 .push_bind(f.year)
@@ -190,7 +208,27 @@ async fn insert_forecasts(
                 .push_bind(finite(f.share_groups))
                 .push_bind(finite(f.share_residual))
                 .push_bind(finite(f.share_estimation))
-                .push_bind((!f.prior_only.is_empty()).then(|| f.prior_only.join(",")));
+                .push_bind((!f.prior_only.is_empty()).then(|| f.prior_only.join(",")))
+                .push_bind(ForecastRow::SCALE.as_str());
+        });
+        q.build().execute(&mut **tx).await?;
+    }
+    let exceedance: Vec<(i64, f64, f64)> = ids
+        .iter()
+        .zip(set.exceedance)
+        .flat_map(|(&id, probs)| {
+            set.thresholds
+                .iter()
+                .zip(probs)
+                .map(move |(&t, &p)| (id, t, p))
+        })
+        .collect();
+    for chunk in exceedance.chunks(CHUNK) {
+        let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
+            "INSERT INTO forecast_exceedance (forecast_id, threshold, probability) ",
+        );
+        q.push_values(chunk, |mut b, &(id, t, p)| {
+            b.push_bind(id).push_bind(t).push_bind(finite(p));
         });
         q.build().execute(&mut **tx).await?;
     }
@@ -249,9 +287,9 @@ impl Store {
                 "INSERT INTO fits (series, version, status, created_at, data_through_year, watermark, n_obs, n_sites, n_years,
                                    warm_start_from, chains, draws, warmup, wall_seconds, max_rhat, min_ess_bulk, min_ess_tail,
                                    seed, message, run_id, response, transform, priors_json, diagnostics_json, acceptance_rate,
-                                   lease_generation, definition_sha256, n_censored, definition_text)
+                                   lease_generation, definition_sha256, n_censored, definition_text, unit)
                  VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20, ?21, ?22, ?23, ?24, ?25,
-                         ?26, ?27, ?28, ?29)
+                         ?26, ?27, ?28, ?29, ?30)
                  RETURNING fit_id",
             )
             .bind(&fit.series)
@@ -283,6 +321,7 @@ impl Store {
             .bind(&fit.definition_sha256)
             .bind(fit.n_censored)
             .bind(&fit.definition_text)
+            .bind(&fit.unit)
             .fetch_one(&mut *tx)
             .await?;
             insert_summaries(&mut tx, fit_id, summaries).await?;
@@ -352,7 +391,7 @@ impl Store {
     /// The latest published version of `series`, if any.
     pub async fn serving_fit(&self, series: &str) -> Result<Option<PublishedFit>, StoreError> {
         sqlx::query_as(
-            "SELECT fit_id, version, watermark, transform, definition_sha256, definition_text FROM fits
+            "SELECT fit_id, version, watermark, transform, definition_sha256, definition_text, unit FROM fits
              WHERE series = ?1 AND status = 'published' ORDER BY version DESC LIMIT 1",
         )
         .bind(series)
@@ -395,6 +434,14 @@ impl Store {
                 Ok(tx) => tx,
                 Err(holder) => return Ok(Err(holder)),
             };
+            // Exceedance rows first: they refer to the forecast rows.
+            sqlx::query(
+                "DELETE FROM forecast_exceedance
+                 WHERE forecast_id IN (SELECT forecast_id FROM forecasts WHERE fit_id = ?1)",
+            )
+            .bind(fit_id)
+            .execute(&mut *tx)
+            .await?;
             for table in ["forecasts", "forecast_scenarios"] {
                 sqlx::query(&format!("DELETE FROM {table} WHERE fit_id = ?1"))
                     .bind(fit_id)

@@ -36,7 +36,9 @@ pub use fits::{
 };
 pub use ingest::{BatchFile, BatchOutcome, BatchRecord};
 pub use lease::{Fence, LeaseAttempt, LeaseClaim, LeaseHolder};
-pub use report::{ForecastBand, ForecastInterval, RunHistoryEntry, RunSeriesOutcome, SiteEffect};
+pub use report::{
+    ForecastBand, ForecastInterval, RunHistoryEntry, RunSeriesOutcome, SiteEffect, SiteExceedance,
+};
 pub use retention::{PruneRecord, PrunedDraws};
 pub use runs::RunOrigin;
 pub use series::{SeriesRow, StoredValue};

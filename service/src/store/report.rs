@@ -1,5 +1,6 @@
-//! Reads behind `tidemark report`: the latest version's forecast interval widths and site
-//! effects, and the run history with each run's per-series outcomes.
+//! Reads behind `tidemark report`: the latest version's forecast interval widths, site
+//! effects and exceedance probabilities, and the run history with each run's per-series
+//! outcomes.
 
 use serde::Serialize;
 
@@ -34,6 +35,15 @@ pub struct ForecastBand {
     pub q10: Option<f64>,
     pub q50: Option<f64>,
     pub q90: Option<f64>,
+}
+
+/// The probability that one site's forecast of one target exceeds one threshold.
+#[derive(Debug, Clone, PartialEq, sqlx::FromRow)]
+pub struct SiteExceedance {
+    pub site: String,
+    pub year: i64,
+    pub threshold: f64,
+    pub probability: Option<f64>,
 }
 
 /// What one run did for one series (a `run_series` row).
@@ -88,6 +98,27 @@ impl Store {
              WHERE fit_id = ?1 AND target = ?2 AND site IS NOT NULL
                AND (scenario IS NULL OR scenario = 'baseline')
              ORDER BY site, year",
+        )
+        .bind(fit_id)
+        .bind(target)
+        .fetch_all(&self.pool)
+        .await
+        .map_err(|e| self.sql(e))
+    }
+
+    /// The exceedance probabilities of the per-site rows of `target` in the forecasts of
+    /// `fit_id` (the baseline scenario), by site and threshold.
+    pub async fn site_exceedance(
+        &self,
+        fit_id: i64,
+        target: &str,
+    ) -> Result<Vec<SiteExceedance>, StoreError> {
+        sqlx::query_as(
+            "SELECT f.site, f.year, e.threshold, e.probability
+             FROM forecasts f JOIN forecast_exceedance e ON e.forecast_id = f.forecast_id
+             WHERE f.fit_id = ?1 AND f.target = ?2 AND f.site IS NOT NULL
+               AND (f.scenario IS NULL OR f.scenario = 'baseline')
+             ORDER BY f.site, f.year, e.threshold",
         )
         .bind(fit_id)
         .bind(target)

@@ -58,12 +58,14 @@ pub struct FitSummary {
     /// The canonical text itself stays in the database (`fits.definition_text`).
     #[serde(skip)]
     pub definition_text: Option<String>,
+    /// The response's unit the fit was made with (`fits.unit`).
+    pub unit: Option<String>,
 }
 
 const FIT_COLUMNS: &str =
     "fit_id, series, version, status, created_at, data_through_year, watermark,
     n_obs, n_sites, n_years, warm_start_from, chains, draws, warmup, wall_seconds, max_rhat,
-    min_ess_bulk, min_ess_tail, message, n_censored, definition_sha256, definition_text";
+    min_ess_bulk, min_ess_tail, message, n_censored, definition_sha256, definition_text, unit";
 
 impl Store {
     /// The `limit` most recent runs, newest first.
