@@ -271,11 +271,15 @@ fn mix(mut z: u64) -> u64 {
     z ^ (z >> 31)
 }
 
+/// "remarks" in ASCII: keeps the remark hash apart from anything else derived from the seed.
+const REMARKS_STREAM: u64 = 0x0072_656d_6172_6b73;
+
 /// The `remarks` cell of a visit: empty about half the time, otherwise a field note or,
 /// now and then, just a number (the air temperature the crew jotted down).
 fn remark(seed: u64, season: i32, lake: usize, visit: u32) -> String {
-    let h = mix(mix(mix(seed ^ 0x7265_6d61_726b_73) ^ season as u64)
-        ^ ((lake as u64) << 8 | u64::from(visit)));
+    let h =
+        mix(mix(mix(seed ^ REMARKS_STREAM) ^ season as u64)
+            ^ ((lake as u64) << 8 | u64::from(visit)));
     match h % 100 {
         0..=49 => String::new(),
         50..=84 => REMARK_TEXTS[(h >> 8) as usize % REMARK_TEXTS.len()].to_string(),
