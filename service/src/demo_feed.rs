@@ -1007,7 +1007,7 @@ fn censoring_md(p: &Planter, censored: &[CensoredCell]) -> String {
         .collect();
     md.push_str(&format!(
         "\nCrews {}. Each censored cell is listed with its generated value in \
-         `truth/censored.csv` (a re-sent row appears once per line).\n",
+         `truth/censored.csv`, once for each line it is on (a re-sent row is on two).\n",
         habits.join("; ")
     ));
     md
