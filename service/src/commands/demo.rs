@@ -215,8 +215,8 @@ pub async fn run(out: Option<PathBuf>) -> anyhow::Result<()> {
     println!(
         "\nobs: values in the season's fit; cens: how many of them are censored, entered in the fit as the\n\
          probability of lying beyond their limit (no number is substituted): chlorophyll below the\n\
-         laboratory's reporting limit (written {limits}), Secchi depth at a shallow lake\n\
-         where the disk lay on the bottom (the lake's depth written, flagged in secchi_flag).\n\
+         laboratory's reporting limit (written {limits}), and Secchi depth\n\
+         at a shallow lake where the disk lay on the bottom (the lake's depth, flagged in secchi_flag).\n\
          sd: posterior median of each standard deviation on the model scale (chlorophyll: natural log\n\
          of µg/L; Secchi: metres). Width: mean width of the 80% forecast interval (q10 to q90) in\n\
          response units (µg/L for chlorophyll, m for Secchi) for a monitored lake (mon) or a new lake\n\
