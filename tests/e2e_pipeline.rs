@@ -547,6 +547,153 @@ fn the_demo_publishes_a_version_per_season() {
         checked, 7,
         "residual, site and year of both series, and the crew"
     );
+
+    // The printout's `cens` column is each version's `fits.n_censored`, line for line.
+    let header = stdout
+        .lines()
+        .find(|l| l.starts_with("season"))
+        .expect("a table header");
+    let cols: Vec<&str> = header.split_whitespace().collect();
+    assert_eq!(
+        cols[..5],
+        ["season", "series", "ver", "obs", "cens"],
+        "{header}"
+    );
+    assert!(
+        stdout.contains("cens: how many of them are censored"),
+        "{stdout}"
+    );
+    let printed: Vec<String> = stdout
+        .lines()
+        .filter(|l| l.get(..4).is_some_and(|y| y.parse::<i32>().is_ok()))
+        .map(|l| {
+            let c: Vec<&str> = l.split_whitespace().collect();
+            c[..5].join("|")
+        })
+        .collect();
+    let recorded = query(
+        "SELECT data_through_year || '|' || series || '|' || version || '|' || n_obs || '|' || n_censored
+         FROM fits WHERE status = 'published' ORDER BY data_through_year, series",
+    );
+    assert_eq!(printed.join("\n"), recorded);
+    let cens = |series: &str, season: i32| -> i64 {
+        query(&format!(
+            "SELECT n_censored FROM fits WHERE status = 'published' AND series = '{series}'
+             AND data_through_year = {season}"
+        ))
+        .parse()
+        .unwrap()
+    };
+    // Chlorophyll's count climbs through the older method's seasons (limit 5.0) and
+    // barely moves after (limit 2.0); Secchi's grows in clear years.
+    assert!(cens("chlorophyll", 2015) >= 30, "{stdout}");
+    assert!(cens("chlorophyll", 2026) - cens("chlorophyll", 2015) < 15);
+    assert!(cens("secchi", 2026) > cens("secchi", 2011));
+
+    // Every censored cell of the feed (truth/censored.csv; a re-sent row once) is in
+    // current_observations as written, and the final versions fitted all of them
+    // except those of a visit whose temperature (the covariate) is missing or rejected.
+    let censored = include_str!("../demo-feed/truth/censored.csv");
+    let defects = include_str!("../demo-feed/truth/defects.csv");
+    let rows = |text: &str| -> Vec<csv::StringRecord> {
+        csv::Reader::from_reader(text.as_bytes())
+            .records()
+            .map(Result::unwrap)
+            .collect()
+    };
+    let no_temperature: std::collections::BTreeSet<String> = rows(defects)
+        .iter()
+        .filter(|d| &d[5] == "surface_temp_c" && ["missing", "rejected"].contains(&&d[7]))
+        .map(|d| format!("{}|{}|{}", &d[2], &d[3], &d[4]))
+        .collect();
+    for (series, column) in [("chlorophyll", "chl_ug_l"), ("secchi", "secchi_m")] {
+        let mut expected: Vec<String> = rows(censored)
+            .iter()
+            .filter(|c| &c[5] == column)
+            .map(|c| format!("{}|{}|{}|{}|{}", &c[2], &c[3], &c[4], &c[9], &c[7]))
+            .collect();
+        expected.sort();
+        expected.dedup();
+        let stored = if column == "chl_ug_l" {
+            // `<x` cells: the limit in num_value, censoring `below`, no qualifier.
+            query(
+                "SELECT site || '|' || year || '|' || visit || '|' || printf('%.2f', num_value) || '|'
+                 FROM current_observations WHERE column_name = 'chl_ug_l' AND censoring = 'below'
+                 ORDER BY 1",
+            )
+        } else {
+            // The lake's depth as a plain number, its flag beside it as a label.
+            query(
+                "SELECT v.site || '|' || v.year || '|' || v.visit || '|' || printf('%.2f', v.num_value)
+                        || '|' || f.text_value
+                 FROM current_observations f JOIN current_observations v
+                   ON v.site = f.site AND v.year = f.year AND v.visit = f.visit
+                  AND v.column_name = 'secchi_m'
+                 WHERE f.column_name = 'secchi_flag' AND v.censoring IS NULL ORDER BY 1",
+            )
+        };
+        let mut stored: Vec<String> = stored.lines().map(str::to_string).collect();
+        stored.sort();
+        assert_eq!(stored, expected, "{series}");
+        let fitted = expected
+            .iter()
+            .filter(|k| {
+                let key: Vec<&str> = k.splitn(4, '|').take(3).collect();
+                !no_temperature.contains(&key.join("|"))
+            })
+            .count();
+        assert!(fitted > 0);
+        assert_eq!(cens(series, 2026), fitted as i64, "{series}");
+    }
+    assert_eq!(
+        query("SELECT COUNT(*) FROM current_observations WHERE censoring IS NOT NULL AND column_name <> 'chl_ug_l'"),
+        "0"
+    );
+
+    // The remarks are kept verbatim (a note as text, a jotted number as a number), one
+    // per visit; the NA and -999 codes are neither stored nor rejected.
+    let feed_dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../demo-feed/seasons");
+    let mut remarks = std::collections::BTreeSet::new();
+    for season in 2011..=2026 {
+        let text = std::fs::read_to_string(feed_dir.join(format!("{season}.csv"))).unwrap();
+        let mut r = csv::Reader::from_reader(text.as_bytes());
+        let at = r
+            .headers()
+            .unwrap()
+            .iter()
+            .position(|h| h == "remarks")
+            .unwrap();
+        for row in r.records().map(Result::unwrap) {
+            if !row[0].is_empty() && !row[at].is_empty() {
+                let kept = match row[at].parse::<f64>() {
+                    Ok(x) => format!("n:{x:.1}"),
+                    Err(_) => format!("t:{}", &row[at]),
+                };
+                remarks.insert(format!("{}|{}|{}|{kept}", &row[0], &row[1], &row[2]));
+            }
+        }
+    }
+    let stored = query(
+        "SELECT site || '|' || year || '|' || visit || '|' ||
+                IIF(text_value IS NULL, 'n:' || printf('%.1f', num_value), 't:' || text_value)
+         FROM current_observations WHERE column_name = 'remarks'",
+    );
+    let stored: std::collections::BTreeSet<String> = stored.lines().map(str::to_string).collect();
+    assert_eq!(stored, remarks);
+    assert!(remarks.iter().any(|r| r.ends_with("|t:windy, whitecaps")));
+    assert!(remarks.iter().any(|r| r.contains("|n:")));
+    assert_eq!(
+        query("SELECT COUNT(*) FROM observations WHERE text_value IN ('NA', '-999') OR num_value = -999"),
+        "0"
+    );
+    assert_eq!(
+        query("SELECT COUNT(*) FROM rejections WHERE TRIM(raw_value) IN ('NA', '-999')"),
+        "0"
+    );
+    assert!(
+        query("SELECT COUNT(*) FROM rejections WHERE column_name = 'remarks'") == "0",
+        "a remark is never rejected (the row without a lake has none)"
+    );
 }
 
 /// `known_site_max_gap` leaves out known-site forecasts of a site no longer visited; the

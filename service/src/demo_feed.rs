@@ -65,6 +65,40 @@ const LAKES: &[(&str, i32, Option<i32>)] = &[
     ("Whitefish Lake", 2023, None),
 ];
 
+/// Cells holding a missing-value code: (lake, its first season, column, code, the crew's
+/// remark). `NA` and `-999` are two of the default `feed.missing` codes.
+const MISSING_CODES: [(&str, i32, usize, &str, &str); 5] = [
+    (
+        "Upper Cedar Lake",
+        2012,
+        TEMP,
+        "-999",
+        "temperature logger error",
+    ),
+    (
+        "Willow Marsh Pond",
+        2014,
+        CHL,
+        "NA",
+        "sample bottle broken in transit",
+    ),
+    (
+        "Granite Lake",
+        2017,
+        SECCHI,
+        "NA",
+        "too windy for a Secchi reading",
+    ),
+    ("Round Lake", 2021, CHL, "NA", "sample lost at the lab"),
+    (
+        "Whitefish Lake",
+        2023,
+        TEMP,
+        "NA",
+        "thermometer left at the launch",
+    ),
+];
+
 /// A planned multi-year gap on top of the random skips (access road closed).
 const PLANNED_GAP: (&str, [i32; 3]) = ("Kettle Lake", [2017, 2018, 2019]);
 
@@ -86,7 +120,7 @@ const PLANNED_VISITS: &[(&str, i32, u32)] = &[
 const P_SKIP: f64 = 0.07;
 const P_SECOND_VISIT: f64 = 0.5;
 
-pub const COLUMNS: [&str; 7] = [
+pub const COLUMNS: [&str; 9] = [
     "lake",
     "season",
     "visit",
@@ -94,12 +128,55 @@ pub const COLUMNS: [&str; 7] = [
     "surface_temp_c",
     "chl_ug_l",
     "secchi_m",
+    "secchi_flag",
+    "remarks",
 ];
 const LAKE: usize = 0;
 const CREW: usize = 3;
 const TEMP: usize = 4;
 const CHL: usize = 5;
 const SECCHI: usize = 6;
+const FLAG: usize = 7;
+const REMARKS: usize = 8;
+
+/// The laboratory's chlorophyll-a methods: (first season, last season, reporting limit in
+/// µg/L). A result below the limit is written `<limit`. The older method's limit is high
+/// enough that a good share of the early results are censored.
+pub const CHL_METHODS: [(i32, i32, f64); 2] = [(2011, 2015, 5.0), (2016, LAST_SEASON, 2.0)];
+
+/// The chlorophyll-a reporting limit (µg/L) of the method used in `season`.
+pub fn chl_reporting_limit(season: i32) -> f64 {
+    CHL_METHODS
+        .iter()
+        .find(|(first, last, _)| (*first..=*last).contains(&season))
+        .map_or(CHL_METHODS[0].2, |m| m.2)
+}
+
+/// Shallow lakes and their (invented) greatest depth in metres. Where the disk is still
+/// visible on the bottom, the crew writes the lake's depth in `secchi_m` and flags it in
+/// `secchi_flag`: the true Secchi depth is greater than the depth written.
+pub const SHALLOW_LAKES: [(&str, f64); 5] = [
+    ("Beaver Flowage", 2.6),
+    ("Cold Spring Pond", 3.0),
+    ("Fernhill Pond", 3.4),
+    ("Willow Marsh Pond", 2.8),
+    ("Foxtail Pond", 3.1),
+];
+
+/// What each crew (in [`CREWS`] order) writes in `secchi_flag` for a disk on the bottom:
+/// two habits, so the series' qualifier list names both.
+pub const BOTTOM_FLAGS: [&str; 6] = ["bottom", "bottom", "bottom", ">", ">", ">"];
+
+/// Field notes the crews jot in `remarks`; some jot only the air temperature (a number).
+const REMARK_TEXTS: [&str; 7] = [
+    "calm, glassy surface",
+    "windy, whitecaps",
+    "light rain during sampling",
+    "algae scum along the east shore",
+    "loons near the sampling buoy",
+    "boat launch closed; sampled from the dock",
+    "water \"tea-coloured\" after storms",
+];
 
 /// The two series of the feed, in the order of [`spec`]'s responses.
 const SERIES: [(&str, &str); 2] = [("chlorophyll", "chl_ug_l"), ("secchi", "secchi_m")];
@@ -184,13 +261,39 @@ fn fmt(x: f64, places: usize) -> String {
     }
 }
 
+/// SplitMix64's finaliser: the remarks need a few independent choices per visit, and a
+/// hash of (seed, season, lake, visit) gives them without a random stream whose order
+/// would tie one visit's remark to every visit before it.
+fn mix(mut z: u64) -> u64 {
+    z = z.wrapping_add(0x9E37_79B9_7F4A_7C15);
+    z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+    z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+    z ^ (z >> 31)
+}
+
+/// "remarks" in ASCII: keeps the remark hash apart from anything else derived from the seed.
+const REMARKS_STREAM: u64 = 0x0072_656d_6172_6b73;
+
+/// The `remarks` cell of a visit: empty about half the time, otherwise a field note or,
+/// now and then, just a number (the air temperature the crew jotted down).
+fn remark(seed: u64, season: i32, lake: usize, visit: u32) -> String {
+    let h =
+        mix(mix(mix(seed ^ REMARKS_STREAM) ^ season as u64)
+            ^ ((lake as u64) << 8 | u64::from(visit)));
+    match h % 100 {
+        0..=49 => String::new(),
+        50..=84 => REMARK_TEXTS[(h >> 8) as usize % REMARK_TEXTS.len()].to_string(),
+        _ => (15 + (h >> 16) % 15).to_string(),
+    }
+}
+
 #[derive(Debug, Clone)]
 struct Row {
     /// The lake behind the row (also when its name was lost).
     lake: usize,
     season: i32,
     visit: u32,
-    cells: [String; 7],
+    cells: [String; 9],
     /// Indices into the defect list of the defects on this row.
     marks: Vec<usize>,
 }
@@ -238,6 +341,18 @@ impl Planter {
             .iter()
             .position(|r| r.lake == lake && r.visit == visit && r.season == season)
             .expect("a planned visit")
+    }
+
+    /// The row of visit 1 of `lake` in `season`, which must be the lake's first season
+    /// (never skipped, so it exists for every seed).
+    fn pick_first_visit(&self, season: i32, lake: &str) -> usize {
+        let first = LAKES
+            .iter()
+            .find(|(n, _, _)| *n == lake)
+            .map(|l| l.1)
+            .expect("a lake of the network");
+        assert_eq!(first, season, "{lake} is first sampled in {first}");
+        self.pick(season, lake, 1)
     }
 
     fn mark(
@@ -430,42 +545,24 @@ fn plant(p: &mut Planter) -> Vec<String> {
         "missing reading",
         "missing value, not a rejection; the rest of the row is kept",
     );
-    // A censored lab result goes on the clearest-water visit of the season, with a
-    // reporting limit above its true value (an older method's limit), so that the
-    // censoring is true of the generated value.
-    let rows = &p.files[&2017];
-    let low = (0..rows.len())
-        .filter(|&i| rows[i].season == 2017)
-        .min_by(|&a, &b| {
-            let v = |i: usize| rows[i].cells[CHL].parse::<f64>().unwrap_or(f64::INFINITY);
-            v(a).total_cmp(&v(b))
-        })
-        .expect("2017 has rows");
-    let true_low = rows[low].cells[CHL].clone();
-    let value: f64 = true_low.parse().expect("a generated number");
-    let mut limit = (value * 2.0).ceil() / 2.0;
-    if limit <= value {
-        limit += 0.5;
+    // Missing-value codes: the first visit of a lake's first season always exists, so
+    // each code lands on its lake whatever the seed. The crew's remark says why.
+    for (lake, season, column, code, remark) in MISSING_CODES {
+        let i = p.pick_first_visit(season, lake);
+        p.files.get_mut(&season).expect("a season file")[i].cells[REMARKS] = remark.to_string();
+        p.spoil(
+            season,
+            i,
+            column,
+            code,
+            "missing",
+            &format!(
+                "missing value (code {code}): not stored, not rejected; the rest of the row is kept"
+            ),
+            &format!("missing-value code ({remark})"),
+            "missing value, not stored and not a rejection; the rest of the row is kept",
+        );
     }
-    p.spoil(
-        2017,
-        low,
-        CHL,
-        &format!("<{limit:.1}"),
-        "censored",
-        &format!(
-            "accepted as censored below {limit:.1}: the fit uses the probability of a value below \
-             the limit; no value is substituted"
-        ),
-        "below a reporting limit",
-        "accepted, censored; the fit treats it exactly",
-    );
-    notes.push(format!(
-        "`<{limit:.1}` is placed on the season's lowest chlorophyll reading (its generated value, \
-         {true_low}, is in `truth/defects.csv`): a result below an older method's reporting \
-         limit. It is stored as censored (`current_observations.censoring` is `below`) and the \
-         fit uses the probability that the value lies below the limit."
-    ));
     let i = p.pick(2020, "Juniper Pond", 1);
     p.spoil(
         2020,
@@ -500,9 +597,14 @@ fn plant(p: &mut Planter) -> Vec<String> {
     let i = p.pick(2023, "Pickerel Lake", 1);
     let lost = LAKES[p.files[&2023][i].lake].0;
     p.files.get_mut(&2023).expect("a season file")[i].cells[LAKE] = String::new();
-    let marks: Vec<usize> = [CREW, TEMP, CHL, SECCHI]
+    // Every filled cell after the key is rejected, the remark too when there is one.
+    let filled: Vec<usize> = [CREW, TEMP, CHL, SECCHI, FLAG, REMARKS]
         .into_iter()
-        .map(|c| {
+        .filter(|&c| !p.files[&2023][i].cells[c].is_empty())
+        .collect();
+    let marks: Vec<usize> = filled
+        .iter()
+        .map(|&c| {
             let k = p.mark(
                 2023,
                 i,
@@ -519,9 +621,15 @@ fn plant(p: &mut Planter) -> Vec<String> {
         season_file: 2023,
         defects: marks,
         who: p.who(2023, i, false),
-        column: "all four value columns".into(),
-        raw: [CREW, TEMP, CHL, SECCHI]
-            .map(|c| format!("`{}`", cells[c]))
+        column: filled
+            .iter()
+            .map(|&c| format!("`{}`", COLUMNS[c]))
+            .collect::<Vec<_>>()
+            .join(", "),
+        raw: filled
+            .iter()
+            .map(|&c| format!("`{}`", cells[c]))
+            .collect::<Vec<_>>()
             .join(", "),
         what: "row without a lake".into(),
         outcome: "every value on the line rejected: row has no site".into(),
@@ -567,8 +675,9 @@ fn plant(p: &mut Planter) -> Vec<String> {
             .into(),
     });
     notes.push(
-        "Every other cell is clean. A lake that is missing from a season is a gap in sampling, \
-         not a defect."
+        "Every other cell is clean: a censored result (`<5.0`, a depth flagged `bottom`) and a \
+         remark are what the delivery is meant to hold, not defects. A lake that is missing \
+         from a season is a gap in sampling, not a defect."
             .into(),
     );
     notes
@@ -622,6 +731,8 @@ pub fn generate(seed: u64) -> DemoFeed {
                 fmt(v.covariate, 1),
                 fmt(v.values[0], 2),
                 fmt(v.values[1], 2),
+                String::new(),
+                remark(seed, v.year, v.site, v.visit),
             ],
             marks: vec![],
         };
@@ -639,6 +750,7 @@ pub fn generate(seed: u64) -> DemoFeed {
         entries: Vec::new(),
     };
     let notes = plant(&mut p);
+    let censored = censor(&mut p);
     for (season, rows) in &p.files {
         for (k, row) in rows.iter().enumerate() {
             for &d in &row.marks {
@@ -688,6 +800,7 @@ pub fn generate(seed: u64) -> DemoFeed {
             }),
         ),
     ));
+    out.push(("truth/censored.csv".into(), censored_csv(&p, &censored)));
     out.push(("truth/effects.csv".into(), effects_csv(&truth)));
     out.push(("truth/parameters.csv".into(), parameters_csv(&spec)));
 
@@ -698,6 +811,7 @@ pub fn generate(seed: u64) -> DemoFeed {
             "parameters".to_string(),
             parameters_md(&spec, &truth, smallest_secchi),
         ),
+        ("censoring".to_string(), censoring_md(&p, &censored)),
         ("defects".to_string(), defects_md(&p, n_rows, &notes)),
     ];
     let mut summary = String::from("season  rows  lakes\n");
@@ -709,14 +823,194 @@ pub fn generate(seed: u64) -> DemoFeed {
             .collect();
         summary.push_str(&format!("{season}  {:4}  {:5}\n", rows.len(), lakes.len()));
     }
+    let below = censored.iter().filter(|c| c.column == CHL).count();
     summary.push_str(&format!(
-        "total rows {n_rows}, smallest true secchi_m {smallest_secchi:.2}\n"
+        "total rows {n_rows}, smallest true secchi_m {smallest_secchi:.2}, {below} chl_ug_l cells \
+         written <limit, {} secchi_m cells flagged on the bottom\n",
+        censored.len() - below
     ));
     DemoFeed {
         files: out,
         readme,
         summary,
     }
+}
+
+/// A cell written censored: a chlorophyll result below its method's reporting limit, or
+/// a Secchi depth at a shallow lake where the disk lay on the bottom.
+struct CensoredCell {
+    season_file: i32,
+    /// Index of the row in its file.
+    row: usize,
+    column: usize,
+    side: &'static str,
+    limit: f64,
+}
+
+/// Write every result the way the laboratory and the crews would have: a chlorophyll value
+/// below its method's limit as `<limit`, a Secchi depth beyond a shallow lake's depth as
+/// the depth with the crew's flag. The decision is made on the generated value as it
+/// would have been written (0.01 units), so each censoring is true of the truth files.
+/// A cell that carries a planted defect keeps what the defect wrote.
+fn censor(p: &mut Planter) -> Vec<CensoredCell> {
+    let mut out = Vec::new();
+    for (season_file, rows) in p.files.iter_mut() {
+        for (k, row) in rows.iter_mut().enumerate() {
+            let spoiled: BTreeSet<usize> = row.marks.iter().map(|&d| p.defects[d].column).collect();
+            let clean = &p.clean[&(row.season, row.lake, row.visit)];
+            let value = |c: usize| -> f64 {
+                clean.cells[c]
+                    .parse()
+                    .expect("generated values are numbers")
+            };
+            let limit = chl_reporting_limit(row.season);
+            if !spoiled.contains(&CHL) && value(CHL) < limit {
+                row.cells[CHL] = format!("<{limit:.1}");
+                out.push(CensoredCell {
+                    season_file: *season_file,
+                    row: k,
+                    column: CHL,
+                    side: "below",
+                    limit,
+                });
+            }
+            let depth = SHALLOW_LAKES
+                .iter()
+                .find(|(lake, _)| *lake == LAKES[row.lake].0)
+                .map(|l| l.1);
+            if let Some(depth) = depth {
+                if !spoiled.contains(&SECCHI) && value(SECCHI) > depth {
+                    let crew = CREWS
+                        .iter()
+                        .position(|c| *c == clean.cells[CREW])
+                        .expect("a crew of the network");
+                    row.cells[SECCHI] = fmt(depth, 2);
+                    row.cells[FLAG] = BOTTOM_FLAGS[crew].to_string();
+                    out.push(CensoredCell {
+                        season_file: *season_file,
+                        row: k,
+                        column: SECCHI,
+                        side: "above",
+                        limit: depth,
+                    });
+                }
+            }
+        }
+    }
+    out
+}
+
+fn censored_csv(p: &Planter, censored: &[CensoredCell]) -> String {
+    csv_text(
+        &[
+            "file",
+            "line",
+            "lake",
+            "season",
+            "visit",
+            "column",
+            "raw_value",
+            "qualifier",
+            "side",
+            "limit",
+            "true_value",
+        ],
+        censored.iter().map(|c| {
+            let r = &p.files[&c.season_file][c.row];
+            let clean = &p.clean[&(r.season, r.lake, r.visit)];
+            vec![
+                format!("seasons/{}.csv", c.season_file),
+                (c.row + 2).to_string(),
+                r.cells[LAKE].clone(),
+                r.season.to_string(),
+                r.visit.to_string(),
+                COLUMNS[c.column].to_string(),
+                r.cells[c.column].clone(),
+                if c.column == SECCHI {
+                    r.cells[FLAG].clone()
+                } else {
+                    String::new()
+                },
+                c.side.to_string(),
+                fmt(c.limit, 2),
+                clean.cells[c.column].clone(),
+            ]
+        }),
+    )
+}
+
+fn censoring_md(p: &Planter, censored: &[CensoredCell]) -> String {
+    // Visits, not lines: a re-sent row or a duplicate line is the same visit.
+    let key = |c: &CensoredCell| {
+        let r = &p.files[&c.season_file][c.row];
+        (r.season, r.lake, r.visit)
+    };
+    let below: BTreeSet<(i32, usize, u32)> = censored
+        .iter()
+        .filter(|c| c.column == CHL)
+        .map(key)
+        .collect();
+    let bottom: BTreeSet<(i32, usize, u32)> = censored
+        .iter()
+        .filter(|c| c.column == SECCHI)
+        .map(key)
+        .collect();
+    let shallow = |lake: usize| SHALLOW_LAKES.iter().any(|(n, _)| *n == LAKES[lake].0);
+    let visits: BTreeSet<(i32, usize, u32)> = p.clean.keys().copied().collect();
+    let mut md = String::from(
+        "| season | chlorophyll reporting limit (µg/L) | visits | `chl_ug_l` written `<limit` | \
+         visits to the shallow lakes | `secchi_m` on the bottom (flagged) |\n\
+         |---|---|---|---|---|---|\n",
+    );
+    for season in FIRST_SEASON..=LAST_SEASON {
+        let of = |set: &BTreeSet<(i32, usize, u32)>| set.iter().filter(|k| k.0 == season).count();
+        let n = of(&visits);
+        let at_shallow = visits
+            .iter()
+            .filter(|k| k.0 == season && shallow(k.1))
+            .count();
+        md.push_str(&format!(
+            "| {season} | {:.1} | {n} | {} | {at_shallow} | {} |\n",
+            chl_reporting_limit(season),
+            of(&below),
+            of(&bottom)
+        ));
+    }
+    let at_shallow = visits.iter().filter(|k| shallow(k.1)).count();
+    md.push_str(&format!(
+        "| **total** | | {} | {} ({:.1}%) | {at_shallow} | {} ({:.1}% of all visits) |\n\n",
+        visits.len(),
+        below.len(),
+        100.0 * below.len() as f64 / visits.len() as f64,
+        bottom.len(),
+        100.0 * bottom.len() as f64 / visits.len() as f64,
+    ));
+    md.push_str("| shallow lake | depth (m) | visits | disk on the bottom |\n|---|---|---|---|\n");
+    for (name, depth) in SHALLOW_LAKES {
+        let lake = LAKES
+            .iter()
+            .position(|l| l.0 == name)
+            .expect("a lake of the network");
+        md.push_str(&format!(
+            "| {name} | {depth:.1} | {} | {} |\n",
+            visits.iter().filter(|k| k.1 == lake).count(),
+            bottom.iter().filter(|k| k.1 == lake).count()
+        ));
+    }
+    let mut by_flag: BTreeMap<&str, Vec<&str>> = BTreeMap::new();
+    for (crew, flag) in CREWS.iter().zip(BOTTOM_FLAGS) {
+        by_flag.entry(flag).or_default().push(crew);
+    }
+    let habits: Vec<String> = by_flag
+        .iter()
+        .map(|(flag, crews)| format!("{} write `{flag}`", crews.join(", ")))
+        .collect();
+    md.push_str(&format!(
+        "\nCrews {}. Each censored cell is listed with its generated value in \
+         `truth/censored.csv`, once for each line it is on (a re-sent row is on two).\n",
+        habits.join("; ")
+    ));
+    md
 }
 
 fn effects_csv(truth: &SurveyTruth) -> String {
@@ -920,10 +1214,17 @@ fn defects_md(p: &Planter, n_rows: usize, notes: &[String]) -> String {
         .count();
     let cells = n_rows * 4;
     let corrections = p.defects.iter().filter(|d| d.kind == "correction").count();
-    let empty = p.defects.iter().filter(|d| d.kind == "missing").count();
+    let missing = |empty: bool| {
+        p.defects
+            .iter()
+            .filter(|d| d.kind == "missing" && d.raw_value.is_empty() == empty)
+            .count()
+    };
+    let (empty, codes) = (missing(true), missing(false));
     let mut md = format!(
-        "{bad} bad values out of {} value cells ({:.2}%), plus {corrections} late corrections and \
-         {empty} empty cell. The same list, with the true values, is in `truth/defects.csv`.\n\n\
+        "{bad} bad values out of {} value cells ({:.2}%), plus {corrections} late corrections, \
+         {empty} empty cell and {codes} missing-value codes. The same list, with the true values, \
+         is in `truth/defects.csv`.\n\n\
          | file | line | lake / season / visit | column | raw value | defect | expected outcome |\n\
          |---|---|---|---|---|---|---|\n",
         with_thousands(cells),

@@ -110,15 +110,22 @@ pub async fn run(out: Option<PathBuf>) -> anyhow::Result<()> {
         out.display()
     );
     println!(
-        "{:<6} {:<12} {:>4} {:>5} | {:^35} | {:^39}",
-        "", "", "", "", "sd, model scale (posterior median)", "80% interval width, response units"
+        "{:<6} {:<12} {:>4} {:>5} {:>5} | {:^35} | {:^39}",
+        "",
+        "",
+        "",
+        "",
+        "",
+        "sd, model scale (posterior median)",
+        "80% interval width, response units"
     );
     let header = format!(
-        "{:<6} {:<12} {:>4} {:>5} | {:>8} {:>8} {:>8} {:>8} | {:>9} {:>9} {:>9} {:>9}",
+        "{:<6} {:<12} {:>4} {:>5} {:>5} | {:>8} {:>8} {:>8} {:>8} | {:>9} {:>9} {:>9} {:>9}",
         "season",
         "series",
         "ver",
         "obs",
+        "cens",
         "site",
         "year",
         "group",
@@ -158,11 +165,12 @@ pub async fn run(out: Option<PathBuf>) -> anyhow::Result<()> {
             let fmt = |v: Option<f64>| v.map_or("-".to_string(), |v| format!("{v:.3}"));
             let w = |t: &str| s.width80.iter().find(|(n, _)| n == t).map(|(_, v)| *v);
             lines.push(format!(
-                "{:<6} {:<12} {:>4} {:>5} | {:>8} {:>8} {:>8} {:>8} | {:>9} {:>9} {:>9} {:>9}{}",
+                "{:<6} {:<12} {:>4} {:>5} {:>5} | {:>8} {:>8} {:>8} {:>8} | {:>9} {:>9} {:>9} {:>9}{}",
                 year,
                 s.series,
                 s.version.map_or("-".into(), |v| v.to_string()),
                 s.n_obs.map_or("-".into(), |n| n.to_string()),
+                s.n_censored.map_or("-".into(), |n| n.to_string()),
                 fmt(sd("site")),
                 fmt(sd("year")),
                 fmt(group_sd),
@@ -197,10 +205,19 @@ pub async fn run(out: Option<PathBuf>) -> anyhow::Result<()> {
     store.close().await;
     std::fs::remove_file(out.join(IN_PROGRESS))
         .with_context(|| format!("cannot remove {}/{IN_PROGRESS}", out.display()))?;
+    let limits: Vec<String> = crate::demo_feed::CHL_METHODS
+        .iter()
+        .map(|(first, last, limit)| format!("<{limit:.1} in {first}-{last}"))
+        .collect();
+    let limits = limits.join(", ");
     let db = config.database.display();
     let cfg = config.path.display();
     println!(
-        "\nsd: posterior median of each standard deviation on the model scale (chlorophyll: natural log\n\
+        "\nobs: values in the season's fit; cens: how many of them are censored, entered in the fit as the\n\
+         probability of lying beyond their limit (no number is substituted): chlorophyll below the\n\
+         laboratory's reporting limit (written {limits}), and Secchi depth\n\
+         at a shallow lake where the disk lay on the bottom (the lake's depth, flagged in secchi_flag).\n\
+         sd: posterior median of each standard deviation on the model scale (chlorophyll: natural log\n\
          of µg/L; Secchi: metres). Width: mean width of the 80% forecast interval (q10 to q90) in\n\
          response units (µg/L for chlorophyll, m for Secchi) for a monitored lake (mon) or a new lake\n\
          (new), in a season already seen (seen) or next season (next).\n\n\

@@ -80,6 +80,8 @@ pub struct SeriesReport {
     pub wall_seconds: f64,
     pub warm_start_from: Option<i64>,
     pub n_obs: Option<i64>,
+    /// How many of the fitted observations are censored (`fits.n_censored`).
+    pub n_censored: Option<i64>,
     /// Seconds spent reading the series from the store and building the model input.
     pub load_seconds: f64,
     /// Seconds spent sampling (all attempts).
@@ -283,6 +285,7 @@ impl SeriesReport {
             wall_seconds: 0.0,
             warm_start_from: None,
             n_obs: None,
+            n_censored: None,
             load_seconds: 0.0,
             fit_seconds: 0.0,
             publish_seconds: 0.0,
@@ -778,6 +781,7 @@ async fn publish(
     report.diagnostics = Some(d);
     report.warm_start_from = from;
     report.n_obs = fit.n_obs;
+    report.n_censored = fit.n_censored;
     report.wall_seconds = fit.wall_seconds.unwrap_or_default();
     for target in [
         ForecastTarget::KnownSiteKnownYear,
