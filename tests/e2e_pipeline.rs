@@ -375,6 +375,28 @@ fn the_demo_publishes_a_version_per_season() {
         "the demo ends by saying how to query: {stdout}"
     );
     assert!(stdout.contains("qualified staff"));
+    // Next season's exceedance at the lakes most likely to exceed the first threshold:
+    // probabilities, falling from the first threshold to the second on every lake.
+    let table: Vec<&str> = stdout
+        .lines()
+        .skip_while(|l| !l.starts_with("chance that 2027's chlorophyll exceeds each threshold"))
+        .skip(2)
+        .take(5)
+        .collect();
+    assert_eq!(table.len(), 5, "{stdout}");
+    let mut previous = f64::INFINITY;
+    for line in &table {
+        let p: Vec<f64> = line
+            .split_whitespace()
+            .rev()
+            .take(2)
+            .map(|v| v.parse().unwrap())
+            .collect();
+        let (p25, p10) = (p[0], p[1]);
+        assert!((0.0..=1.0).contains(&p10) && p25 <= p10, "{line}");
+        assert!(p10 <= previous, "lakes are ranked by P(> 10): {line}");
+        previous = p10;
+    }
     // Its last lines say where the config and database are and what to try with them.
     let tail: Vec<&str> = stdout.lines().rev().take(8).collect();
     let config_line = format!("config    {}", out_dir.join("tidemark.toml").display());

@@ -202,6 +202,7 @@ pub async fn run(out: Option<PathBuf>) -> anyhow::Result<()> {
     if let Some(b) = bar {
         b.finish_and_clear();
     }
+    print_exceedance(&store, &config).await?;
     store.close().await;
     std::fs::remove_file(out.join(IN_PROGRESS))
         .with_context(|| format!("cannot remove {}/{IN_PROGRESS}", out.display()))?;
@@ -234,5 +235,55 @@ pub async fn run(out: Option<PathBuf>) -> anyhow::Result<()> {
          sqlite3 {db} \"SELECT series, target, site, year, round(q10,2), round(q50,2), round(q90,2) FROM latest_forecasts WHERE target = 'new_site_new_year'\"",
         out = out.display()
     );
+    Ok(())
+}
+
+/// Lakes shown in the exceedance table at the end of a replay.
+const EXCEEDANCE_LAKES: usize = 5;
+
+/// Next season's chance of exceeding each chlorophyll threshold at the lakes most likely
+/// to exceed the first one, from the latest version.
+async fn print_exceedance(store: &Store, config: &Config) -> anyhow::Result<()> {
+    let Some(series) = config.series.iter().find(|s| !s.thresholds.is_empty()) else {
+        return Ok(());
+    };
+    let Some(fit) = store.serving_fit(&series.name).await? else {
+        return Ok(());
+    };
+    let rows = store
+        .site_exceedance(fit.fit_id, "known_site_new_year")
+        .await?;
+    let mut by_site: Vec<(String, i64, Vec<Option<f64>>)> = Vec::new();
+    for r in rows {
+        match by_site.last_mut() {
+            Some((site, year, p)) if *site == r.site && *year == r.year => p.push(r.probability),
+            _ => by_site.push((r.site, r.year, vec![r.probability])),
+        }
+    }
+    let first = |p: &[Option<f64>]| p.first().copied().flatten().unwrap_or(0.0);
+    by_site.sort_by(|a, b| first(&b.2).total_cmp(&first(&a.2)).then(a.0.cmp(&b.0)));
+    let unit = series.unit.as_deref().unwrap_or("");
+    let year = by_site.first().map_or(0, |r| r.1);
+    println!(
+        "\nchance that {year}'s {} exceeds each threshold, at the {EXCEEDANCE_LAKES} lakes most likely to (version {}):",
+        series.name, fit.version
+    );
+    let heads: Vec<String> = series
+        .thresholds
+        .iter()
+        .map(|t| format!("P(> {t} {unit})"))
+        .collect();
+    println!(
+        "  {:<28} {}",
+        "lake",
+        heads.iter().map(|h| format!("{h:>16}")).collect::<String>()
+    );
+    for (site, _, p) in by_site.iter().take(EXCEEDANCE_LAKES) {
+        let cells: String = p
+            .iter()
+            .map(|v| v.map_or(format!("{:>16}", "-"), |v| format!("{v:>16.3}")))
+            .collect();
+        println!("  {:<28} {cells}", crate::visible::visible(site));
+    }
     Ok(())
 }
