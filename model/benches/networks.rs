@@ -55,15 +55,20 @@ fn b1() {
         data.n_years(),
         data.n_obs()
     );
-    let _ = fit(&data, None); // warm the caches and thread pool
+    let (post, best) = best_of_five(&data);
+    describe("B1 cold fit (best of 5)", &post, best);
+}
+
+/// A warming fit, then the fastest of five cold fits (and the last posterior).
+fn best_of_five(data: &Data) -> (Posterior, f64) {
+    let (mut last, _) = fit(data, None); // warms the caches and thread pool
     let mut best = f64::INFINITY;
-    let mut last = None;
     for _ in 0..5 {
-        let (post, secs) = fit(&data, None);
+        let (post, secs) = fit(data, None);
         best = best.min(secs);
-        last = Some(post);
+        last = post;
     }
-    describe("B1 cold fit (best of 5)", last.as_ref().unwrap(), best);
+    (last, best)
 }
 
 /// The share of values left-censored in `b1c` and `b3c`, below the empirical quantile.
@@ -77,19 +82,8 @@ fn b1c() {
         data.n_censored(),
         data.n_obs()
     );
-    let _ = fit(&data, None);
-    let mut best = f64::INFINITY;
-    let mut last = None;
-    for _ in 0..5 {
-        let (post, secs) = fit(&data, None);
-        best = best.min(secs);
-        last = Some(post);
-    }
-    describe(
-        "B1, 20% censored, cold fit (best of 5)",
-        last.as_ref().unwrap(),
-        best,
-    );
+    let (post, best) = best_of_five(&data);
+    describe("B1, 20% censored, cold fit (best of 5)", &post, best);
 }
 
 fn b3c() {
