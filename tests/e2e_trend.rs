@@ -126,3 +126,84 @@ fn trend_settings_are_checked() {
         "{err}"
     );
 }
+
+/// Standing scenarios are forecast beside the baseline, each with its covariate values
+/// recorded and its own exceedance; a shift of zero would repeat the baseline, so a
+/// scenario must set or shift something.
+#[test]
+fn standing_scenarios_are_forecast_beside_the_baseline() {
+    let scenarios = "thresholds = [3.0]\n\n\
+        [[series.scenarios]]\nname = \"warm\"\nshift = { surface_temp_c = 3.0 }\n\n\
+        [[series.scenarios]]\nname = \"hot lake\"\nset = { surface_temp_c = 26.5 }\n";
+    let toml = ConfigBuilder::new()
+        .series(&format!("{CHLOROPHYLL}horizon = 2\n"))
+        .sampler(Sampler::default())
+        .build()
+        .replace("horizon = 2\n", &format!("horizon = 2\n{scenarios}"));
+    let net = Network::with_config(&toml);
+    net.ok(&["init"]);
+    net.drop_file("seasons.csv", feed().0);
+    net.ok(&["ingest"]);
+    let out = net.ok(&["refit"]);
+    assert!(out.contains("published version 1"), "{out}");
+    let counts = net.sqlite3(
+        "SELECT scenario, COUNT(*) FROM latest_forecasts GROUP BY scenario ORDER BY scenario",
+    );
+    let lines: Vec<&str> = counts.lines().collect();
+    assert_eq!(lines.len(), 3, "{counts}");
+    let n: Vec<&str> = lines.iter().map(|l| l.split('|').nth(1).unwrap()).collect();
+    assert!(n.iter().all(|c| *c == n[0]), "{counts}");
+    let mean = net
+        .scalar("SELECT value FROM forecast_scenarios WHERE scenario = 'baseline'")
+        .real();
+    let warm = net
+        .scalar("SELECT value FROM forecast_scenarios WHERE scenario = 'warm'")
+        .real();
+    assert!((warm - mean - 3.0).abs() < 1e-9, "{warm} vs {mean}");
+    assert_eq!(
+        net.sqlite3(
+            "SELECT DISTINCT scenario_covariates FROM latest_forecasts WHERE scenario = 'hot lake'"
+        ),
+        "{\"surface_temp_c\":26.5}\n"
+    );
+    // Every row of every scenario has its exceedance, consistent with its own quantiles.
+    assert_eq!(
+        net.scalar(
+            "SELECT COUNT(*) FROM latest_forecasts f LEFT JOIN forecast_exceedance e USING (forecast_id)
+             WHERE e.probability IS NULL"
+        )
+        .int(),
+        0
+    );
+    // The probability of exceeding 3 is on the side of one half that the row's own median
+    // says, and beyond 0.975 (0.025) when its 95% interval lies above (below) 3: each
+    // scenario's exceedance is computed at that scenario's covariates.
+    let inconsistent = net.scalar(
+        "SELECT COUNT(*) FROM latest_forecasts f JOIN forecast_exceedance e USING (forecast_id)
+         WHERE (f.q50 > 3.0 AND e.probability < 0.5) OR (f.q50 < 3.0 AND e.probability > 0.5)
+            OR (f.q025 > 3.0 AND e.probability < 0.975) OR (f.q975 < 3.0 AND e.probability > 0.025)",
+    );
+    assert_eq!(inconsistent.int(), 0);
+    // Scenarios are checked at start-up.
+    for (bad, says) in [
+        (
+            "[[series.scenarios]]\nname = \"baseline\"\nshift = { surface_temp_c = 1.0 }\n",
+            "other than \"baseline\"",
+        ),
+        (
+            "[[series.scenarios]]\nname = \"x\"\n",
+            "repeat the baseline",
+        ),
+        (
+            "[[series.scenarios]]\nname = \"x\"\nset = { depth = 1.0 }\n",
+            "not a covariate",
+        ),
+    ] {
+        let toml = ConfigBuilder::new()
+            .series(&format!("{CHLOROPHYLL}\n{bad}"))
+            .build();
+        let net = Network::with_config(&toml);
+        let err = String::from_utf8_lossy(&net.tidemark(&["init"]).stderr).to_string();
+        assert!(err.contains(says), "{err}");
+    }
+}

@@ -189,6 +189,11 @@ pub struct Scenario {
     pub name: String,
     /// One value per covariate, or `None` for the network mean.
     pub covariates: Vec<Option<f64>>,
+    /// Per covariate, an amount added to the value a row would otherwise use (the network
+    /// mean, or a monitored site's own value of a covariate that is an attribute of the
+    /// site); empty or 0 for none.
+    #[serde(default)]
+    pub shifts: Vec<f64>,
 }
 
 impl Scenario {
@@ -197,8 +202,30 @@ impl Scenario {
         Scenario {
             name: "baseline".into(),
             covariates: Vec::new(),
+            shifts: Vec::new(),
         }
     }
+}
+
+/// The covariate values of one row of `scenario`: its set values, else a monitored site's
+/// own value of a site-level covariate, the trend at the row's `year`, then the shifts
+/// (a shifted covariate left at the network mean is the mean plus the shift).
+fn row_covariates(
+    basis: &ForecastBasis,
+    site: Option<usize>,
+    scenario: &Scenario,
+    year: i32,
+) -> Vec<Option<f64>> {
+    let mut v = covariates_at(basis, site, &scenario.covariates);
+    if basis.trend_origin.is_some() {
+        v = at_year(basis, &v, year);
+    }
+    for (j, &shift) in scenario.shifts.iter().enumerate() {
+        if shift != 0.0 && j < v.len() {
+            v[j] = Some(v[j].unwrap_or(basis.covariate_means[j]) + shift);
+        }
+    }
+    v
 }
 
 /// One forecast row (response scale for `mean`…`q975`, model scale for the shares).
@@ -578,8 +605,9 @@ pub fn forecast_to(
         .map(|h| basis.data_through_year() + h)
         .collect();
     let trend = basis.trend_origin.is_some();
-    let fixed_at = |year: i32| fixed_part(basis, &at_year(basis, &scenario.covariates, year));
-    let fixed = fixed_part(basis, &scenario.covariates);
+    // The fixed part of a new site (or of a known site without site-level covariates).
+    let fixed_at = |year: i32| fixed_part(basis, &row_covariates(basis, None, scenario, year));
+    let fixed = fixed_at(basis.data_through_year());
     // Whether a known site's row needs its own fixed part (a site-level covariate the
     // scenario leaves at its baseline).
     let site_level = (0..basis.covariate_means.len()).any(|j| {
@@ -646,13 +674,7 @@ pub fn forecast_to(
                     }
                 };
                 let comp = if site_level || (trend && new_year.is_none()) {
-                    let given = at_year(basis, &scenario.covariates, year);
-                    let given = if trend {
-                        given
-                    } else {
-                        scenario.covariates.clone()
-                    };
-                    let at = covariates_at(basis, Some(s), &given);
+                    let at = row_covariates(basis, Some(s), scenario, year);
                     predictive_from(basis, &fixed_part(basis, &at), Some(s), t)
                 } else {
                     let f = fixed_new.as_ref().unwrap_or(&fixed);
@@ -757,12 +779,9 @@ pub fn exceedance(
                     ))
                 })?)
             };
-            // Under a trend the row sits at its own year on the line, as in `forecast_to`.
-            let covariates = if basis.trend_origin.is_some() {
-                at_year(basis, &scenario.covariates, row.year)
-            } else {
-                scenario.covariates.clone()
-            };
+            // The row's own covariates, as `forecast_to` computed them (its year on the
+            // trend line, its scenario's values and shifts).
+            let covariates = row_covariates(basis, site, scenario, row.year);
             let comp = predictive(basis, site, year, &covariates)?;
             Ok(at.iter().map(|&y| comp.survival(y)).collect())
         })

@@ -346,6 +346,7 @@ fn exceedance_probabilities_equal_a_plain_monte_carlo_over_the_same_draws() {
     let scenario = Scenario {
         name: "x14".into(),
         covariates: vec![Some(14.0)],
+        shifts: vec![],
     };
     check_exceedance_of(&b, Transform::None, &scenario, |_| 14.0);
     let sited = site_level_basis();
@@ -390,6 +391,7 @@ fn a_covariate_scenario_moves_every_target_by_its_coefficient_draws() {
     let scenario = Scenario {
         name: "x14".into(),
         covariates: vec![Some(14.0)],
+        shifts: vec![],
     };
     check_rows(Transform::None, &scenario, 14.0);
 }
@@ -445,8 +447,24 @@ fn a_scenario_value_overrides_a_site_level_covariate() {
     let scenario = Scenario {
         name: "x14".into(),
         covariates: vec![Some(14.0)],
+        shifts: vec![],
     };
     check_rows_of(&site_level_basis(), Transform::None, &scenario, |_| 14.0);
+}
+
+/// A scenario's shift moves each row from the value it would otherwise use: a monitored
+/// site's own value of a site-level covariate (the network mean for a new site), in the
+/// rows and in their exceedance alike.
+#[test]
+fn a_scenario_shift_moves_each_row_from_its_own_value() {
+    let b = site_level_basis();
+    let scenario = Scenario {
+        name: "deeper".into(),
+        covariates: vec![],
+        shifts: vec![2.0],
+    };
+    check_rows_of(&b, Transform::None, &scenario, |r| depth_of(&b, r) + 2.0);
+    check_exceedance_of(&b, Transform::None, &scenario, |r| depth_of(&b, r) + 2.0);
 }
 
 /// The predictive the calibration study scores with is the one the rows come from.

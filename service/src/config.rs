@@ -75,6 +75,21 @@ pub struct FeedDirs {
 /// codes agency deliveries use most.
 pub const DEFAULT_MISSING: [&str; 3] = ["", "NA", "-999"];
 
+/// A named standing covariate setting: each covariate it names is `set` to a value or
+/// `shift`ed by an amount from the value a row would otherwise use.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ScenarioConfig {
+    pub name: String,
+    #[serde(default)]
+    pub set: BTreeMap<String, f64>,
+    #[serde(default)]
+    pub shift: BTreeMap<String, f64>,
+}
+
+/// At most this many scenarios per series (each repeats the whole forecast set).
+pub const MAX_SCENARIOS: usize = 8;
+
 /// A qualifier column that marks the series' response values as censored
 /// (`series.censoring`); the value column then holds the limit.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
@@ -126,6 +141,8 @@ pub struct SeriesConfig {
     pub trend_origin: Option<i32>,
     /// New-year forecast targets for this many years after the data (`horizon`, 1–50).
     pub horizon: u32,
+    /// Standing covariate scenarios (`[[series.scenarios]]`), forecast beside `baseline`.
+    pub scenarios: Vec<ScenarioConfig>,
     pub priors: Priors,
     pub sampler: SamplerConfig,
     /// Known-site forecasts are written only for sites observed within this many years
@@ -479,6 +496,8 @@ struct RawSeries {
     trend_origin: Option<i32>,
     #[serde(default = "default_horizon")]
     horizon: u32,
+    #[serde(default)]
+    scenarios: Vec<ScenarioConfig>,
     #[serde(default)]
     priors: Priors,
     #[serde(default)]
@@ -894,6 +913,7 @@ fn check_series(i: usize, rs: RawSeries, seen: &mut SeenSoFar) -> Result<SeriesC
     if let Some(c) = &rs.censoring {
         check_censoring(c, &at("censoring"))?;
     }
+    check_scenarios(&rs.scenarios, &rs.covariates, &at("scenarios"))?;
     if !HORIZONS.contains(&rs.horizon) {
         return Err((
             at("horizon"),
@@ -941,6 +961,7 @@ fn check_series(i: usize, rs: RawSeries, seen: &mut SeenSoFar) -> Result<SeriesC
         trend: rs.trend,
         trend_origin: rs.trend_origin,
         horizon: rs.horizon,
+        scenarios: rs.scenarios,
         priors: rs.priors,
         sampler: rs.sampler,
         known_site_max_gap: rs.known_site_max_gap,
@@ -1062,6 +1083,70 @@ fn check_measured_columns(
             None => {
                 seen.column_kind.insert(col.clone(), (kind, key.clone()));
             }
+        }
+    }
+    Ok(())
+}
+
+/// Scenarios: named (not `baseline`), each name once, at most [`MAX_SCENARIOS`], each
+/// setting or shifting at least one of the series' covariates by a finite number, none
+/// both.
+fn check_scenarios(
+    scenarios: &[ScenarioConfig],
+    covariates: &[String],
+    key: &str,
+) -> Result<(), Problem> {
+    if scenarios.len() > MAX_SCENARIOS {
+        return Err((
+            key.into(),
+            format!(
+                "at most {MAX_SCENARIOS} scenarios, found {}",
+                scenarios.len()
+            ),
+        ));
+    }
+    let mut names = BTreeSet::new();
+    for (i, sc) in scenarios.iter().enumerate() {
+        let at = format!("{key}[{i}]");
+        let name = sc.name.trim();
+        if name.is_empty() || name == "baseline" || name.chars().any(char::is_control) {
+            return Err((
+                format!("{at}.name"),
+                format!(
+                    "must be a name other than \"baseline\", found {:?}",
+                    sc.name
+                ),
+            ));
+        }
+        if !names.insert(name) {
+            return Err((format!("{at}.name"), format!("{:?} is used twice", sc.name)));
+        }
+        if sc.set.is_empty() && sc.shift.is_empty() {
+            return Err((
+                at.clone(),
+                "sets or shifts no covariate: it would repeat the baseline".into(),
+            ));
+        }
+        for (table, values) in [("set", &sc.set), ("shift", &sc.shift)] {
+            for (c, v) in values {
+                if !covariates.contains(c) {
+                    return Err((
+                        format!("{at}.{table}"),
+                        format!(
+                            "{c:?} is not a covariate of this series (covariates: {covariates:?})"
+                        ),
+                    ));
+                }
+                if !v.is_finite() {
+                    return Err((
+                        format!("{at}.{table}.{c}"),
+                        format!("must be a finite number, found {v}"),
+                    ));
+                }
+            }
+        }
+        if let Some(c) = sc.set.keys().find(|c| sc.shift.contains_key(*c)) {
+            return Err((at, format!("covariate {c:?} is both set and shifted")));
         }
     }
     Ok(())

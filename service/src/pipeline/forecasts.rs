@@ -33,8 +33,9 @@ impl BaselineForecasts {
     }
 }
 
-/// Forecast every target at the network means of the covariates, new-year targets for
-/// each of the `series.horizon` years after the data. Known-site rows of a
+/// Forecast every target at the network means of the covariates (`baseline`) and under
+/// each of the series' standing scenarios, new-year targets for each of the
+/// `series.horizon` years after the data. Known-site rows of a
 /// site last observed more than `series.known_site_max_gap` years before the
 /// data-through year are left out: such a site is no longer monitored in any useful sense.
 /// The thresholds are today's config (a question asked of the version, not part of it).
@@ -44,42 +45,78 @@ pub fn baseline(
     series: &SeriesConfig,
 ) -> Result<BaselineForecasts, ModelError> {
     let through = basis.data_through_year();
-    let mut rows = forecast_to(basis, transform, &Scenario::baseline(), series.horizon);
-    if let Some(gap) = series.known_site_max_gap {
-        rows.retain(|r| match r.last_observed_year {
-            Some(last) => i64::from(through) - i64::from(last) <= i64::from(gap),
-            None => true,
-        });
-    }
-    // coef_names[0] is the intercept; the covariates follow in the order of their means.
-    // The trend has no single value: each row is at its own year.
-    let scenarios = basis
-        .coef_names
-        .iter()
-        .skip(1)
-        .zip(&basis.covariate_means)
-        .filter(|(name, _)| basis.trend_origin.is_none() || name.as_str() != tidemark_model::TREND)
-        .map(|(name, mean)| ScenarioValue {
-            scenario: "baseline".into(),
-            covariate: name.clone(),
-            value: *mean,
-        })
-        .collect();
-    let exceedance = if series.thresholds.is_empty() {
-        Vec::new()
-    } else {
-        exceedance(
-            basis,
-            transform,
-            &Scenario::baseline(),
-            &rows,
-            &series.thresholds,
-        )?
+    let monitored = |r: &ForecastRow| match (series.known_site_max_gap, r.last_observed_year) {
+        (Some(gap), Some(last)) => i64::from(through) - i64::from(last) <= i64::from(gap),
+        _ => true,
     };
+    let mut scenarios_run = vec![Scenario::baseline()];
+    scenarios_run.extend(series.scenarios.iter().map(|c| model_scenario(c, series)));
+    let mut rows = Vec::new();
+    let mut exceedance_rows = Vec::new();
+    let mut scenarios = Vec::new();
+    for scenario in &scenarios_run {
+        let mut these = forecast_to(basis, transform, scenario, series.horizon);
+        these.retain(monitored);
+        if !series.thresholds.is_empty() {
+            exceedance_rows.extend(exceedance(
+                basis,
+                transform,
+                scenario,
+                &these,
+                &series.thresholds,
+            )?);
+        }
+        // coef_names[0] is the intercept; the covariates follow in the order of their
+        // means. The trend has no single value: each row is at its own year. A shifted
+        // covariate is recorded at the network mean plus its shift.
+        for (j, (name, mean)) in basis
+            .coef_names
+            .iter()
+            .skip(1)
+            .zip(&basis.covariate_means)
+            .enumerate()
+        {
+            if basis.trend_origin.is_some() && name.as_str() == tidemark_model::TREND {
+                continue;
+            }
+            let value = scenario
+                .covariates
+                .get(j)
+                .copied()
+                .flatten()
+                .unwrap_or(*mean)
+                + scenario.shifts.get(j).copied().unwrap_or(0.0);
+            scenarios.push(ScenarioValue {
+                scenario: scenario.name.clone(),
+                covariate: name.clone(),
+                value,
+            });
+        }
+        rows.extend(these);
+    }
+    let exceedance = exceedance_rows;
     Ok(BaselineForecasts {
         rows,
         scenarios,
         thresholds: series.thresholds.clone(),
         exceedance,
     })
+}
+
+/// A configured scenario as the model takes it: per covariate (in the series' order) the
+/// value it sets and the amount it shifts.
+fn model_scenario(c: &crate::config::ScenarioConfig, series: &SeriesConfig) -> Scenario {
+    Scenario {
+        name: c.name.clone(),
+        covariates: series
+            .covariates
+            .iter()
+            .map(|name| c.set.get(name).copied())
+            .collect(),
+        shifts: series
+            .covariates
+            .iter()
+            .map(|name| c.shift.get(name).copied().unwrap_or(0.0))
+            .collect(),
+    }
 }
