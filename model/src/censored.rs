@@ -240,7 +240,19 @@ mod tests {
 
     #[test]
     fn a_sweep_keeps_the_statistics_equal_to_a_fresh_pass_over_the_moved_values() {
-        let mut b = DataBuilder::new(vec!["depth".into()], vec![]);
+        sweep_matches_a_fresh_pass(false, NormalEquations::Dense);
+    }
+
+    /// The same with a further grouping factor (crossed with site and year) on the
+    /// sparse reduced system: the group levels are entries of every censored row of `W`.
+    #[test]
+    fn a_sweep_keeps_the_statistics_right_with_a_grouping_factor_on_the_sparse_path() {
+        sweep_matches_a_fresh_pass(true, NormalEquations::Sparse);
+    }
+
+    fn sweep_matches_a_fresh_pass(grouped: bool, normal: NormalEquations) {
+        let groups = if grouped { vec!["crew".into()] } else { vec![] };
+        let mut b = DataBuilder::new(vec!["depth".into()], groups);
         let mut rng = ChaCha8Rng::seed_from_u64(3);
         let mut rows = Vec::new();
         for s in 0..9 {
@@ -255,23 +267,30 @@ mod tests {
             }
         }
         let limit = 0.3;
-        for &(s, t, x, y) in &rows {
+        for (i, &(s, t, x, y)) in rows.iter().enumerate() {
             let site = format!("s{s}");
+            let crew = format!("c{}", (i * 7 + s as usize) % 4);
+            let g: Vec<&str> = if grouped { vec![crew.as_str()] } else { vec![] };
             if y < limit {
-                b.push_censored(&site, 2000 + t, &[], &[x], Censoring::Below, limit)
+                b.push_censored(&site, 2000 + t, &g, &[x], Censoring::Below, limit)
                     .unwrap();
             } else if y > 2.5 {
-                b.push_censored(&site, 2000 + t, &[], &[x], Censoring::Above, 2.5)
+                b.push_censored(&site, 2000 + t, &g, &[x], Censoring::Above, 2.5)
                     .unwrap();
             } else {
-                b.push(&site, 2000 + t, &[], &[x], y).unwrap();
+                b.push(&site, 2000 + t, &g, &[x], y).unwrap();
             }
         }
         let data = b.build().unwrap();
         assert!(data.n_censored() > 10);
-        let stats = SuffStats::new(&data, NormalEquations::Dense).unwrap();
+        let stats = SuffStats::new(&data, normal).unwrap();
         let mut aug = Augmented::new(&data, &stats).unwrap();
-        let fac = Factorised::new(&stats, &[0.8, 0.5, 0.3], None).unwrap();
+        let sds: &[f64] = if grouped {
+            &[0.8, 0.5, 0.3, 0.4]
+        } else {
+            &[0.8, 0.5, 0.3]
+        };
+        let fac = Factorised::new(&stats, sds, None).unwrap();
         for _ in 0..50 {
             let u = fac.draw_u(&mut rng);
             aug.sweep(&fac, u.as_slice(), None, &mut rng);
@@ -289,7 +308,7 @@ mod tests {
         for (j, &(row, _)) in data.censored.iter().enumerate() {
             moved.response[row as usize] = values[j];
         }
-        let fresh = SuffStats::new(&moved, NormalEquations::Dense).unwrap();
+        let fresh = SuffStats::new(&moved, normal).unwrap();
         // Fresh statistics centre at the new mean; shift them to the chain's centring.
         let shift = fresh.y_mean - stats.y_mean;
         let close = |a: f64, b: f64| (a - b).abs() <= 1e-9 * (1.0 + a.abs().max(b.abs()));
