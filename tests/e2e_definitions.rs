@@ -125,6 +125,15 @@ fn a_fit_from_before_stored_definitions_is_compared_by_its_legacy_digest() {
     let legacy = series.legacy_definition_sha256();
     assert_eq!(definition_change(&series, Some(&legacy), None), None);
     assert_eq!(definition_change(&series, None, None), None);
+    // A trend or a unit is a change no earlier fit could have had.
+    for added in ["trend = true\n", "unit = \"µg/L\"\n"] {
+        let later = parse(&format!("{CHLOROPHYLL}{added}"));
+        assert_eq!(later.legacy_definition_sha256(), legacy);
+        assert!(
+            definition_change(&later, Some(&legacy), None).is_some(),
+            "{added}"
+        );
+    }
     let other = parse(&CHLOROPHYLL.replace("transform = \"log\"", "transform = \"none\""));
     assert!(definition_change(&other, Some(&legacy), None)
         .unwrap()

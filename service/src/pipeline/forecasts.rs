@@ -50,7 +50,7 @@ pub fn baseline(
         _ => true,
     };
     let mut scenarios_run = vec![Scenario::baseline()];
-    scenarios_run.extend(series.scenarios.iter().map(|c| model_scenario(c, series)));
+    scenarios_run.extend(series.scenarios.iter().map(|c| model_scenario(c, basis)));
     let mut rows = Vec::new();
     let mut exceedance_rows = Vec::new();
     let mut scenarios = Vec::new();
@@ -103,18 +103,18 @@ pub fn baseline(
     })
 }
 
-/// A configured scenario as the model takes it: per covariate (in the series' order) the
-/// value it sets and the amount it shifts.
-fn model_scenario(c: &crate::config::ScenarioConfig, series: &SeriesConfig) -> Scenario {
+/// A configured scenario as the model takes it: per covariate of the version (in the
+/// order of its coefficients, which a `forecast` after a config change may not share with
+/// the config) the value it sets and the amount it shifts.
+fn model_scenario(c: &crate::config::ScenarioConfig, basis: &ForecastBasis) -> Scenario {
+    let covariates = &basis.coef_names[1..];
     Scenario {
         name: c.name.clone(),
-        covariates: series
-            .covariates
+        covariates: covariates
             .iter()
             .map(|name| c.set.get(name).copied())
             .collect(),
-        shifts: series
-            .covariates
+        shifts: covariates
             .iter()
             .map(|name| c.shift.get(name).copied().unwrap_or(0.0))
             .collect(),

@@ -325,6 +325,12 @@ async fn detect_change(
     Ok(Some((watermark, changed)))
 }
 
+/// Whether the series uses a definition field that fits made before stored definitions
+/// could not have had (censoring, a trend, a unit): such a series changed since them.
+fn uses_later_fields(series: &SeriesConfig) -> bool {
+    series.censoring.is_some() || series.trend || series.unit.is_some()
+}
+
 /// How the series' definition differs from the one a stored fit was made under, said
 /// for the analyst; `None` when it is the same. A fit made before definitions were stored
 /// (no text) counts as the same when its digest is the legacy digest of this definition
@@ -350,9 +356,10 @@ pub fn definition_change(
                 format!("the model definition changed ({})", changes.join(", "))
             })
         }
+        // Fits without a digest predate schema version 5: nothing to compare.
         (None, None) => None,
         (None, Some(old))
-            if old == series.legacy_definition_sha256() && series.censoring.is_none() =>
+            if old == series.legacy_definition_sha256() && !uses_later_fields(series) =>
         {
             None
         }
@@ -426,11 +433,20 @@ async fn warm_start(
     let Some(published) = store.serving_fit(&series.name).await? else {
         return Ok(Ok(None));
     };
-    if let Some(text) = &published.definition_text {
-        if let Ok(earlier) = serde_json::from_str::<crate::config::ModelDefinition>(text) {
-            if let Err(reason) = series.definition().warm_compatible(&earlier) {
-                return Ok(Err(reason));
-            }
+    let earlier = match &published.definition_text {
+        Some(text) => serde_json::from_str::<crate::config::ModelDefinition>(text).ok(),
+        // Made before definitions were stored: it had no censoring, trend or unit; the
+        // rest is taken as today's (its digest is compared by `definition_change`).
+        None => Some(crate::config::ModelDefinition {
+            censoring: None,
+            trend: None,
+            unit: None,
+            ..series.definition()
+        }),
+    };
+    if let Some(earlier) = earlier {
+        if let Err(reason) = series.definition().warm_compatible(&earlier) {
+            return Ok(Err(reason));
         }
     }
     let Some((_, blob)) = store.fit_draws(published.fit_id).await? else {
