@@ -490,6 +490,21 @@ fn the_memory_estimate_covers_the_measured_peak_of_a_refit() {
          covariates = [{}]\n",
         (0..10).map(|k| format!("\"x{k}\"")).collect::<Vec<_>>().join(", ")
     );
+    // Many sites forecast 50 years ahead under 8 scenarios with 16 thresholds: the
+    // forecast rows, not the draws, make the peak.
+    let scenarios: String = (1..=8)
+        .map(|k| {
+            format!(
+                "\n[[series.scenarios]]\nname = \"s{k}\"\nshift = {{ surface_temp_c = {k}.0 }}\n"
+            )
+        })
+        .collect();
+    let thresholds: Vec<String> = (1..=16).map(|k| format!("{k}.0")).collect();
+    let far = format!(
+        "{}horizon = 50\nthresholds = [{}]\n{scenarios}",
+        common::CHLOROPHYLL,
+        thresholds.join(", ")
+    );
     let cases = [
         (
             common::CHLOROPHYLL.to_string(),
@@ -497,6 +512,7 @@ fn the_memory_estimate_covers_the_measured_peak_of_a_refit() {
             150_000,
         ),
         (wide, wide_network_csv(), 100_000),
+        (far, common::csv(&common::network_rows(1500, 3)), 400),
     ];
     for (series, feed, draws) in cases {
         // Enough draws that they, not the process itself, make most of the peak.

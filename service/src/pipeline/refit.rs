@@ -500,7 +500,7 @@ fn within_memory(
     let mut smallest: Option<(u64, &'static str, SamplerSettings)> = None;
     let mut kept = Vec::new();
     for attempt in attempts {
-        let need = memory_estimate(data, &attempt.1);
+        let need = memory_estimate(series, data, &attempt.1);
         if need <= limit.saturating_mul(MIB) {
             kept.push(attempt);
             continue;
@@ -516,17 +516,33 @@ fn within_memory(
         }
     }
     match smallest {
-        Some((need, label, s)) if kept.is_empty() => Err(format!(
-            "no fit attempt run: even the {label} would need an estimated {} MiB ({} chains x {} \
-             draws, {} warm-up, {} observations, {} sites), above sampler.max_memory_mib = \
-             {limit}; lower chains, draws or warmup, or raise the limit",
-            need.div_ceil(MIB),
-            s.chains,
-            s.draws,
-            s.warmup,
-            data.n_obs(),
-            data.n_sites(),
-        )),
+        Some((need, label, s)) if kept.is_empty() => {
+            // Name the forecasts when they are most of the need.
+            let forecasts = forecast_bytes(series, data);
+            let advice = if forecasts.saturating_mul(2) > need {
+                format!(
+                    "; the forecasts alone ({} MiB: horizon {}, {} scenario(s), {} threshold(s)) \
+                     are most of it: lower horizon or the scenarios, or raise the limit",
+                    forecasts.div_ceil(MIB),
+                    series.horizon,
+                    series.scenarios.len(),
+                    series.thresholds.len()
+                )
+            } else {
+                "; lower chains, draws or warmup, or raise the limit".to_string()
+            };
+            Err(format!(
+                "no fit attempt run: even the {label} would need an estimated {} MiB ({} chains \
+                 x {} draws, {} warm-up, {} observations, {} sites), above \
+                 sampler.max_memory_mib = {limit}{advice}",
+                need.div_ceil(MIB),
+                s.chains,
+                s.draws,
+                s.warmup,
+                data.n_obs(),
+                data.n_sites(),
+            ))
+        }
         _ => Ok((kept, notes)),
     }
 }
@@ -539,15 +555,37 @@ const PUBLISH_COPIES: u64 = 5;
 /// The process itself before any fit: code, runtime, the SQLite page cache, the data.
 const PROCESS_BASE_BYTES: u64 = 24 << 20;
 
+/// Bytes per forecast row while a version is published: the row (its numbers, target,
+/// site and scenario text), its exceedance list, and the statement text and bound values
+/// of its INSERT, with room for the copies a publish holds at once.
+const FORECAST_ROW_BYTES: u64 = 1 << 10;
+
+/// The forecast rows a version publishes, in bytes: `(1 + scenarios)` sets of
+/// `sites x (horizon + 1) + years + horizon` rows, each with its exceedance per threshold.
+fn forecast_bytes(series: &SeriesConfig, data: &tidemark_model::Data) -> u64 {
+    let horizon = u64::from(series.horizon.max(1));
+    let per_set = (data.n_sites() as u64)
+        .saturating_mul(horizon + 1)
+        .saturating_add(data.n_years() as u64 + horizon);
+    let rows = per_set.saturating_mul(1 + series.scenarios.len() as u64);
+    rows.saturating_mul(FORECAST_ROW_BYTES + 16 * series.thresholds.len() as u64)
+}
+
 /// Estimated peak memory in bytes of one attempt from sampling to publishing: the larger
 /// of the sampler's peak (while it summarises) and the publishing peak (the posterior
 /// plus the copies of its draws file), above what the process holds anyway.
 /// `tests/e2e_config.rs::the_memory_estimate_covers_the_measured_peak_of_a_refit` checks
 /// it against the peak resident size the kernel measures.
-fn memory_estimate(data: &tidemark_model::Data, settings: &SamplerSettings) -> u64 {
+fn memory_estimate(
+    series: &SeriesConfig,
+    data: &tidemark_model::Data,
+    settings: &SamplerSettings,
+) -> u64 {
     let sampling = tidemark_model::memory_estimate(data, settings);
     let file = draws::size_estimate(data, settings, BASIS_DRAWS_PER_CHAIN);
-    let publishing = file.saturating_mul(1 + PUBLISH_COPIES);
+    let publishing = file
+        .saturating_mul(1 + PUBLISH_COPIES)
+        .saturating_add(forecast_bytes(series, data));
     sampling
         .max(publishing)
         .saturating_add(data.n_obs() as u64 * 64)
