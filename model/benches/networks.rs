@@ -1,9 +1,9 @@
 //! Benchmarks of the model engine on generated networks B1–B3 (docs/architecture.md,
 //! "Contracts with outside readers"; figures in docs/benchmarks.md).
 //!
-//! `cargo bench -p tidemark-model --bench networks -- [b1] [b2] [b3] [reml] [b1c] [b3c]`
+//! `cargo bench -p tidemark-model --bench networks -- [b1] [b2] [b3] [reml] [b1c] [b3c] [b1t]`
 //! (the first four when none is named; `b1c` and `b3c` are B1 and B3 with 20% of the
-//! values left-censored). Figures are wall-clock on this machine; peak memory is the process's
+//! values left-censored, `b1t` is B1 with a network trend). Figures are wall-clock on this machine; peak memory is the process's
 //! high-water mark (run one benchmark per process for a clean figure).
 
 use std::time::Instant;
@@ -105,6 +105,23 @@ fn b3c() {
     println!("B3 censored peak memory: {:.0} MiB", peak_rss_mib());
 }
 
+fn b1t() {
+    let (rows, _) = simulate_rows(&b1_spec());
+    let mut b = DataBuilder::new(vec!["x1".into(), "x2".into()], vec![]).with_trend(2000);
+    for r in &rows {
+        b.push(&site_label(r.site), r.year, &[], &r.covariates, r.y)
+            .unwrap();
+    }
+    let data = b.build().unwrap();
+    println!(
+        "B1 with a network trend: {} observations, {} coefficients",
+        data.n_obs(),
+        1 + data.covariate_names().len()
+    );
+    let (post, best) = best_of_five(&data);
+    describe("B1 with a trend, cold fit (best of 5)", &post, best);
+}
+
 fn reml() {
     let (data, _) = simulate(&b1_spec());
     let mut best = f64::INFINITY;
@@ -202,6 +219,9 @@ fn main() {
     }
     if named("b3c") {
         b3c();
+    }
+    if named("b1t") {
+        b1t();
     }
     if wants("reml") {
         reml();
