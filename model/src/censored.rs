@@ -143,11 +143,7 @@ impl Augmented {
             let s = s as usize;
             self.site_effect[s] = match sites {
                 Some(all) => all[s],
-                None => {
-                    let dk = fac.d[stats.site_class[s]];
-                    let mean = fac.lambda * (stats.site_ysum[s] - stats.site_dot(s, u)) / dk;
-                    mean + rng.sample::<f64, _>(StandardNormal) / dk.sqrt()
-                }
+                None => fac.draw_site(stats, s, u, rng),
             };
         }
         let sd = fac.sds[0];

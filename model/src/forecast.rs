@@ -216,10 +216,11 @@ fn row_covariates(
     scenario: &Scenario,
     year: i32,
 ) -> Vec<Option<f64>> {
-    let mut v = covariates_at(basis, site, &scenario.covariates);
-    if basis.trend_origin.is_some() {
-        v = at_year(basis, &v, year);
-    }
+    let mut v = at_year(
+        basis,
+        &covariates_at(basis, site, &scenario.covariates),
+        year,
+    );
     for (j, &shift) in scenario.shifts.iter().enumerate() {
         if shift != 0.0 && j < v.len() {
             v[j] = Some(v[j].unwrap_or(basis.covariate_means[j]) + shift);
@@ -605,9 +606,9 @@ pub fn forecast_to(
         .map(|h| basis.data_through_year() + h)
         .collect();
     let trend = basis.trend_origin.is_some();
-    // The fixed part of a new site (or of a known site without site-level covariates).
+    // The fixed part of a new site (or of a known site without site-level covariates);
+    // without a trend it is the same in every year.
     let fixed_at = |year: i32| fixed_part(basis, &row_covariates(basis, None, scenario, year));
-    let fixed = fixed_at(basis.data_through_year());
     // Whether a known site's row needs its own fixed part (a site-level covariate the
     // scenario leaves at its baseline).
     let site_level = (0..basis.covariate_means.len()).any(|j| {
@@ -662,7 +663,9 @@ pub fn forecast_to(
         .map(|&y| (ForecastTarget::KnownSiteNewYear, Some(y)))
         .chain(std::iter::once((ForecastTarget::KnownSiteKnownYear, None)));
     for (target, new_year) in site_targets {
-        let fixed_new = new_year.map(&fixed_at);
+        // Used by every site when the row needs no per-site covariates (then, under a
+        // trend, the row is a new year's).
+        let shared = fixed_at(new_year.unwrap_or(basis.data_through_year()));
         let site_rows: Vec<ForecastRow> = (0..n_sites)
             .into_par_iter()
             .map(|s| {
@@ -677,8 +680,7 @@ pub fn forecast_to(
                     let at = row_covariates(basis, Some(s), scenario, year);
                     predictive_from(basis, &fixed_part(basis, &at), Some(s), t)
                 } else {
-                    let f = fixed_new.as_ref().unwrap_or(&fixed);
-                    predictive_from(basis, f, Some(s), t)
+                    predictive_from(basis, &shared, Some(s), t)
                 };
                 let mut row = row_from(
                     spec(target, Some(basis.site_labels[s].clone()), year),
@@ -692,16 +694,14 @@ pub fn forecast_to(
     }
     // A new site in every observed year, then in each new year.
     for (t, &year) in basis.year_labels.iter().enumerate() {
-        let f = if trend { fixed_at(year) } else { fixed.clone() };
-        let comp = predictive_from(basis, &f, None, Some(t));
+        let comp = predictive_from(basis, &fixed_at(year), None, Some(t));
         rows.push(row_from(
             spec(ForecastTarget::NewSiteKnownYear, None, year),
             &comp,
         ));
     }
     for &year in &new_years {
-        let f = if trend { fixed_at(year) } else { fixed.clone() };
-        let comp = predictive_from(basis, &f, None, None);
+        let comp = predictive_from(basis, &fixed_at(year), None, None);
         rows.push(row_from(
             spec(ForecastTarget::NewSiteNewYear, None, year),
             &comp,

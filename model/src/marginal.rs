@@ -306,11 +306,23 @@ impl Factorised {
         out: &mut [f64],
     ) {
         for (s, slot) in out.iter_mut().enumerate() {
-            let dk = self.d[stats.site_class[s]];
-            let mean = self.lambda * (stats.site_ysum[s] - stats.site_dot(s, u)) / dk;
-            let z: f64 = rng.sample(StandardNormal);
-            *slot = mean + z / dk.sqrt();
+            *slot = self.draw_site(stats, s, u, rng);
         }
+    }
+
+    /// One draw of site `s`'s effect given `u`.
+    #[inline]
+    pub fn draw_site<R: Rng + ?Sized>(
+        &self,
+        stats: &SuffStats,
+        s: usize,
+        u: &[f64],
+        rng: &mut R,
+    ) -> f64 {
+        let dk = self.d[stats.site_class[s]];
+        let mean = self.lambda * (stats.site_ysum[s] - stats.site_dot(s, u)) / dk;
+        let z: f64 = rng.sample(StandardNormal);
+        mean + z / dk.sqrt()
     }
 
     /// Conditional mean of the site effects given `u`.

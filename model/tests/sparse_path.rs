@@ -25,6 +25,29 @@ fn observer_design(levels: usize, assignment: ObserverAssignment, seed: u64) -> 
     observer_data(&spec, &observers).unwrap()
 }
 
+/// The default sampler on one storage with `(chains, draws, threads)`.
+fn fit_with(
+    data: &Data,
+    normal: NormalEquations,
+    (chains, draws, threads): (usize, usize, usize),
+) -> Posterior {
+    let settings = SamplerSettings {
+        chains,
+        draws,
+        threads,
+        normal_equations: normal,
+        ..Default::default()
+    };
+    sample(
+        data,
+        &Priors::default(),
+        &settings,
+        None,
+        Controls::default(),
+    )
+    .unwrap()
+}
+
 fn close(a: f64, b: f64, rel: f64) -> bool {
     (a - b).abs() <= rel * a.abs().max(b.abs()).max(1.0)
 }
@@ -65,25 +88,8 @@ fn reml_and_ml_are_the_same_on_both_storages() {
 #[test]
 fn the_sampler_gives_the_same_chain_on_both_storages() {
     let data = observer_design(90, ObserverAssignment::Blocks, 3);
-    let fit = |normal| {
-        let settings = SamplerSettings {
-            chains: 2,
-            draws: 400,
-            threads: 1,
-            normal_equations: normal,
-            ..Default::default()
-        };
-        sample(
-            &data,
-            &Priors::default(),
-            &settings,
-            None,
-            Controls::default(),
-        )
-        .unwrap()
-    };
-    let dense = fit(NormalEquations::Dense);
-    let sparse = fit(NormalEquations::Sparse);
+    let dense = fit_with(&data, NormalEquations::Dense, (2, 400, 1));
+    let sparse = fit_with(&data, NormalEquations::Sparse, (2, 400, 1));
     assert_eq!(dense.sd_draws.len(), sparse.sd_draws.len());
     for (i, (d, s)) in dense.sd_draws.iter().zip(&sparse.sd_draws).enumerate() {
         assert!(close(*d, *s, 1e-6), "sd draw {i}: {d} vs {s}");
@@ -181,25 +187,8 @@ fn censored_values_give_the_same_posterior_on_both_storages() {
     let data = observer_design(90, ObserverAssignment::Blocks, 5);
     let (data, _) = simulate::censor_share(&data, Censoring::Below, 0.25);
     assert!(data.n_censored() > 0);
-    let fit = |normal| {
-        let settings = SamplerSettings {
-            chains: 4,
-            draws: 1000,
-            threads: 2,
-            normal_equations: normal,
-            ..Default::default()
-        };
-        sample(
-            &data,
-            &Priors::default(),
-            &settings,
-            None,
-            Controls::default(),
-        )
-        .unwrap()
-    };
-    let dense = fit(NormalEquations::Dense);
-    let sparse = fit(NormalEquations::Sparse);
+    let dense = fit_with(&data, NormalEquations::Dense, (4, 1000, 2));
+    let sparse = fit_with(&data, NormalEquations::Sparse, (4, 1000, 2));
     let sds = dense.sd_names.clone();
     for (kind, names) in [
         (SummaryKind::Sd, sds),
